@@ -1,0 +1,5 @@
+import sys
+
+from speedbench.cli import main
+
+sys.exit(main())

@@ -1,0 +1,68 @@
+"""Shared vocabulary: stage names and the columns of a run's points table.
+
+This module is the contract between measure/evaluate (which produce rows),
+sweep (which stores them) and analyse/report (which read them). It imports
+nothing heavy. README.md documents the same columns for notebook users.
+"""
+
+# Stages a detector's time is split into. One-stage models use "head";
+# two-stage models use "proposals" and "roi_heads". Time that cannot be tied
+# to a stage through the graph's module scopes goes to "unattributed".
+STAGES = (
+    "preprocess",
+    "backbone",
+    "neck",
+    "proposals",
+    "roi_heads",
+    "head",
+    "postprocess",
+    "unattributed",
+)
+
+FAMILIES = ("one-stage", "two-stage")
+
+# Columns that identify a point (a configuration). Two rows with equal values
+# here are the same point, whichever run they come from.
+CONFIG_COLUMNS = (
+    "model",          # zoo id
+    "weights",        # "none", "torchvision", "file:<name>" or a demo weights id
+    "size",           # input size the model's own transform resizes to (px)
+    "proposals",      # proposal / candidate budget; 0 when the model has no such knob
+    "backend",        # "ort" or "eager"
+    "intra_threads",
+    "inter_threads",
+    "exec_mode",      # "sequential" / "parallel" (ORT); "" for eager
+    "opt_level",      # ORT graph optimisation level name; "" for eager
+    "affinity",       # number of cores the worker was pinned to; 0 = not pinned
+    "concurrency",    # K concurrent workers for throughput points; 1 otherwise
+)
+
+# Percentiles reported for every latency distribution, in milliseconds.
+LATENCY_STATS = ("p50", "p90", "p99")
+
+# Other columns of the points table (see README.md for their meaning).
+RESULT_COLUMNS = (
+    "point_id", "host", "family", "status", "reason",
+    "n_samples", "lat_min_ms", "lat_mean_ms", "lat_std_ms", "lat_cov",
+    *[f"lat_{s}_ms" for s in LATENCY_STATS],
+    *[f"lat_{s}_ci_lo_ms" for s in LATENCY_STATS],
+    *[f"lat_{s}_ci_hi_ms" for s in LATENCY_STATS],
+    "noisy",
+    "fps",                     # frames/s of one stream = 1000 / lat_p50_ms (concurrency 1)
+    *[f"stage_{s}_ms" for s in STAGES],
+    "profiled_ms", "profiling_overhead",
+    "rss_imports_mib", "rss_loaded_mib", "rss_peak_mib", "model_file_mib",
+    "params", "gmacs",
+    "map", "map50", "map75", "map_small", "map_medium", "map_large", "mar_100",
+    "map_ci_lo", "map_ci_hi", "untrained",
+)
+
+
+def stage_column(stage: str) -> str:
+    return f"stage_{stage}_ms"
+
+
+def latency_column(stat: str) -> str:
+    if stat not in LATENCY_STATS:
+        raise ValueError(f"latency statistic must be one of {LATENCY_STATS}, not {stat!r}")
+    return f"lat_{stat}_ms"
