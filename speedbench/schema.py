@@ -66,3 +66,17 @@ def latency_column(stat: str) -> str:
     if stat not in LATENCY_STATS:
         raise ValueError(f"latency statistic must be one of {LATENCY_STATS}, not {stat!r}")
     return f"lat_{stat}_ms"
+
+
+def point_id(config: dict) -> str:
+    """Stable id of a configuration: a digest of its CONFIG_COLUMNS values.
+
+    The same configuration gets the same id in every run, which is how resume
+    avoids duplicates and how compare matches points across runs.
+    """
+    import hashlib
+    import json
+
+    key = {c: config.get(c) for c in CONFIG_COLUMNS}
+    blob = json.dumps(key, sort_keys=True, default=str).encode()
+    return hashlib.sha1(blob).hexdigest()[:12]

@@ -1,0 +1,27 @@
+"""What the zoo knows about one detector architecture."""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Mapping
+
+
+@dataclass(frozen=True)
+class ModelSpec:
+    id: str
+    # Dotted path of the function that builds the architecture. It accepts the
+    # torchvision builder keywords (weights=None, weights_backbone=None, num_classes=...).
+    builder: str
+    family: str                      # "one-stage" or "two-stage" (speedbench.schema.FAMILIES)
+    native_size: int                 # input size the architecture was designed for (px)
+    detections_per_img: int
+    score_thresh: float
+    # Proposal / candidate budget at its default; 0 means the model has no such knob.
+    default_proposals: int
+    # stage name (speedbench.schema.STAGES) -> module path prefixes inside the model,
+    # e.g. {"preprocess": ("transform",), "backbone": ("backbone.body",), ...}
+    stage_scopes: Mapping[str, tuple[str, ...]] = field(default_factory=dict)
+    num_classes: int = 91            # including background where the architecture has one
+    classes: tuple[str, ...] = ()    # names by label index; () = torchvision's COCO labels
+    weights_enum: str | None = None  # torchvision weights enum name, if torchvision ships weights
+    default_weights: str = "none"    # "none", "torchvision", "demo" or "file:PATH"
+    notes: str = ""
