@@ -1,1 +1,18 @@
-"""(being built)"""
+"""Decisions from measurements: Pareto frontiers, budget picks and regression verdicts.
+
+Public face (all take pandas DataFrames of points, which may carry a `host` column):
+- frontier(df, x="lat_p50_ms", y="map", minimize_x=True, by=None) -> DataFrame
+  (adds frontier_status in {"frontier", "tied", "dominated"}, dominated_by, tied_with)
+- pick(df, budget_ms, latency="p50", threads=None, max_memory_mb=None, min_map=None) -> Pick
+- compare(base, new, threshold=0.05, confidence=0.95, seed=0) -> Comparison
+- Run / as_run: a run's points, raw samples and metadata, from a directory or frames
+- label(row): "model @ size / proposals / threads"
+"""
+from speedbench.analyse.common import label
+from speedbench.analyse.compare import Comparison, bootstrap_ratio, compare, env_diff
+from speedbench.analyse.frontier import frontier
+from speedbench.analyse.pick import Pick, pick
+from speedbench.analyse.runs import Run, as_run
+
+__all__ = ["frontier", "pick", "Pick", "compare", "Comparison", "bootstrap_ratio", "env_diff",
+           "Run", "as_run", "label"]

@@ -1,0 +1,117 @@
+"""Small helpers shared by frontier, pick and compare: labels, CI columns, row filters."""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from speedbench.errors import UserError
+from speedbench.schema import CONFIG_COLUMNS, LATENCY_STATS, point_id
+
+
+def label(row) -> str:
+    """Human label of a configuration: ``model @ size / proposals / threads``."""
+    get = row.get if hasattr(row, "get") else (lambda k, d=None: getattr(row, k, d))
+    model = get("model", "?")
+    size = _int_or(get("size", None))
+    props = _int_or(get("proposals", None))
+    intra = _int_or(get("intra_threads", None))
+    inter = _int_or(get("inter_threads", None))
+    threads = f"{intra}t" if inter in (None, 0, 1) else f"{intra}x{inter}t"
+    parts = [f"{model} @ {size}", f"{props}p" if props else "-", threads]
+    conc = _int_or(get("concurrency", None))
+    if conc and conc > 1:
+        parts.append(f"K={conc}")
+    backend = get("backend", None)
+    if backend and backend != "ort":
+        parts.append(str(backend))
+    host = get("host", None)
+    if isinstance(host, str) and host and get("_show_host", False):
+        parts.append(host)
+    return " / ".join(parts)
+
+
+def _int_or(v):
+    try:
+        if v is None or (isinstance(v, float) and np.isnan(v)):
+            return None
+        return int(v)
+    except (TypeError, ValueError):
+        return v
+
+
+def latency_col(stat: str) -> str:
+    stat = str(stat).lower().removeprefix("lat_").removesuffix("_ms")
+    if stat not in LATENCY_STATS:
+        raise UserError(f"--latency: must be one of {', '.join(LATENCY_STATS)}, not {stat!r}")
+    return f"lat_{stat}_ms"
+
+
+def ci_columns(col: str) -> tuple[str, str] | None:
+    """Names of the CI bounds recorded for a metric column, if the schema has them."""
+    if col.startswith("lat_") and col.endswith("_ms"):
+        stat = col[len("lat_"):-len("_ms")]
+        return f"lat_{stat}_ci_lo_ms", f"lat_{stat}_ci_hi_ms"
+    if col == "map":
+        return "map_ci_lo", "map_ci_hi"
+    return None
+
+
+def bounds(df: pd.DataFrame, col: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(value, lo, hi) arrays for a metric; a metric without recorded CIs gets lo = hi = value.
+
+    fps has no CI column of its own; it is 1000 / p50 for one stream, so its interval is
+    derived from the CI of the median latency (the bounds swap because 1/x is decreasing).
+    """
+    v = pd.to_numeric(df[col], errors="coerce").to_numpy(dtype=float)
+    lo, hi = v.copy(), v.copy()
+    cis = ci_columns(col)
+    if col == "fps" and {"lat_p50_ci_lo_ms", "lat_p50_ci_hi_ms"} <= set(df.columns):
+        with np.errstate(divide="ignore", invalid="ignore"):
+            lo = 1000.0 / pd.to_numeric(df["lat_p50_ci_hi_ms"], errors="coerce").to_numpy(dtype=float)
+            hi = 1000.0 / pd.to_numeric(df["lat_p50_ci_lo_ms"], errors="coerce").to_numpy(dtype=float)
+    elif cis and set(cis) <= set(df.columns):
+        lo = pd.to_numeric(df[cis[0]], errors="coerce").to_numpy(dtype=float)
+        hi = pd.to_numeric(df[cis[1]], errors="coerce").to_numpy(dtype=float)
+    # A missing bound means "no interval recorded": fall back to the value itself.
+    lo = np.where(np.isnan(lo), v, np.minimum(lo, v))
+    hi = np.where(np.isnan(hi), v, np.maximum(hi, v))
+    return v, lo, hi
+
+
+def require_columns(df: pd.DataFrame, cols, what: str) -> None:
+    missing = [c for c in cols if c not in df.columns]
+    if missing:
+        raise UserError(f"{what}: points table lacks column(s) {', '.join(missing)}")
+
+
+def split_ok(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """(usable rows, failed rows with a `reason`). A row without status counts as ok."""
+    df = with_ids(df)
+    status = pd.Series("ok", index=df.index)
+    if "status" in df.columns:  # an empty status (older rows, hand-made frames) counts as ok
+        status = df["status"].fillna("").astype(str).replace("", "ok")
+    ok = df[status == "ok"].copy()
+    bad = df[status != "ok"].copy()
+    reason = bad["reason"] if "reason" in bad.columns else pd.Series("", index=bad.index)
+    bad["reason"] = ["failed: " + (str(r) if isinstance(r, str) and r else "no reason recorded") for r in reason]
+    return ok, bad
+
+
+def with_ids(df: pd.DataFrame) -> pd.DataFrame:
+    """Make sure every row has a point_id and a label."""
+    df = df.copy()
+    if "point_id" not in df.columns or df["point_id"].isna().any():
+        ids = [point_id({c: r.get(c) for c in CONFIG_COLUMNS}) for r in df.to_dict("records")]
+        if "point_id" in df.columns:
+            df["point_id"] = df["point_id"].where(df["point_id"].notna(), pd.Series(ids, index=df.index))
+        else:
+            df["point_id"] = ids
+    if "label" not in df.columns:
+        df["label"] = [label(r) for r in df.to_dict("records")]
+    return df
+
+
+def has_accuracy(df: pd.DataFrame, col: str = "map") -> pd.Series:
+    if col not in df.columns:
+        return pd.Series(False, index=df.index)
+    return pd.to_numeric(df[col], errors="coerce").notna()

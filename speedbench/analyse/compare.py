@@ -1,0 +1,360 @@
+"""Regression verdicts between two runs of one profile (before / after an upgrade).
+
+Latency: for every configuration present in both runs, the ratio of median latencies
+new / base with a bootstrap confidence interval. Method: the percentile bootstrap
+(Efron & Tibshirani, "An Introduction to the Bootstrap", ch. 13): each run's raw
+samples are resampled independently with replacement (seeded), the ratio of the two
+resampled medians is taken, and the interval is the (a/2, 1 - a/2) percentiles of
+those ratios. A point is *slower* only when the whole interval lies above
+1 + threshold, *faster* only when it lies below 1 / (1 + threshold).
+"""
+from __future__ import annotations
+
+import html
+import json
+import math
+import zlib
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from speedbench.analyse.common import require_columns, split_ok, with_ids
+from speedbench.analyse.runs import Run, as_run
+from speedbench.errors import UserError
+from speedbench.schema import STAGES
+
+N_BOOT = 2000
+MIN_SAMPLES = 5  # fewer raw samples than this: fall back to the recorded CIs of the median
+
+
+def bootstrap_ratio(base_ms, new_ms, confidence=0.95, n_boot=N_BOOT, rng=None):
+    """(ratio of medians new/base, ci_lo, ci_hi) by the percentile bootstrap."""
+    rng = rng or np.random.default_rng(0)
+    a = np.asarray(base_ms, dtype=float)
+    b = np.asarray(new_ms, dtype=float)
+    ratio = float(np.median(b) / np.median(a))
+    ma = _boot_medians(a, n_boot, rng)
+    mb = _boot_medians(b, n_boot, rng)
+    r = mb / ma
+    alpha = 1.0 - confidence
+    lo, hi = np.quantile(r, [alpha / 2, 1 - alpha / 2])
+    return ratio, float(lo), float(hi)
+
+
+def _boot_medians(x, n_boot, rng, chunk_elems=4_000_000):
+    n = len(x)
+    out = np.empty(n_boot)
+    step = max(1, chunk_elems // max(n, 1))  # bound memory for long sample lists
+    for s in range(0, n_boot, step):
+        k = min(step, n_boot - s)
+        out[s:s + k] = np.median(x[rng.integers(0, n, size=(k, n))], axis=1)
+    return out
+
+
+@dataclass
+class Comparison:
+    points: pd.DataFrame          # one row per matched configuration
+    env_diff: pd.DataFrame        # key, base, new
+    unmatched: pd.DataFrame       # side ("base only" / "new only"), point_id, label
+    threshold: float
+    confidence: float
+    base_name: str = "base"
+    new_name: str = "new"
+    fail_on_drift: bool = False
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def regressed(self) -> bool:
+        return bool(self.points["regression"].any()) if len(self.points) else False
+
+    def counts(self) -> dict:
+        c = self.points["verdict"].value_counts().to_dict() if len(self.points) else {}
+        return {k: int(v) for k, v in c.items()}
+
+    def _summary(self) -> str:
+        head = "REGRESSION" if self.regressed else "no regression"
+        parts = ", ".join(f"{v} {k}" for k, v in sorted(self.counts().items()))
+        return (f"{head}: {len(self.points)} matched point(s) ({parts or 'none'}); "
+                f"{len(self.unmatched)} unmatched; threshold {self.threshold:.0%}, "
+                f"confidence {self.confidence:.0%}")
+
+    def _table(self) -> list[list[str]]:
+        rows = []
+        for _, r in self.points.iterrows():
+            rows.append([r["label"], _ms(r["base_p50_ms"]), _ms(r["new_p50_ms"]),
+                         _ratio(r), r["verdict"], _signed(r["mem_delta_mib"], "MiB", 0),
+                         _acc(r), r["drift"], r["stage_note"]])
+        return rows
+
+    HEADER = ["configuration", "base p50", "new p50", "ratio [CI]", "verdict",
+              "peak mem", "mAP delta [CI]", "detections", "stages"]
+
+    def to_text(self) -> str:
+        lines = [f"compare {self.base_name} -> {self.new_name}", self._summary(), ""]
+        lines += _aligned(self.HEADER, self._table())
+        if len(self.env_diff):
+            lines += ["", "Environment changes:"]
+            lines += [f"  {r.key}: {r.base} -> {r.new}" for r in self.env_diff.itertuples()]
+        else:
+            lines += ["", "Environment: no recorded difference"]
+        if len(self.unmatched):
+            lines += ["", "Unmatched points (not compared):"]
+            lines += [f"  {r.side}: {r.label} [{r.point_id}]" for r in self.unmatched.itertuples()]
+        lines += [f"Note: {n}" for n in self.notes]
+        return "\n".join(lines)
+
+    def to_markdown(self) -> str:
+        icon = "Regression" if self.regressed else "No regression"
+        out = [f"### speedbench compare: {icon}", "", _md(self._summary()), "",
+               f"Base: `{_md(self.base_name)}` - new: `{_md(self.new_name)}`", "",
+               "| " + " | ".join(self.HEADER) + " |", "|" + "---|" * len(self.HEADER)]
+        for row in self._table():
+            cells = [_md(c) for c in row]
+            cells[4] = f"**{cells[4]}**" if row[4] in ("slower", "failed in new") else cells[4]
+            out.append("| " + " | ".join(cells) + " |")
+        out += ["", "#### Environment changes", ""]
+        if len(self.env_diff):
+            out += ["| key | base | new |", "|---|---|---|"]
+            out += [f"| {_md(r.key)} | {_md(r.base)} | {_md(r.new)} |" for r in self.env_diff.itertuples()]
+        else:
+            out.append("No recorded difference.")
+        if len(self.unmatched):
+            out += ["", "#### Unmatched points (not compared)", ""]
+            out += [f"- {_md(r.side)}: {_md(r.label)} (`{_md(r.point_id)}`)" for r in self.unmatched.itertuples()]
+        if self.notes:
+            out += [""] + [f"> {_md(n)}" for n in self.notes]
+        return "\n".join(out) + "\n"
+
+    def to_json(self) -> str:
+        doc = {
+            "regressed": self.regressed, "threshold": self.threshold, "confidence": self.confidence,
+            "base": self.base_name, "new": self.new_name, "counts": self.counts(),
+            "points": _records(self.points), "env_diff": _records(self.env_diff),
+            "unmatched": _records(self.unmatched), "notes": self.notes,
+        }
+        return json.dumps(doc, indent=2, allow_nan=False, default=str)
+
+
+def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: int = 0,
+            n_boot: int = N_BOOT, fail_on_drift: bool = False) -> Comparison:
+    """Match points by configuration and give each a verdict (see the module docstring).
+
+    base, new: Run objects, run directory paths, or bare points DataFrames (then the
+    recorded CIs of the median stand in for raw samples).
+    A regression is: a point slower beyond the threshold, a point that failed only in
+    the new run, mAP lower beyond its CI, or (with fail_on_drift) changed detections.
+    """
+    if not (0 <= threshold < 1):
+        raise UserError(f"--threshold: must be between 0% and 100%, not {threshold!r}")
+    if not (0.5 <= confidence < 1):
+        raise UserError(f"--confidence: must be in [0.5, 1), not {confidence!r}")
+    b, n = as_run(base), as_run(new)
+    pb, pn = b.meta.get("profile_name"), n.meta.get("profile_name")
+    if pb and pn and pb != pn:
+        raise UserError(f"{n.name}: run of profile {pn!r}, but {b.name} is of profile {pb!r}; "
+                        "compare two runs of the same profile")
+    for run in (b, n):
+        require_columns(run.points, ["lat_p50_ms"], run.name)
+    bp, np_ = with_ids(b.points), with_ids(n.points)
+    for run, pts in ((b, bp), (n, np_)):
+        if pts["point_id"].duplicated().any():
+            raise UserError(f"{run.name}: points table has duplicate point ids (corrupt run)")
+    bi, ni = bp.set_index("point_id"), np_.set_index("point_id")
+    common = [p for p in bi.index if p in ni.index]
+    unmatched = pd.DataFrame(
+        [("base only", p, bi.at[p, "label"]) for p in bi.index if p not in ni.index]
+        + [("new only", p, ni.at[p, "label"]) for p in ni.index if p not in bi.index],
+        columns=["side", "point_id", "label"])
+    sb, sn = _samples_by_id(b), _samples_by_id(n)
+    rows = [_compare_point(pid, bi.loc[pid], ni.loc[pid], sb.get(pid), sn.get(pid),
+                           threshold, confidence, seed, n_boot, fail_on_drift) for pid in common]
+    points = pd.DataFrame(rows)
+    if len(points):
+        points = points.sort_values(["regression", "ratio"], ascending=[False, False], kind="stable")
+        points = points.reset_index(drop=True)
+    else:
+        points = pd.DataFrame(columns=["point_id", "label", "verdict", "regression", "ratio"])
+    notes = []
+    if not common:
+        notes.append("no configuration appears in both runs: nothing was compared")
+    if len(points) and (points["method"] == "recorded CIs").any():
+        notes.append("some points had no raw samples; their ratio CI is built from the recorded "
+                     "CIs of the medians (conservative)")
+    if len(points) and (points["drift"] == "not recorded").all():
+        notes.append("detection drift not recorded in these runs")
+    return Comparison(points=points, env_diff=env_diff(b.meta, n.meta), unmatched=unmatched,
+                      threshold=threshold, confidence=confidence, base_name=b.name, new_name=n.name,
+                      fail_on_drift=fail_on_drift, notes=notes)
+
+
+def _samples_by_id(run: Run) -> dict:
+    s = run.samples
+    if s is None or not len(s):
+        return {}
+    require_columns(s, ["point_id", "ms"], f"{run.name} samples")
+    s = s.sort_values([c for c in ("point_id", "i") if c in s.columns])
+    return {pid: g["ms"].to_numpy(dtype=float) for pid, g in s.groupby("point_id", sort=False)}
+
+
+def _compare_point(pid, rb, rn, sb, sn, threshold, confidence, seed, n_boot, fail_on_drift) -> dict:
+    ok_b = _is_ok(rb)
+    ok_n = _is_ok(rn)
+    row = {"point_id": pid, "label": rb["label"], "base_p50_ms": _f(rb.get("lat_p50_ms")),
+           "new_p50_ms": _f(rn.get("lat_p50_ms")), "ratio": math.nan, "ci_lo": math.nan,
+           "ci_hi": math.nan, "method": "", "n_base": 0, "n_new": 0}
+    if not (ok_b and ok_n):
+        verdict = {(False, True): "failed in base", (True, False): "failed in new"}.get((ok_b, ok_n), "failed in both")
+        row.update(verdict=verdict, regression=verdict == "failed in new",
+                   mem_delta_mib=math.nan, map_delta=math.nan, map_delta_ci_lo=math.nan,
+                   map_delta_ci_hi=math.nan, accuracy="n/a", drift="n/a",
+                   stage_note=str(rn.get("reason") if not ok_n else rb.get("reason") or ""))
+        return row
+    if sb is not None and sn is not None and len(sb) >= MIN_SAMPLES and len(sn) >= MIN_SAMPLES:
+        rng = np.random.default_rng([seed, zlib.crc32(str(pid).encode())])
+        ratio, lo, hi = bootstrap_ratio(sb, sn, confidence, n_boot, rng)
+        row.update(method="bootstrap", n_base=len(sb), n_new=len(sn))
+    else:
+        ratio, lo, hi = _ratio_from_recorded(rb, rn)
+        row.update(method="recorded CIs")
+    row.update(ratio=ratio, ci_lo=lo, ci_hi=hi)
+    if not np.isfinite(lo) or not np.isfinite(hi):
+        verdict = "unknown"
+    elif lo > 1 + threshold:
+        verdict = "slower"
+    elif hi < 1 / (1 + threshold):
+        verdict = "faster"
+    else:
+        verdict = "unchanged"
+    row["verdict"] = verdict
+    row["mem_delta_mib"] = _f(rn.get("rss_peak_mib")) - _f(rb.get("rss_peak_mib"))
+    row.update(_accuracy_delta(rb, rn))
+    row["drift"] = _drift(rb, rn)
+    row.update(_stages(rb, rn))
+    row["regression"] = (verdict == "slower" or row["accuracy"] == "lower"
+                         or (fail_on_drift and row["drift"] == "changed"))
+    return row
+
+
+def _ratio_from_recorded(rb, rn):
+    """Ratio of recorded medians; interval from the extremes of their CIs (conservative)."""
+    b, n = _f(rb.get("lat_p50_ms")), _f(rn.get("lat_p50_ms"))
+    blo, bhi = _f(rb.get("lat_p50_ci_lo_ms")), _f(rb.get("lat_p50_ci_hi_ms"))
+    nlo, nhi = _f(rn.get("lat_p50_ci_lo_ms")), _f(rn.get("lat_p50_ci_hi_ms"))
+    if not all(np.isfinite([b, n, blo, bhi, nlo, nhi])) or b <= 0 or blo <= 0:
+        return (n / b if b and np.isfinite(b) and b > 0 else math.nan), math.nan, math.nan
+    return n / b, nlo / bhi, nhi / blo
+
+
+def _accuracy_delta(rb, rn) -> dict:
+    mb, mn = _f(rb.get("map")), _f(rn.get("map"))
+    if not (np.isfinite(mb) and np.isfinite(mn)):
+        return {"map_delta": math.nan, "map_delta_ci_lo": math.nan, "map_delta_ci_hi": math.nan,
+                "accuracy": "n/a"}
+    d = mn - mb
+    # Half-widths of the two CIs combined in quadrature: an approximation that treats the two
+    # runs' bootstrap intervals as independent and roughly symmetric.
+    hb = (_f(rb.get("map_ci_hi")) - _f(rb.get("map_ci_lo"))) / 2
+    hn = (_f(rn.get("map_ci_hi")) - _f(rn.get("map_ci_lo"))) / 2
+    h = math.sqrt(hb * hb + hn * hn) if np.isfinite(hb) and np.isfinite(hn) else 0.0
+    verdict = "lower" if d + h < 0 and d < -1e-12 else ("higher" if d - h > 0 else "unchanged")
+    return {"map_delta": d, "map_delta_ci_lo": d - h, "map_delta_ci_hi": d + h, "accuracy": verdict}
+
+
+def _drift(rb, rn) -> str:
+    db, dn = rb.get("det_digest"), rn.get("det_digest")
+    if not (isinstance(db, str) and db and isinstance(dn, str) and dn):
+        return "not recorded"
+    return "same" if db == dn else "changed"
+
+
+def _stages(rb, rn) -> dict:
+    """Per-stage ratios new/base, and a note naming the stage that grew the most."""
+    out, grew = {}, []
+    for s in STAGES:
+        c = f"stage_{s}_ms"
+        vb, vn = _f(rb.get(c)), _f(rn.get(c))
+        if np.isfinite(vb) and np.isfinite(vn) and vb > 0:
+            out[f"stage_{s}_ratio"] = vn / vb
+            grew.append((vn - vb, s, vn / vb))
+    note = ""
+    if grew:
+        delta, s, r = max(grew)
+        note = f"{s} {delta:+.2f} ms (x{r:.2f})" if delta > 0 else "no stage grew"
+    out["stage_note"] = note
+    return out
+
+
+def env_diff(meta_b: dict, meta_n: dict) -> pd.DataFrame:
+    """Flattened environment keys whose values differ (packages, CPU, cores, thread env...)."""
+    fb = _flatten({"host": meta_b.get("host"), **(meta_b.get("env") or {})})
+    fn = _flatten({"host": meta_n.get("host"), **(meta_n.get("env") or {})})
+    rows = [(k, _show(fb.get(k)), _show(fn.get(k))) for k in sorted(set(fb) | set(fn))
+            if fb.get(k) != fn.get(k)]
+    return pd.DataFrame(rows, columns=["key", "base", "new"])
+
+
+def _flatten(d, prefix=""):
+    out = {}
+    for k, v in (d or {}).items():
+        key = f"{prefix}{k}"
+        if isinstance(v, dict):
+            out.update(_flatten(v, key + "."))
+        elif v is not None and v != "":
+            out[key] = v
+    return out
+
+
+def _show(v):
+    return "(absent)" if v is None else str(v)
+
+
+def _is_ok(r) -> bool:
+    s = r.get("status")
+    return not isinstance(s, str) or s in ("", "ok")
+
+
+def _f(v) -> float:
+    try:
+        return float(v)
+    except (TypeError, ValueError):
+        return math.nan
+
+
+def _ms(v):
+    return "-" if not np.isfinite(_f(v)) else f"{v:.2f} ms"
+
+
+def _ratio(r):
+    if not np.isfinite(_f(r["ratio"])):
+        return "-"
+    if not np.isfinite(_f(r["ci_lo"])):
+        return f"{r['ratio']:.3f}"
+    return f"{r['ratio']:.3f} [{r['ci_lo']:.3f}, {r['ci_hi']:.3f}]"
+
+
+def _signed(v, unit, digits):
+    return "-" if not np.isfinite(_f(v)) else f"{v:+.{digits}f} {unit}"
+
+
+def _acc(r):
+    if not np.isfinite(_f(r.get("map_delta"))):
+        return "n/a"
+    return f"{r['map_delta']:+.3f} [{r['map_delta_ci_lo']:+.3f}, {r['map_delta_ci_hi']:+.3f}]"
+
+
+def _aligned(header, rows):
+    widths = [max(len(str(x)) for x in col) for col in zip(header, *rows)] if rows else [len(h) for h in header]
+    fmt = lambda cells: "  ".join(str(c).ljust(w) for c, w in zip(cells, widths)).rstrip()  # noqa: E731
+    return [fmt(header)] + [fmt(r) for r in rows]
+
+
+def _md(text) -> str:
+    """Escape for a Markdown table cell: HTML special characters and pipes."""
+    return html.escape(str(text)).replace("|", "\\|").replace("\n", " ")
+
+
+def _records(df: pd.DataFrame) -> list[dict]:
+    recs = df.to_dict("records")
+    return [{k: (None if isinstance(v, float) and not math.isfinite(v) else
+                 (v.item() if hasattr(v, "item") else v)) for k, v in r.items()} for r in recs]

@@ -1,0 +1,135 @@
+"""Choose the configuration that fits a latency budget (and optional thread/memory/accuracy limits)."""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from speedbench.analyse.common import bounds, has_accuracy, latency_col, require_columns, split_ok
+from speedbench.errors import UserError
+
+
+@dataclass
+class Pick:
+    budget_ms: float
+    latency: str                       # column used, e.g. "lat_p90_ms"
+    best: pd.Series | None             # None when nothing fits
+    margin_ms: float | None            # budget - best latency (>= 0)
+    runners_up: pd.DataFrame           # other fitting rows, best first
+    excluded: pd.DataFrame             # rows that do not fit, with `reason`
+    closest_misses: pd.DataFrame       # over budget only, smallest overshoot first
+    accuracy_available: bool = True    # False: ranked by latency only
+    notes: list[str] = field(default_factory=list)
+
+    def to_text(self) -> str:
+        stat = self.latency.removeprefix("lat_").removesuffix("_ms")
+        lines = []
+        if self.best is None:
+            lines.append(f"Nothing fits a {stat} budget of {self.budget_ms:g} ms with the given limits.")
+            if len(self.closest_misses):
+                lines.append("Closest misses:")
+                for _, r in self.closest_misses.iterrows():
+                    lines.append(f"  {r['label']}: {stat} {r[self.latency]:.2f} ms, "
+                                 f"{r['over_ms']:.2f} ms over budget{_acc(r)}")
+        else:
+            b = self.best
+            lines.append(f"Best within {stat} <= {self.budget_ms:g} ms: {b['label']}")
+            ci = f" (CI {b['_lo']:.2f}-{b['_hi']:.2f})" if b["_hi"] > b["_lo"] else " (no CI recorded)"
+            lines.append(f"  {stat} {b[self.latency]:.2f} ms{ci}, margin {self.margin_ms:.2f} ms{_acc(b)}")
+        lines.extend(f"Note: {n}" for n in self.notes)
+        if len(self.runners_up):
+            lines.append("Runners-up:")
+            for _, r in self.runners_up.head(5).iterrows():
+                lines.append(f"  {r['label']}: {stat} {r[self.latency]:.2f} ms{_acc(r)}")
+        if len(self.excluded):
+            lines.append(f"Excluded ({len(self.excluded)}):")
+            for _, r in self.excluded.iterrows():
+                lines.append(f"  {r['label']}: {r['reason']}")
+        return "\n".join(lines)
+
+
+def _acc(r) -> str:
+    m = r.get("map")
+    if m is None or pd.isna(m):
+        return ", mAP unavailable"
+    lo, hi = r.get("map_ci_lo"), r.get("map_ci_hi")
+    ci = f" (CI {lo:.3f}-{hi:.3f})" if lo is not None and pd.notna(lo) and pd.notna(hi) else ""
+    return f", mAP {m:.3f}{ci}"
+
+
+def pick(df: pd.DataFrame, budget_ms: float, latency: str = "p50", threads=None,
+         max_memory_mb=None, min_map=None) -> Pick:
+    """Best configuration whose latency statistic fits the budget.
+
+    Ranking: highest mAP first, lower latency breaking ties. When no fitting row has
+    accuracy (untrained weights) the ranking falls back to latency only, and says so.
+    A pick whose latency CI reaches past the budget is flagged: on a rerun it may not fit.
+    """
+    if budget_ms is None or not np.isfinite(budget_ms) or budget_ms <= 0:
+        raise UserError(f"--budget-ms: must be a positive number of milliseconds, not {budget_ms!r}")
+    col = latency_col(latency)
+    require_columns(df, [col], "pick")
+    ok, bad = split_ok(df)
+    v, lo, hi = bounds(ok, col) if len(ok) else (np.array([]),) * 3
+    ok["_lo"], ok["_hi"] = lo, hi
+    stat = col.removeprefix("lat_").removesuffix("_ms")
+    reasons, over = [], []
+    for k, r in enumerate(ok.to_dict("records")):
+        why = []
+        if threads is not None and int(r.get("intra_threads", -1)) != int(threads):
+            why.append(f"intra threads {r.get('intra_threads')} != {threads}")
+        if max_memory_mb is not None:
+            mem = r.get("rss_peak_mib")
+            if mem is None or pd.isna(mem):
+                why.append("peak memory not recorded")
+            elif mem > max_memory_mb:
+                why.append(f"peak memory {mem:.1f} MiB > {max_memory_mb:g} MiB")
+        if min_map is not None:
+            m = r.get("map")
+            if m is None or pd.isna(m):
+                why.append("mAP unavailable (untrained weights), --min-map cannot be checked")
+            elif m < min_map:
+                why.append(f"mAP {m:.3f} < {min_map:g}")
+        lat = v[k]
+        if np.isnan(lat):
+            why.append(f"{stat} not recorded")
+        elif lat > budget_ms:
+            why.append(f"{stat} {lat:.2f} ms > budget {budget_ms:g} ms by {lat - budget_ms:.2f} ms")
+        over.append(lat - budget_ms if not np.isnan(lat) else np.inf)
+        reasons.append("; ".join(why))
+    ok["reason"], ok["over_ms"] = reasons, over
+    fits = ok[ok["reason"] == ""].copy()
+    out_of = ok[ok["reason"] != ""]
+    excluded = pd.concat([out_of, bad]) if len(bad) else out_of
+    # Closest misses: rows that fail only on the budget, smallest overshoot first.
+    only_budget = out_of[out_of["reason"].str.count(";").eq(0) & out_of["reason"].str.contains("> budget")]
+    misses = only_budget.sort_values("over_ms").head(3)
+    notes = []
+    acc = bool(has_accuracy(fits).any()) if len(fits) else bool(has_accuracy(ok).any())
+    if len(fits):
+        fits["_acc"] = pd.to_numeric(fits["map"], errors="coerce") if "map" in fits.columns else np.nan
+        if acc:
+            fits = fits.sort_values(["_acc", col], ascending=[False, True], na_position="last")
+            if not has_accuracy(fits).all():
+                notes.append("some fitting configurations have no accuracy (untrained) and rank last")
+        else:
+            fits = fits.sort_values(col)
+            notes.append("accuracy unavailable (untrained weights): ranked by latency only, "
+                         "which says nothing about detection quality")
+        best = fits.iloc[0]
+        runners = fits.iloc[1:].drop(columns=["reason"])
+        if acc and len(runners) and "map_ci_hi" in runners.columns and pd.notna(best.get("map_ci_lo")):
+            close = runners[pd.to_numeric(runners["map_ci_hi"], errors="coerce") >= best["map_ci_lo"]]
+            if len(close):
+                notes.append(f"{len(close)} runner(s)-up have mAP within the best one's CI; "
+                             "the accuracy ranking between them is within noise")
+        if best["_hi"] > budget_ms:
+            notes.append(f"the {stat} CI of the pick reaches {best['_hi']:.2f} ms, past the budget: "
+                         "a rerun may not fit")
+        margin = float(budget_ms - best[col])
+    else:
+        best, margin, runners = None, None, fits
+    return Pick(budget_ms=float(budget_ms), latency=col, best=best, margin_ms=margin,
+                runners_up=runners, excluded=excluded.reset_index(drop=True),
+                closest_misses=misses.reset_index(drop=True), accuracy_available=acc, notes=notes)

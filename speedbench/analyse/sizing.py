@@ -1,0 +1,268 @@
+"""Server sizing: how many servers of which shape carry S streams at F frames/s.
+
+The inputs are throughput rows written by ``speedbench load`` (speedbench.measure.load):
+for a configuration measured with K concurrent workers of T threads each, ``tput_fps`` is
+the aggregate frames/s on ``cores_used = K x T`` cores and ``tput_p99_ms`` the per-request
+p99 under that load.
+
+The model, stated so that nobody mistakes it for a measurement:
+
+- per-core throughput = tput_fps / cores_used at the *largest* measured K x T of the
+  configuration. That point carries the most contention (threads, memory bandwidth, caches)
+  we saw, so it is the conservative one; the K = 1 figure would overstate a full server.
+- up to the measured core count this is measured. Beyond it throughput is assumed to grow
+  linearly in cores at that last measured per-core rate (i.e. at the last measured scaling
+  efficiency). Every row of a server shape larger than the measured core count says so in
+  ``assumption`` and has ``extrapolated=True``.
+- a server of C cores runs floor(C / T) workers; servers = ceil(required / (capacity per
+  server x headroom)), which is ceil(cores_needed / C) when T divides C.
+- expected p99 = the under-load p99 measured at the utilisation nearest to the deployed one
+  (measured utilisation = cores_used / cores of the measuring host). The measurement is closed
+  loop (a worker sends its next frame when the last one returns), so it contains contention but
+  no queueing: cameras arrive on their own clock, and as utilisation nears 1 queueing delay adds
+  to this figure. Rows beyond the highest measured utilisation are flagged.
+
+Textbook operational laws the output satisfies (checked in tests/test_sizing.py):
+utilisation law U = X S (S = 1 / per-core fps core-seconds per frame, X = required fps,
+divided by the provisioned cores) and Little's law L = lambda W (``in_flight`` = frames being
+processed on average across the fleet).
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pandas as pd
+
+from speedbench.errors import UserError
+from speedbench.schema import CONFIG_COLUMNS
+
+# Columns a throughput (load) row carries on top of a point row.
+THROUGHPUT_COLUMNS = ("tput_fps", "tput_p50_ms", "tput_p90_ms", "tput_p99_ms", "tput_mean_ms",
+                      "scaling_eff", "littles_L", "cores_used", "host_cores")
+
+# A configuration is everything that identifies a point except how many copies run at once.
+CONFIG_KEY = tuple(c for c in CONFIG_COLUMNS if c != "concurrency")
+
+SIZE_COLUMNS = [
+    "label", "model", "size", "proposals", "backend", "intra_threads", "map", "frontier_status",
+    "required_fps", "per_core_fps", "measured_cores", "scaling_eff", "cores_needed",
+    "server_cores", "workers_per_server", "servers", "provisioned_cores", "capacity_fps",
+    "utilisation", "in_flight", "expected_p99_ms", "p99_at_util", "p99_beyond_measured",
+    "meets_p99", "cost_per_mframe", "extrapolated", "assumption", "p99_note",
+]
+
+
+def size(df: pd.DataFrame, streams, fps, p99_ms=None, server_cores=(8, 16, 32, 64), headroom=0.7,
+         core_hour_cost=None, use_frontier: bool = True) -> pd.DataFrame:
+    """Servers needed for ``streams`` x ``fps`` frames/s, one row per (configuration, server shape).
+
+    df: a run's points table (speedbench.load_run) holding throughput rows (tput_fps ...).
+    use_frontier: size only the configurations on the throughput-vs-accuracy frontier
+    (per-core fps maximised, mAP maximised; ties within noise are kept); False sizes all.
+    Configurations left out and why are in ``result.attrs["excluded"]``.
+    Columns: see SIZE_COLUMNS; cost_per_mframe is NaN without core_hour_cost.
+    """
+    streams, fps, p99_ms, shapes, headroom, core_hour_cost = _check_args(
+        streams, fps, p99_ms, server_cores, headroom, core_hour_cost)
+    required = streams * fps
+    configs, excluded = scaling_summary(df)
+    if use_frontier:
+        configs = _frontier(configs)
+    if configs.empty:
+        raise UserError("size: the frontier is empty (no configuration with throughput data survived)")
+    rows = []
+    for cfg in configs.to_dict("records"):
+        for shape in shapes:
+            rows.append(_size_one(cfg, shape, required, p99_ms, headroom, core_hour_cost))
+    out = pd.DataFrame(rows, columns=SIZE_COLUMNS)
+    out.attrs["excluded"] = excluded
+    out.attrs["required_fps"] = required
+    out.attrs["headroom"] = headroom
+    return out
+
+
+def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """One row per configuration with throughput data at K = 1: (configs, excluded).
+
+    configs carry the basis of the sizing model (per_core_fps, measured_cores, scaling_eff
+    recomputed here as X(K) / (K X(1)) from the rows themselves) plus ``curve``: a list of
+    (utilisation on the measuring host, p99 ms, mean ms) per measured K, for the p99 lookup.
+    """
+    if df is None or len(df) == 0:
+        raise UserError("size: the run has no points")
+    if "tput_fps" not in df.columns or pd.to_numeric(df["tput_fps"], errors="coerce").notna().sum() == 0:
+        raise UserError("size: the run has no throughput data (tput_fps); "
+                        "measure it first with `speedbench load RUN -k 1,2`")
+    df = df.copy()
+    for col in CONFIG_KEY:
+        if col not in df.columns:
+            df[col] = "" if col in ("model", "weights", "backend", "exec_mode", "opt_level") else 0
+    if "status" in df.columns:
+        df = df[df["status"].fillna("ok").astype(str) == "ok"]
+    for col in ("tput_fps", "tput_p99_ms", "tput_mean_ms", "cores_used", "concurrency",
+                "intra_threads", "host_cores"):
+        df[col] = pd.to_numeric(df[col], errors="coerce") if col in df.columns else np.nan
+    df["concurrency"] = df["concurrency"].fillna(1)
+    # cores_used = K x T; rebuild it for rows that lack it.
+    df["cores_used"] = df["cores_used"].fillna(df["concurrency"] * df["intra_threads"].fillna(1).clip(lower=1))
+    key = list(CONFIG_KEY) + (["host"] if "host" in df.columns else [])
+    configs, excluded = [], []
+    for _, group in df.groupby(key, dropna=False, sort=False):
+        measured = group[group["tput_fps"].notna() & (group["tput_fps"] > 0)]
+        first = group.iloc[0]
+        if measured.empty:
+            continue  # a latency-only point; nothing to size
+        base = measured[measured["concurrency"] == 1]
+        if base.empty:
+            excluded.append({**_ident(first), "reason": "no throughput measured at K=1"})
+            continue
+        x1 = float(base["tput_fps"].iloc[0])
+        measured = measured.sort_values(["cores_used", "concurrency"], kind="stable")
+        host_cores = measured["host_cores"].max()
+        if not np.isfinite(host_cores) or host_cores <= 0:
+            host_cores = measured["cores_used"].max()  # unknown host: assume the largest load filled it
+        curve = [(float(r.cores_used) / host_cores, float(r.tput_p99_ms), float(r.tput_mean_ms),
+                  int(r.concurrency)) for r in measured.itertuples()]
+        top = measured.iloc[-1]
+        k_top = int(top["concurrency"])
+        maps = pd.to_numeric(group["map"], errors="coerce") if "map" in group.columns else None
+        acc_src = group[maps.notna()].iloc[0] if maps is not None and maps.notna().any() else base.iloc[0]
+        configs.append({
+            **_ident(base.iloc[0]),
+            **{c: acc_src.get(c, np.nan) for c in ("map", "map_ci_lo", "map_ci_hi")},
+            "point_id": base.iloc[0].get("point_id", ""),
+            "per_core_fps": float(top["tput_fps"]) / float(top["cores_used"]),
+            "measured_cores": int(top["cores_used"]),
+            "measured_k": k_top,
+            "scaling_eff": float(top["tput_fps"]) / (k_top * x1),
+            "x1_fps": x1,
+            "host_cores": float(host_cores),
+            "curve": curve,
+        })
+    cols = [*_IDENT, "map", "map_ci_lo", "map_ci_hi", "point_id", "per_core_fps", "measured_cores",
+            "measured_k", "scaling_eff", "x1_fps", "host_cores", "curve"]
+    return pd.DataFrame(configs, columns=cols), pd.DataFrame(excluded, columns=[*_IDENT, "reason"])
+
+
+_IDENT = ("label", *CONFIG_KEY)
+
+
+def _ident(row) -> dict:
+    from speedbench.analyse.common import label
+
+    out = {c: row.get(c) for c in CONFIG_KEY}
+    if "host" in row.index:
+        out["host"] = row.get("host")
+    out["label"] = label({**out, "concurrency": 1})
+    return out
+
+
+def _frontier(configs: pd.DataFrame) -> pd.DataFrame:
+    """Keep configurations on the (per-core fps, mAP) frontier, ties within noise included."""
+    if configs.empty:
+        return configs
+    try:
+        from speedbench.analyse.frontier import frontier
+    except ImportError:  # frontier module not available: size every configuration
+        return configs.assign(frontier_status="not computed")
+    marked = frontier(configs.drop(columns=["curve"]), x="per_core_fps", y="map", minimize_x=False)
+    keep = marked[marked["frontier_status"].isin(["frontier", "tied"])]
+    status = dict(zip(keep["point_id"], keep["frontier_status"]))
+    out = configs[configs["point_id"].isin(status)].copy()
+    out["frontier_status"] = out["point_id"].map(status)
+    return out
+
+
+def _size_one(cfg: dict, shape: int, required: float, p99_ms, headroom: float, cost) -> dict:
+    threads = max(int(cfg["intra_threads"] or 1), 1)
+    per_core = cfg["per_core_fps"]
+    measured_cores = cfg["measured_cores"]
+    cores_needed = required / (per_core * headroom)
+    workers = shape // threads
+    row = {k: cfg.get(k) for k in ("label", "model", "size", "proposals", "backend", "intra_threads",
+                                   "map", "frontier_status", "per_core_fps", "measured_cores", "scaling_eff")}
+    row.update(required_fps=required, cores_needed=cores_needed, server_cores=shape,
+               workers_per_server=workers, extrapolated=shape > measured_cores)
+    if workers == 0:
+        row.update(servers=np.nan, provisioned_cores=np.nan, capacity_fps=np.nan, utilisation=np.nan,
+                   in_flight=np.nan, expected_p99_ms=np.nan, p99_at_util=np.nan, p99_beyond_measured=True,
+                   meets_p99=False if p99_ms is not None else None, cost_per_mframe=np.nan,
+                   assumption=f"a {shape}-core server cannot host one worker of {threads} threads",
+                   p99_note="")
+        return row
+    per_server = workers * threads * per_core
+    servers = math.ceil(required / (per_server * headroom) - 1e-9)
+    capacity = servers * per_server
+    util = required / capacity
+    p99, at_util, mean_ms, beyond = _p99_at(cfg["curve"], util)
+    provisioned = servers * shape
+    row.update(
+        servers=servers, provisioned_cores=provisioned, capacity_fps=capacity, utilisation=util,
+        # Little's law L = lambda W: frames in flight across the fleet on average.
+        in_flight=required * mean_ms / 1000.0,
+        expected_p99_ms=p99, p99_at_util=at_util, p99_beyond_measured=beyond,
+        meets_p99=None if p99_ms is None else bool(p99 <= p99_ms),
+        cost_per_mframe=np.nan if cost is None else cost * provisioned / (required * 3600.0) * 1e6,
+        assumption=_assumption(cfg, shape),
+        p99_note=(f"closed-loop p99 at utilisation {at_util:.2f} (no queueing)"
+                  + ("; deployed utilisation is beyond the highest measured" if beyond else "")),
+    )
+    return row
+
+
+def _p99_at(curve, util: float):
+    """(p99, utilisation it was measured at, mean ms there, beyond the measured range?)."""
+    best = min(curve, key=lambda c: (abs(c[0] - util), -c[0]))
+    top = max(c[0] for c in curve)
+    return best[1], best[0], best[2], bool(util > top + 1e-9)
+
+
+def _assumption(cfg: dict, shape: int) -> str:
+    mc = cfg["measured_cores"]
+    basis = (f"{cfg['per_core_fps']:.3g} fps/core measured at K={cfg['measured_k']} x "
+             f"T={int(cfg['intra_threads'] or 1)} ({mc} cores, scaling efficiency {cfg['scaling_eff']:.2f})")
+    if shape <= mc:
+        return f"measured: {basis}"
+    return (f"extrapolated: throughput assumed linear in cores beyond the measured {mc} cores at "
+            f"{basis}; memory bandwidth and cache contention on a {shape}-core host may lower it")
+
+
+def _check_args(streams, fps, p99_ms, server_cores, headroom, cost):
+    def number(name, value):
+        try:
+            v = float(value)
+        except (TypeError, ValueError):
+            raise UserError(f"{name}: must be a number, got {value!r}") from None
+        if not math.isfinite(v):
+            raise UserError(f"{name}: must be finite, got {value!r}")
+        return v
+
+    s = number("streams (--streams)", streams)
+    if s <= 0 or s != int(s):
+        raise UserError(f"streams (--streams): must be a whole number > 0, got {streams!r}")
+    f = number("fps (--fps)", fps)
+    if f <= 0:
+        raise UserError(f"fps (--fps): must be > 0, got {fps!r}")
+    if p99_ms is not None:
+        p99_ms = number("p99_ms (--p99-ms)", p99_ms)
+        if p99_ms <= 0:
+            raise UserError(f"p99_ms (--p99-ms): must be > 0, got {p99_ms!r}")
+    if isinstance(server_cores, (int, float, str)):
+        server_cores = [server_cores]
+    shapes = []
+    for c in server_cores or ():
+        v = number("server_cores (--server-cores)", c)
+        if v <= 0 or v != int(v):
+            raise UserError(f"server_cores (--server-cores): each must be a whole number > 0, got {c!r}")
+        shapes.append(int(v))
+    if not shapes:
+        raise UserError("server_cores (--server-cores): give at least one server core count")
+    h = number("headroom (--headroom)", headroom)
+    if not 0 < h <= 1:
+        raise UserError(f"headroom (--headroom): must be in (0, 1], got {headroom!r}")
+    if cost is not None:
+        cost = number("core_hour_cost (--core-hour-cost)", cost)
+        if cost < 0:
+            raise UserError(f"core_hour_cost (--core-hour-cost): must be >= 0, got {cost!r}")
+    return int(s), f, p99_ms, sorted(set(shapes)), h, cost
