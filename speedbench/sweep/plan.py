@@ -1,0 +1,214 @@
+"""Plan: a profile expanded into the exact list of points to measure.
+
+Expansion is the cross product models x sizes x proposals x backends x
+opt_levels x threads x concurrency, after mapping the values that do not apply
+to a combination (so two combinations that mean the same measurement become one
+point), and skipping the ones that cannot be measured here. Every mapping or
+skip leaves a note; none is an error.
+"""
+from __future__ import annotations
+
+import os
+from collections import Counter
+from dataclasses import dataclass, field
+
+from speedbench import schema
+from speedbench.errors import UserError
+from speedbench.sweep.profile import Profile
+
+# Rough costs for the dry-run estimate, measured on the 2-core development
+# machine (a fresh worker imports torch + onnxruntime; a small detector exports
+# in ~10-30 s). Rules of thumb, not promises: the estimate says so when printed.
+WORKER_START_S = 5.0
+EXPORT_S = 25.0
+EVAL_S_PER_IMAGE = 0.25
+DEFAULT_MAX_SECONDS = 10.0   # used when the profile does not set repetitions.max_seconds
+
+
+@dataclass(frozen=True)
+class PlannedPoint:
+    config: dict                 # values of speedbench.schema.CONFIG_COLUMNS
+    point_id: str
+    family: str
+    graph_key: tuple             # (model, weights, size, proposals): one export + one accuracy run
+    notes: tuple = ()            # per-point notes (mappings applied to this point)
+
+    @property
+    def label(self) -> str:
+        c = self.config
+        text = f"{c['model']} {c['size']}px"
+        if c["proposals"]:
+            text += f" p{c['proposals']}"
+        text += f" {c['backend']} t{c['intra_threads']}"
+        if c["exec_mode"] == "parallel":
+            text += f"/{c['inter_threads']}par"
+        if c["affinity"]:
+            text += f" pin{c['affinity']}"
+        if c["concurrency"] > 1:
+            text += f" K{c['concurrency']}"
+        return text
+
+
+@dataclass
+class Plan:
+    points: list[PlannedPoint]
+    notes: list[str] = field(default_factory=list)   # plan-level notes (mappings, skips, merges)
+
+    @property
+    def graphs(self) -> list[tuple]:
+        seen = []
+        for p in self.points:
+            if p.graph_key not in seen:
+                seen.append(p.graph_key)
+        return seen
+
+    def missing(self, done_ids) -> list[PlannedPoint]:
+        done = set(done_ids)
+        return [p for p in self.points if p.point_id not in done]
+
+
+def _zoo_lookup(model_id: str):
+    from speedbench import zoo
+
+    return zoo.get_spec(model_id)
+
+
+def _cores_allowed() -> int:
+    try:
+        return len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        return os.cpu_count() or 1
+
+
+def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool | None = None,
+                cores: int | None = None) -> Plan:
+    """Expand `profile` into a Plan.
+
+    get_spec(model_id) -> ModelSpec (default: the zoo); an unknown id is a
+    UserError naming models[i].id. concurrency_supported: whether the measure
+    package can run K > 1 concurrent streams (default: ask it). cores: cores
+    this process may use (default: the affinity mask), for skipping pins that
+    cannot be honoured.
+    """
+    get_spec = get_spec or _zoo_lookup
+    if concurrency_supported is None:
+        concurrency_supported = _measure_supports_concurrency()
+    cores = cores or _cores_allowed()
+    notes: Counter = Counter()
+    points: dict[str, PlannedPoint] = {}
+    merged = 0
+
+    for mi, entry in enumerate(profile.models):
+        try:
+            spec = get_spec(entry.id)
+        except UserError as exc:
+            raise UserError(f"{profile.source}: models[{mi}].id: {exc}") from None
+        except KeyError:
+            raise UserError(f"{profile.source}: models[{mi}].id: unknown model {entry.id!r} "
+                            f"(list them with `speedbench models`)") from None
+        sizes = _dedupe(spec.native_size if s == "native" else s for s in (entry.sizes or profile.sizes))
+        wanted = entry.proposals or profile.proposals
+        if spec.default_proposals == 0:
+            if any(p != "default" for p in wanted):
+                notes[f"{entry.id}: has no proposal knob; proposals {', '.join(map(str, wanted))} "
+                      f"measured once as 0"] += 1
+            proposals, prop_note = [0], ("proposals mapped to 0: model has no proposal knob",)
+        else:
+            proposals = _dedupe(spec.default_proposals if p == "default" else p for p in wanted)
+            prop_note = ()
+        for size in sizes:
+            for prop in proposals:
+                for backend in profile.backends:
+                    for opt in profile.opt_levels:
+                        for t in profile.threads:
+                            for k in profile.concurrency:
+                                got = _one_point(profile, entry, spec, size, prop, backend, opt, t, k,
+                                                 cores, concurrency_supported, notes)
+                                if got is None:
+                                    continue
+                                config, point_notes = got
+                                pid = schema.point_id(config)
+                                if pid in points:
+                                    merged += 1
+                                    continue
+                                points[pid] = PlannedPoint(
+                                    config=config, point_id=pid, family=spec.family,
+                                    graph_key=(entry.id, entry.weights, size, prop),
+                                    notes=prop_note + point_notes)
+    if merged:
+        notes[f"{merged} combination(s) mapped onto points already planned (measured once)"] += 1
+    plan_notes = [n if c == 1 or n.startswith(tuple("0123456789")) else f"{n} (x{c})"
+                  for n, c in notes.items()]
+    return Plan(points=list(points.values()), notes=plan_notes)
+
+
+def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, concurrency_supported, notes):
+    point_notes = []
+    mode, inter = t.mode, t.inter
+    if backend == "eager":
+        # PyTorch eager has no ORT execution mode or graph optimisation level.
+        if opt != profile.opt_levels[0]:
+            notes["eager backend: opt_levels do not apply; measured once"] += 1
+        opt, mode = "", ""
+    elif mode == "sequential" and inter != 1:
+        # ORT uses its inter-op pool only in parallel execution mode.
+        notes[f"threads inter={inter} has no effect in sequential mode; measured as inter=1"] += 1
+        inter = 1
+        point_notes.append("inter_threads mapped to 1 (sequential mode)")
+    if t.affinity > cores:
+        notes[f"skipped affinity={t.affinity}: only {cores} core(s) available here"] += 1
+        return None
+    if k > 1 and not concurrency_supported:
+        notes[f"skipped concurrency={k}: throughput points are not supported by the measure package yet"] += 1
+        return None
+    if k > 1 and k * max(t.intra, 1) > cores:
+        notes[f"concurrency={k} x intra={t.intra} oversubscribes {cores} core(s) (kept)"] += 1
+    config = {
+        "model": entry.id, "weights": entry.weights, "size": int(size), "proposals": int(prop),
+        "backend": backend, "intra_threads": t.intra, "inter_threads": inter, "exec_mode": mode,
+        "opt_level": opt, "affinity": t.affinity, "concurrency": k,
+    }
+    return config, tuple(point_notes)
+
+
+def _dedupe(values) -> list:
+    out = []
+    for v in values:
+        if v not in out:
+            out.append(v)
+    return out
+
+
+def _measure_supports_concurrency() -> bool:
+    try:
+        from speedbench import measure
+    except ImportError:
+        return False
+    return bool(getattr(measure, "SUPPORTS_CONCURRENCY", False))
+
+
+def estimate_seconds(plan: Plan, profile: Profile, done_ids=(), n_images: int | None = None,
+                     cached_graphs=()) -> dict:
+    """Rough wall-time estimate for the points still to measure (a rule of thumb).
+
+    Per point: a worker start plus the repetition budget; per distinct graph
+    still needed: one export and one accuracy pass over the dataset.
+    """
+    todo = plan.missing(done_ids)
+    budget = profile.repetitions.get("max_seconds", DEFAULT_MAX_SECONDS)
+    measure_s = len(todo) * (WORKER_START_S + budget)
+    graphs = []
+    for p in todo:
+        if p.graph_key not in graphs and p.config["backend"] != "synthetic":
+            graphs.append(p.graph_key)
+    graphs = [g for g in graphs if g not in set(cached_graphs)]
+    if n_images is None:
+        n_images = profile.scenes_count or 50
+    if profile.limit:
+        n_images = min(n_images, profile.limit)
+    evals = [g for g in graphs if g[1] != "none"] if profile.accuracy else []
+    export_s = len(graphs) * EXPORT_S
+    eval_s = len(evals) * n_images * EVAL_S_PER_IMAGE
+    return {"points": len(todo), "graphs": len(graphs), "evaluations": len(evals),
+            "measure_s": measure_s, "export_s": export_s, "eval_s": eval_s,
+            "total_s": measure_s + export_s + eval_s}

@@ -1,0 +1,341 @@
+"""Sweep profiles: a TOML file saying what to measure, validated strictly.
+
+Every key (the shipped profiles under profiles/ carry the same text as comments)::
+
+    [run]
+    name       = "cpu-budget"     # required; names the run
+    host       = ""               # label for this machine in reports; "" = hostname
+    output     = "runs/{name}"    # run directory; {name} and {host} are filled in
+    cache      = ".speedbench-cache"  # exported graphs + accuracy results, shared across runs
+    timeout_s  = 600              # per point (worker process), seconds, 1..86400
+
+    [dataset]                     # exactly one of `path` or `scenes`
+    path       = "data/val"       # COCO-style JSON file, or a Pascal VOC directory
+    scenes     = {count = 40, seed = 0}   # generated scenes (speedbench.data.make_scenes)
+    accuracy   = true             # evaluate mAP once per distinct graph
+    limit      = 0                # images used for mAP; 0 = all
+    timing_images = 8             # images cycled during latency measurement, >= 1
+
+    [sweep]                       # the global axes; each a non-empty list
+    sizes       = [320, 512]      # input sizes (px, 32..4096) or "native"
+    proposals   = ["default"]     # proposal budgets (1..10000) or "default"
+    backends    = ["ort"]         # "ort", "eager" (or "synthetic", a test harness backend)
+    opt_levels  = ["all"]         # ORT graph optimisation: "disable", "basic", "extended", "all"
+    concurrency = [1]             # K concurrent streams (throughput points when K > 1)
+
+    [[models]]                    # one table per model, at least one
+    id        = "ssdlite320_mobilenet_v3_large"   # zoo id (speedbench models)
+    weights   = "none"            # "none" (untrained: latency only), "torchvision",
+                                  # "demo", or "file:PATH" (local checkpoint)
+    sizes     = [320]             # optional: replaces [sweep].sizes for this model
+    proposals = [100]             # optional: replaces [sweep].proposals for this model
+
+    [[threads]]                   # one table per thread setting, at least one
+    intra    = 2                  # intra-op threads, 0..256 (0 = library default)
+    inter    = 1                  # inter-op threads, 0..256 (used by ORT in parallel mode)
+    mode     = "sequential"       # ORT execution mode: "sequential" or "parallel"
+    affinity = 0                  # pin the worker to this many cores; 0 = not pinned
+
+    [repetitions]                 # how long each point is measured
+    warmup_min  = 3               # warm-up runs at least, >= 0
+    warmup_max  = 50              # warm-up runs at most (warm-up ends once latency settles)
+    min_reps    = 10              # timed runs at least, >= 1
+    max_reps    = 200             # timed runs at most, >= min_reps
+    max_seconds = 20.0            # stop timing after this long, > 0
+    rel_ci      = 0.05            # stop once the p50's CI half-width / p50 is below this, (0, 1)
+    stages      = true            # also run a few profiled passes for per-stage times
+
+    [synthetic]                   # settings of the "synthetic" test backend (no model is run),
+    delay_ms = 5.0                # passed through to speedbench.measure as the point's options
+
+Relative paths are taken from the current directory. Errors are one line:
+``<file>: <key path>: <what is wrong>``.
+"""
+from __future__ import annotations
+
+import socket
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from speedbench.errors import UserError
+
+BACKENDS = ("ort", "eager", "synthetic")
+OPT_LEVELS = ("disable", "basic", "extended", "all")
+EXEC_MODES = ("sequential", "parallel")
+
+
+@dataclass(frozen=True)
+class ModelEntry:
+    id: str
+    weights: str = "none"
+    sizes: tuple | None = None        # None = use [sweep].sizes
+    proposals: tuple | None = None    # None = use [sweep].proposals
+
+
+@dataclass(frozen=True)
+class ThreadSetting:
+    intra: int
+    inter: int = 1
+    mode: str = "sequential"
+    affinity: int = 0
+
+
+@dataclass
+class Profile:
+    source: str                       # file name (for messages)
+    text: str                         # verbatim TOML (copied into the run directory)
+    name: str
+    host: str
+    output: str
+    cache: str
+    timeout_s: float
+    dataset_path: str | None
+    scenes_count: int
+    scenes_seed: int
+    accuracy: bool
+    limit: int
+    timing_images: int
+    models: tuple[ModelEntry, ...]
+    sizes: tuple
+    proposals: tuple
+    backends: tuple[str, ...]
+    opt_levels: tuple[str, ...]
+    concurrency: tuple[int, ...]
+    threads: tuple[ThreadSetting, ...]
+    repetitions: dict = field(default_factory=dict)   # speedbench.measure.Policy fields
+    synthetic: dict = field(default_factory=dict)     # options of the synthetic test backend
+
+    def output_dir(self) -> Path:
+        return Path(self.output.format(name=self.name, host=self.host))
+
+
+# ----------------------------------------------------------------- checking helpers
+class _Checker:
+    def __init__(self, source: str):
+        self.source = source
+
+    def fail(self, keypath: str, message: str):
+        raise UserError(f"{self.source}: {keypath}: {message}")
+
+    def table(self, value, keypath: str, allowed: set[str], required: set[str] = frozenset()) -> dict:
+        if not isinstance(value, dict):
+            self.fail(keypath, f"expected a table, got {_kind(value)}")
+        for key in value:
+            if key not in allowed:
+                self.fail(f"{keypath}.{key}" if keypath else key,
+                          f"unknown key (allowed: {', '.join(sorted(allowed))})")
+        for key in sorted(required):
+            if key not in value:
+                self.fail(f"{keypath}.{key}" if keypath else key, "missing required key")
+        return value
+
+    def int_(self, value, keypath: str, lo: int, hi: int) -> int:
+        if isinstance(value, bool) or not isinstance(value, int):
+            self.fail(keypath, f"expected an integer, got {_kind(value)}")
+        if not lo <= value <= hi:
+            self.fail(keypath, f"{value} is out of range {lo}..{hi}")
+        return value
+
+    def num(self, value, keypath: str, lo: float, hi: float, open_lo=False, open_hi=False) -> float:
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            self.fail(keypath, f"expected a number, got {_kind(value)}")
+        bad = value < lo or value > hi or (open_lo and value == lo) or (open_hi and value == hi)
+        if bad or value != value:
+            lo_s = f"({lo}" if open_lo else f"[{lo}"
+            hi_s = f"{hi})" if open_hi else f"{hi}]"
+            self.fail(keypath, f"{value} is out of range {lo_s}, {hi_s}")
+        return float(value)
+
+    def str_(self, value, keypath: str, choices=None, allow_empty=True) -> str:
+        if not isinstance(value, str):
+            self.fail(keypath, f"expected a string, got {_kind(value)}")
+        if choices is not None and value not in choices:
+            self.fail(keypath, f"{value!r} is not one of {', '.join(choices)}")
+        if not allow_empty and not value.strip():
+            self.fail(keypath, "must not be empty")
+        return value
+
+    def bool_(self, value, keypath: str) -> bool:
+        if not isinstance(value, bool):
+            self.fail(keypath, f"expected true or false, got {_kind(value)}")
+        return value
+
+    def list_(self, value, keypath: str, item, unique=True) -> tuple:
+        if not isinstance(value, list):
+            self.fail(keypath, f"expected a list, got {_kind(value)}")
+        if not value:
+            self.fail(keypath, "must not be empty")
+        out = tuple(item(v, f"{keypath}[{i}]") for i, v in enumerate(value))
+        if unique and len(set(out)) != len(out):
+            dup = next(v for v in out if out.count(v) > 1)
+            self.fail(keypath, f"lists {dup!r} more than once")
+        return out
+
+
+def _kind(value) -> str:
+    return {bool: "a boolean", int: "an integer", float: "a number", str: "a string",
+            list: "a list", dict: "a table"}.get(type(value), type(value).__name__)
+
+
+# ----------------------------------------------------------------- parsing
+def load_profile(path) -> Profile:
+    path = Path(path)
+    try:
+        text = path.read_text()
+    except FileNotFoundError:
+        raise UserError(f"{path}: profile not found") from None
+    except IsADirectoryError:
+        raise UserError(f"{path}: is a directory, not a profile file") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise UserError(f"{path}: cannot read profile ({exc})") from None
+    return parse_profile(text, str(path))
+
+
+def parse_profile(text: str, source: str = "<profile>") -> Profile:
+    """Validate a profile's TOML text; any problem is a one-line UserError naming the key path."""
+    try:
+        doc = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise UserError(f"{source}: TOML syntax error: {exc}") from None
+    c = _Checker(source)
+    c.table(doc, "", {"run", "dataset", "sweep", "models", "threads", "repetitions", "synthetic"},
+            {"run", "dataset", "models", "threads"})
+
+    run = c.table(doc["run"], "run", {"name", "host", "output", "cache", "timeout_s"}, {"name"})
+    name = c.str_(run["name"], "run.name", allow_empty=False)
+    if any(ch in name for ch in "/\\\0"):
+        c.fail("run.name", "must not contain path separators")
+    host = c.str_(run.get("host", ""), "run.host") or socket.gethostname()
+    output = c.str_(run.get("output", "runs/{name}"), "run.output", allow_empty=False)
+    try:
+        output.format(name=name, host=host)
+    except (KeyError, IndexError, ValueError):
+        c.fail("run.output", "only {name} and {host} may be filled in")
+    cache = c.str_(run.get("cache", ".speedbench-cache"), "run.cache", allow_empty=False)
+    timeout_s = c.num(run.get("timeout_s", 600), "run.timeout_s", 1, 86400)
+
+    ds = c.table(doc["dataset"], "dataset", {"path", "scenes", "accuracy", "limit", "timing_images"})
+    if ("path" in ds) == ("scenes" in ds):
+        c.fail("dataset", "give exactly one of `path` or `scenes`")
+    dataset_path, count, seed = None, 0, 0
+    if "path" in ds:
+        dataset_path = c.str_(ds["path"], "dataset.path", allow_empty=False)
+    else:
+        sc = c.table(ds["scenes"], "dataset.scenes", {"count", "seed"}, {"count"})
+        count = c.int_(sc["count"], "dataset.scenes.count", 1, 100_000)
+        seed = c.int_(sc.get("seed", 0), "dataset.scenes.seed", 0, 2**31 - 1)
+    accuracy = c.bool_(ds.get("accuracy", True), "dataset.accuracy")
+    limit = c.int_(ds.get("limit", 0), "dataset.limit", 0, 1_000_000)
+    timing_images = c.int_(ds.get("timing_images", 8), "dataset.timing_images", 1, 10_000)
+
+    sw = c.table(doc.get("sweep", {}), "sweep", {"sizes", "proposals", "backends", "opt_levels", "concurrency"})
+    sizes = c.list_(sw.get("sizes", ["native"]), "sweep.sizes", lambda v, k: _size(c, v, k))
+    proposals = c.list_(sw.get("proposals", ["default"]), "sweep.proposals", lambda v, k: _proposal(c, v, k))
+    backends = c.list_(sw.get("backends", ["ort"]), "sweep.backends", lambda v, k: c.str_(v, k, BACKENDS))
+    opt_levels = c.list_(sw.get("opt_levels", ["all"]), "sweep.opt_levels",
+                         lambda v, k: c.str_(v, k, OPT_LEVELS))
+    concurrency = c.list_(sw.get("concurrency", [1]), "sweep.concurrency", lambda v, k: c.int_(v, k, 1, 256))
+
+    if not isinstance(doc["models"], list):
+        c.fail("models", "expected one or more [[models]] tables")
+    if not doc["models"]:
+        c.fail("models", "must not be empty")
+    models = []
+    for i, m in enumerate(doc["models"]):
+        kp = f"models[{i}]"
+        c.table(m, kp, {"id", "weights", "sizes", "proposals"}, {"id"})
+        entry = ModelEntry(
+            id=c.str_(m["id"], f"{kp}.id", allow_empty=False),
+            weights=_weights(c, m.get("weights", "none"), f"{kp}.weights"),
+            sizes=c.list_(m["sizes"], f"{kp}.sizes", lambda v, k: _size(c, v, k)) if "sizes" in m else None,
+            proposals=(c.list_(m["proposals"], f"{kp}.proposals", lambda v, k: _proposal(c, v, k))
+                       if "proposals" in m else None),
+        )
+        if any((e.id, e.weights) == (entry.id, entry.weights) for e in models):
+            c.fail(kp, f"model {entry.id!r} with weights {entry.weights!r} is listed twice")
+        models.append(entry)
+
+    if not isinstance(doc["threads"], list):
+        c.fail("threads", "expected one or more [[threads]] tables")
+    if not doc["threads"]:
+        c.fail("threads", "must not be empty")
+    threads = []
+    for i, t in enumerate(doc["threads"]):
+        kp = f"threads[{i}]"
+        c.table(t, kp, {"intra", "inter", "mode", "affinity"}, {"intra"})
+        setting = ThreadSetting(
+            intra=c.int_(t["intra"], f"{kp}.intra", 0, 256),
+            inter=c.int_(t.get("inter", 1), f"{kp}.inter", 0, 256),
+            mode=c.str_(t.get("mode", "sequential"), f"{kp}.mode", EXEC_MODES),
+            affinity=c.int_(t.get("affinity", 0), f"{kp}.affinity", 0, 1024),
+        )
+        if setting in threads:
+            c.fail(kp, "same thread setting listed twice")
+        threads.append(setting)
+
+    rep = c.table(doc.get("repetitions", {}), "repetitions",
+                  {"warmup_min", "warmup_max", "min_reps", "max_reps", "max_seconds", "rel_ci", "stages"})
+    repetitions = {}
+    if "warmup_min" in rep:
+        repetitions["warmup_min"] = c.int_(rep["warmup_min"], "repetitions.warmup_min", 0, 10_000)
+    if "warmup_max" in rep:
+        repetitions["warmup_max"] = c.int_(rep["warmup_max"], "repetitions.warmup_max", 0, 100_000)
+    if "stages" in rep:
+        repetitions["profile_stages"] = c.bool_(rep["stages"], "repetitions.stages")
+    if "min_reps" in rep:
+        repetitions["min_reps"] = c.int_(rep["min_reps"], "repetitions.min_reps", 1, 1_000_000)
+    if "max_reps" in rep:
+        repetitions["max_reps"] = c.int_(rep["max_reps"], "repetitions.max_reps", 1, 1_000_000)
+    if "max_seconds" in rep:
+        repetitions["max_seconds"] = c.num(rep["max_seconds"], "repetitions.max_seconds", 0, 86400, open_lo=True)
+    if "rel_ci" in rep:
+        repetitions["rel_ci"] = c.num(rep["rel_ci"], "repetitions.rel_ci", 0, 1, open_lo=True, open_hi=True)
+    if repetitions.get("warmup_min", 0) > repetitions.get("warmup_max", 100_000):
+        c.fail("repetitions.warmup_max", "must be >= repetitions.warmup_min")
+    if repetitions.get("min_reps", 1) > repetitions.get("max_reps", 1_000_000):
+        c.fail("repetitions.max_reps", "must be >= repetitions.min_reps")
+    if "max_seconds" in repetitions and repetitions["max_seconds"] >= timeout_s:
+        c.fail("repetitions.max_seconds", f"must be below run.timeout_s ({timeout_s:g})")
+
+    synthetic = doc.get("synthetic", {})
+    c.table(synthetic, "synthetic", set(synthetic) if isinstance(synthetic, dict) else set())
+    for key, value in synthetic.items():
+        if isinstance(value, (dict, list)):
+            c.fail(f"synthetic.{key}", f"expected a number, string or boolean, got {_kind(value)}")
+
+    return Profile(
+        source=source, text=text, name=name, host=host, output=output, cache=cache,
+        timeout_s=timeout_s, dataset_path=dataset_path, scenes_count=count, scenes_seed=seed,
+        accuracy=accuracy, limit=limit, timing_images=timing_images, models=tuple(models),
+        sizes=sizes, proposals=proposals, backends=backends, opt_levels=opt_levels,
+        concurrency=concurrency, threads=tuple(threads), repetitions=repetitions,
+        synthetic=dict(synthetic),
+    )
+
+
+def _size(c: _Checker, value, keypath: str):
+    if value == "native":
+        return value
+    if isinstance(value, str):
+        c.fail(keypath, f"{value!r} is not a size (an integer in pixels, or \"native\")")
+    return c.int_(value, keypath, 32, 4096)
+
+
+def _proposal(c: _Checker, value, keypath: str):
+    if value == "default":
+        return value
+    if isinstance(value, str):
+        c.fail(keypath, f"{value!r} is not a proposal count (an integer, or \"default\")")
+    return c.int_(value, keypath, 1, 10_000)
+
+
+def _weights(c: _Checker, value, keypath: str) -> str:
+    c.str_(value, keypath, allow_empty=False)
+    if value in ("none", "torchvision", "demo"):
+        return value
+    if value.startswith("demo:") and len(value) > len("demo:"):
+        return value
+    if value.startswith("file:") and len(value) > len("file:"):
+        return value
+    c.fail(keypath, f"{value!r} is not one of none, torchvision, demo, demo:ID, file:PATH")
