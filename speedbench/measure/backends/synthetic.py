@@ -1,0 +1,143 @@
+"""Synthetic backend - a harness test backend, not a model.
+
+It does a known amount of work per run so the harness itself can be tested
+and so other tests can inject a known slowdown: busy-waits (or sleeps) for a
+configured time, optionally allocates memory, and can fail in every way a
+real worker can (abort, segfault, hang, raise, be SIGKILLed).
+
+Settings come from Point.options (not part of the point's identity), with
+key=value pairs after "synthetic:" in the model id as a fallback, e.g.
+model "synthetic:work_ms=5,alloc_mib=300". Keys:
+- work_ms      time one run takes (default: 2 ms x (size/320)^2 + 0.002 ms x proposals)
+- mode         "busy" (spin on the CPU, default) or "sleep"
+- jitter       relative spread of the work, uniform +-jitter, seeded (default 0)
+- alloc_mib    MiB allocated, written and freed in every run
+- load_mib     MiB allocated at load time and held
+- fail         "abort" | "segv" | "hang" | "raise" | "sigkill"
+- fail_at      "load" (default) or "run"; fail_after: runs before failing at "run"
+- stages       {"backbone": 0.6, ...} fractions of work_ms reported by profile()
+"""
+from __future__ import annotations
+
+import os
+import signal
+import time
+
+import numpy as np
+
+TIMED_REGION = "synthetic: one busy-wait/sleep of work_ms (+ alloc_mib written and freed)"
+DEFAULT_STAGES = {"preprocess": 0.1, "backbone": 0.5, "head": 0.3, "postprocess": 0.1}
+
+
+def settings(point) -> dict:
+    opts = {}
+    model = point.model or ""
+    if ":" in model:
+        for item in model.split(":", 1)[1].split(","):
+            if "=" in item:
+                k, v = item.split("=", 1)
+                opts[k.strip()] = _number(v.strip())
+    opts.update(point.options or {})
+    if "work_ms" not in opts:
+        size = point.size or 320
+        opts["work_ms"] = 2.0 * (size / 320) ** 2 + 0.002 * (point.proposals or 0)
+    return opts
+
+
+def _number(v: str):
+    for cast in (int, float):
+        try:
+            return cast(v)
+        except ValueError:
+            pass
+    return v
+
+
+def _fail(kind: str):
+    if kind == "abort":
+        os.abort()
+    if kind == "segv":
+        os.kill(os.getpid(), signal.SIGSEGV)
+    if kind == "sigkill":
+        os.kill(os.getpid(), signal.SIGKILL)
+    if kind == "hang":
+        while True:
+            time.sleep(3600)
+    if kind == "raise":
+        raise ValueError("synthetic failure requested")
+    raise ValueError(f"synthetic: unknown fail kind {kind!r}")
+
+
+def _work(ms: float, mode: str):
+    if ms <= 0:
+        return
+    if mode == "sleep":
+        time.sleep(ms / 1000)
+        return
+    end = time.perf_counter_ns() + int(ms * 1e6)
+    while time.perf_counter_ns() < end:
+        pass
+
+
+class Runner:
+    timed_region = TIMED_REGION
+    model_file_mib = 0.0
+
+    def __init__(self, point):
+        self.opts = settings(point)
+        self.work_ms = float(self.opts["work_ms"])
+        self.mode = self.opts.get("mode", "busy")
+        self.jitter = float(self.opts.get("jitter", 0.0))
+        self.alloc = int(float(self.opts.get("alloc_mib", 0)) * 2**20)
+        self.rng = np.random.default_rng(int(self.opts.get("seed", 0)))
+        self.runs = 0
+        fail = self.opts.get("fail")
+        if fail and self.opts.get("fail_at", "load") == "load":
+            _fail(fail)
+        load_bytes = int(float(self.opts.get("load_mib", 0)) * 2**20)
+        self.held = np.ones(load_bytes, dtype=np.uint8) if load_bytes else None
+
+    def prepare(self, image):
+        return np.asarray(image)
+
+    def _ms(self) -> float:
+        if self.jitter:
+            return self.work_ms * (1 + self.rng.uniform(-self.jitter, self.jitter))
+        return self.work_ms
+
+    def __call__(self, x):
+        self.runs += 1
+        fail = self.opts.get("fail")
+        if fail and self.opts.get("fail_at", "load") == "run" and self.runs > int(self.opts.get("fail_after", 0)):
+            _fail(fail)
+        if self.alloc:
+            block = np.empty(self.alloc, dtype=np.uint8)
+            block[::4096] = 1            # touch every page so it becomes resident
+            del block
+        _work(self._ms(), self.mode)
+        return x.shape
+
+    def profile(self, inputs, reps: int) -> dict:
+        """Times each stage's share of the work separately (a real measurement of known work)."""
+        fractions = self.opts.get("stages") or DEFAULT_STAGES
+        totals = {k: 0.0 for k in fractions}
+        runs = []
+        for _ in range(reps):
+            t_run = time.perf_counter_ns()
+            ms = self._ms()
+            for stage, frac in fractions.items():
+                t0 = time.perf_counter_ns()
+                _work(ms * float(frac), self.mode)
+                totals[stage] += (time.perf_counter_ns() - t0) / 1e6
+            runs.append((time.perf_counter_ns() - t_run) / 1e6)
+        stages = {k: v / reps for k, v in totals.items()}
+        profiled = sum(runs) / reps
+        return {"stages": stages, "profiled_ms": profiled, "run_ms": runs, "node_ms": sum(stages.values()),
+                "coverage": sum(stages.values()) / profiled}
+
+    def close(self):
+        self.held = None
+
+
+def load(point) -> Runner:
+    return Runner(point)

@@ -1,0 +1,131 @@
+"""The parent side: run one point in a fresh worker process and collect its result.
+
+The parent never measures. It validates the point, hands the images to the
+worker through a temporary .npz, starts `python -m speedbench.measure.worker`
+in a new session (its own process group) with the thread environment set,
+waits at most timeout_s, and kills the whole group if it overruns. A worker
+that is killed, segfaults, runs out of memory or raises becomes a failed
+PointResult with the reason; the caller goes on with the next point.
+"""
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import tempfile
+from pathlib import Path
+
+import numpy as np
+
+from speedbench.errors import UserError
+from speedbench.measure.point import Point, Policy
+from speedbench.measure.result import PointResult
+from speedbench.measure.worker import THREAD_VARS
+
+_SIGNAL_REASONS = {
+    signal.SIGKILL: "killed by SIGKILL (out of memory?)",
+    signal.SIGSEGV: "crashed with SIGSEGV (segmentation fault)",
+    signal.SIGABRT: "aborted (SIGABRT)",
+    signal.SIGBUS: "crashed with SIGBUS",
+    signal.SIGTERM: "terminated by SIGTERM",
+}
+
+
+def thread_env(point: Point, base: dict | None = None) -> dict:
+    """The worker's environment: thread-count variables pinned to intra_threads (0 = leave as is)."""
+    env = dict(os.environ if base is None else base)
+    if point.intra_threads > 0:
+        for var in THREAD_VARS:
+            env[var] = str(point.intra_threads)
+    env.setdefault("PYTHONHASHSEED", "0")
+    return env
+
+
+def load_images(images) -> list[np.ndarray]:
+    """A list of uint8 [H, W, 3] arrays or image paths -> arrays (UserError naming a bad one)."""
+    from speedbench.data import read_image
+
+    if images is None or len(images) == 0:
+        raise UserError("measure: no images given to time the model on")
+    out = []
+    for i, img in enumerate(images):
+        if isinstance(img, (str, os.PathLike)):
+            out.append(read_image(img))
+            continue
+        arr = np.asarray(img)
+        if arr.dtype != np.uint8 or arr.ndim != 3 or arr.shape[2] != 3 or min(arr.shape[:2]) < 1:
+            raise UserError(f"measure: image {i} must be a uint8 [H, W, 3] array, got {arr.dtype} {arr.shape}")
+        out.append(arr)
+    return out
+
+
+def signal_reason(returncode: int) -> str:
+    try:
+        sig = signal.Signals(-returncode)
+    except ValueError:
+        return f"killed by signal {-returncode}"
+    return _SIGNAL_REASONS.get(sig, f"killed by {sig.name}")
+
+
+def measure_point(point: Point, images, policy: Policy | None = None, timeout_s: float = 600) -> PointResult:
+    """Measure one point in its own worker process; never raises for a worker failure."""
+    policy = policy or Policy()
+    point.validate()
+    policy.validate()
+    if not timeout_s or timeout_s <= 0:
+        raise UserError(f"measure: timeout must be > 0 s, got {timeout_s!r}")
+    arrays = load_images(images)
+    with tempfile.TemporaryDirectory(prefix="speedbench-point-") as tmp:
+        tmp = Path(tmp)
+        np.savez(tmp / "images.npz", **{f"image_{i}": a for i, a in enumerate(arrays)})
+        spec = {"point": point.to_dict(), "policy": policy.to_dict(),
+                "images": str(tmp / "images.npz"), "result": str(tmp / "result.json")}
+        (tmp / "spec.json").write_text(json.dumps(spec))
+        with open(tmp / "stderr.txt", "wb") as err:
+            proc = subprocess.Popen([sys.executable, "-m", "speedbench.measure.worker", str(tmp / "spec.json")],
+                                    env=thread_env(point), stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
+                                    stderr=err, start_new_session=True)
+            timed_out = False
+            try:
+                proc.wait(timeout=timeout_s)
+            except subprocess.TimeoutExpired:
+                timed_out = True
+            finally:
+                _kill_group(proc)       # also reaps anything the worker left behind
+        stderr_tail = _tail(tmp / "stderr.txt")
+        result_file = tmp / "result.json"
+        if timed_out:
+            return _failed(point, f"timed out after {timeout_s:g} s", stderr_tail)
+        if result_file.exists():
+            data = json.loads(result_file.read_text())
+            if data.get("status") == "failed" or proc.returncode == 0:
+                result = PointResult.from_dict({**data, "point": point.to_dict()})
+                if not result.ok:
+                    result.extra.setdefault("stderr_tail", stderr_tail)
+                return result
+        if proc.returncode < 0:
+            return _failed(point, signal_reason(proc.returncode), stderr_tail)
+        last = stderr_tail.strip().splitlines()[-1:] or [""]
+        return _failed(point, f"worker exited with code {proc.returncode}: {last[0]}"[:300], stderr_tail)
+
+
+def _kill_group(proc: subprocess.Popen) -> None:
+    try:
+        os.killpg(proc.pid, signal.SIGKILL)
+    except (ProcessLookupError, PermissionError):
+        pass
+    proc.wait()
+
+
+def _tail(path: Path, n: int = 4000) -> str:
+    try:
+        data = path.read_bytes()[-n:]
+    except OSError:
+        return ""
+    return data.decode("utf-8", "replace")
+
+
+def _failed(point: Point, reason: str, stderr_tail: str = "") -> PointResult:
+    return PointResult(point=point, status="failed", reason=reason, extra={"stderr_tail": stderr_tail})

@@ -1,0 +1,449 @@
+"""Throughput under concurrency: K worker processes of one configuration, measured together.
+
+Throughput is not 1 / latency: K copies of a model on K x T cores compete for memory
+bandwidth, caches and (with more threads than cores) the cores themselves. So we run them.
+
+How one load point is measured (``measure_load``):
+
+1. K fresh worker processes (``python -m speedbench.measure.load SPEC.json``), each loading
+   its own session through the measure package's backend loaders, with T = point.intra_threads
+   threads (thread environment variables set before the worker imports anything) and,
+   optionally, pinned to its own disjoint set of cores.
+2. Each worker warms up, then reports ready. When all K are ready the parent writes one
+   start time (a "go" file); every worker sleeps until that instant and issues requests back
+   to back (closed loop: the next frame as soon as the last returns) until the common end time.
+   Clocks: ``time.monotonic_ns`` (CLOCK_MONOTONIC on Linux), one clock for all processes.
+3. Every request's start and end timestamp and its process CPU time are recorded. From them
+   (``summarise``), over the common window [start, end]:
+   - throughput X = requests completed inside the window / window length (frames/s),
+   - per-request latency percentiles of those requests (p50/p90/p99 under load),
+   - mean concurrency L = time-average number of requests in flight (their intervals clipped
+     to the window, summed, divided by the window), so Little's law L = X W can be checked on
+     the measured data (W = mean latency). L and X W come from the same timestamps, so their
+     agreement is a consistency check (edge effects, gaps between requests), not an independent
+     confirmation,
+   - CPU utilisation of the cores used, measured from process CPU time, next to X S (S = mean
+     CPU seconds per request): the utilisation law U = X S. A gap shows CPU burnt outside
+     requests (thread pools spinning between runs, harness overhead).
+   - scaling efficiency X(K) / (K X(1)) when the K = 1 throughput is known.
+4. The parent enforces one timeout for the whole point and survives any worker dying;
+   the point is then "failed" with the reason, as for single points.
+
+Public: ``measure_load``, ``measure_scaling``, ``LoadResult``, ``summarise``, ``LOAD_COLUMNS``.
+"""
+from __future__ import annotations
+
+import dataclasses
+import json
+import math
+import os
+import signal
+import subprocess
+import sys
+import tempfile
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from speedbench.errors import UserError
+
+# Columns a load point adds to the point row (see speedbench/analyse/sizing.py for their use).
+LOAD_COLUMNS = (
+    "tput_fps", "tput_p50_ms", "tput_p90_ms", "tput_p99_ms", "tput_mean_ms", "scaling_eff",
+    "littles_L", "littles_XW", "cores_used", "host_cores", "tput_window_s", "tput_requests",
+    "tput_cpu_util", "tput_cpu_util_xs", "tput_cpu_ms", "tput_rss_total_mib",
+)
+THREAD_ENV = ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS", "NUMEXPR_NUM_THREADS",
+              "VECLIB_MAXIMUM_THREADS")
+NAN = float("nan")
+
+
+@dataclass
+class LoadResult:
+    """K workers of one configuration measured together. ``to_row()`` gives the table row."""
+
+    point: object                      # speedbench.measure.Point with concurrency = K
+    k: int
+    status: str = "ok"
+    reason: str = ""
+    summary: dict = field(default_factory=dict)   # LOAD_COLUMNS values
+    latencies_ms: list = field(default_factory=list)  # per request, completed inside the window
+    workers: list = field(default_factory=list)   # raw per-worker timelines (see _worker_main)
+
+    @property
+    def ok(self) -> bool:
+        return self.status == "ok"
+
+    @property
+    def tput_fps(self) -> float:
+        return self.summary.get("tput_fps", NAN)
+
+    def load_columns(self) -> dict:
+        """Only the throughput columns, to merge into an existing K = 1 row of a run."""
+        return {c: self.summary.get(c, NAN) for c in LOAD_COLUMNS}
+
+    def to_row(self) -> dict:
+        """Config columns + point_id + status + latency statistics of the requests under load
+        (lat_*, from the same samples as tput_p*_ms) + LOAD_COLUMNS."""
+        from speedbench.measure.stats import Measurement
+
+        row = dict(self.point.config())
+        row["point_id"] = self.point.id
+        row["status"], row["reason"] = self.status, self.reason
+        if self.latencies_ms:
+            m = Measurement(self.latencies_ms)
+            row.update(m.summary())
+            row["fps"] = 1000.0 / m.median if m.median > 0 else NAN  # one stream's frame rate
+        row.update(self.load_columns())
+        row["cores_used"] = self.summary.get("cores_used", self.k * max(self.point.intra_threads, 1))
+        return row
+
+    def __repr__(self) -> str:
+        if not self.ok:
+            return f"LoadResult(K={self.k} {self.point.model}: failed, {self.reason})"
+        s = self.summary
+        return (f"LoadResult(K={self.k} {self.point.model}: {s['tput_fps']:.2f} fps, "
+                f"p99 {s['tput_p99_ms']:.2f} ms, L={s['littles_L']:.3f} vs XW={s['littles_XW']:.3f}, "
+                f"scaling {s.get('scaling_eff', NAN):.2f})")
+
+
+# --------------------------------------------------------------------------- analysis
+def summarise(workers: list[dict], start_ns: int, end_ns: int, cores_used: int) -> dict:
+    """Throughput, latency under load, Little's law and utilisation law from raw timelines.
+
+    workers: one dict per worker with int lists ``starts_ns``, ``ends_ns``, ``cpu_ns`` (CPU time
+    of each request) and ints ``cpu_total_ns`` (process CPU time from the first request's start
+    to the last one's end). A pure function: tests feed it hand-made timelines.
+    """
+    window_s = (end_ns - start_ns) / 1e9
+    if window_s <= 0:
+        raise ValueError("empty measurement window")
+    in_flight_s = 0.0
+    lat = []
+    cpu_rate, xs_rate = 0.0, 0.0
+    n_total = 0
+    for w in workers:
+        s = np.asarray(w["starts_ns"], dtype=np.int64)
+        e = np.asarray(w["ends_ns"], dtype=np.int64)
+        # time in flight inside the window: each interval clipped to [start, end]
+        overlap = np.clip(np.minimum(e, end_ns) - np.maximum(s, start_ns), 0, None)
+        in_flight_s += overlap.sum() / 1e9
+        done = (e >= start_ns) & (e <= end_ns)
+        lat.extend(((e[done] - s[done]) / 1e6).tolist())
+        n_total += len(s)
+        # Utilisation law per worker over its own span: U_k = CPU / span vs X_k S_k.
+        if len(s):
+            span = (e[-1] - s[0]) / 1e9
+            if span > 0:
+                cpu_rate += w["cpu_total_ns"] / 1e9 / span
+                xs_rate += (len(s) / span) * (np.mean(w["cpu_ns"]) / 1e9)
+    n = len(lat)
+    x = n / window_s
+    mean_ms = float(np.mean(lat)) if n else NAN
+    out = {
+        "tput_fps": x,
+        "tput_mean_ms": mean_ms,
+        "tput_window_s": window_s,
+        "tput_requests": n,
+        "littles_L": float(in_flight_s / window_s),
+        "littles_XW": x * mean_ms / 1000.0 if n else NAN,
+        "cores_used": int(cores_used),
+        "tput_cpu_util": float(cpu_rate / cores_used),
+        "tput_cpu_util_xs": float(xs_rate / cores_used),
+        "tput_cpu_ms": float(np.mean(np.concatenate([np.asarray(w["cpu_ns"], float) for w in workers]))) / 1e6
+        if n_total else NAN,
+    }
+    for p in (50, 90, 99):
+        out[f"tput_p{p}_ms"] = float(np.percentile(lat, p)) if n else NAN
+    return out
+
+
+# --------------------------------------------------------------------------- parent side
+def host_cores() -> int:
+    """Cores this process may run on (affinity / cgroup aware where Linux tells us)."""
+    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+
+
+def measure_load(point, images, k: int | None = None, policy=None, timeout_s: float = 600,
+                 seconds: float | None = None, min_requests: int = 20, pin: bool = False,
+                 baseline_fps: float | None = None) -> "LoadResult":
+    """Measure throughput of ``k`` concurrent workers of ``point`` (a speedbench.measure.Point).
+
+    images: uint8 [H, W, 3] arrays or image paths, cycled by every worker.
+    k: number of concurrent workers (default point.concurrency); k x T must fit the host's cores.
+    policy: speedbench.measure.Policy; its warmup_min/warmup_max/settle_tol drive each worker's
+      warm-up, and its max_seconds is the default window when ``seconds`` is None (capped at 10 s).
+    seconds: length of the common measurement window; it is stretched so that every worker can
+      complete about ``min_requests`` requests (from the slowest warm-up median).
+    pin: give each worker its own disjoint set of T cores (psutil-free: os.sched_setaffinity).
+      A point with affinity > 0 is always pinned, to that many cores per worker.
+    baseline_fps: X(1) of the same configuration, for scaling_eff = X(K) / (K X(1)); for k = 1
+      the efficiency is 1 by definition.
+    timeout_s: for the whole point (start-up, warm-up, window). On timeout or any worker failure
+      every worker is killed and the result is status "failed" with the reason; no exception.
+    Bad arguments (k < 1, K x T above the host's cores, thread count 0) raise UserError.
+    """
+    from speedbench.measure.point import Policy
+
+    policy = policy or Policy()
+    k = int(point.concurrency if k is None else k)
+    threads = int(point.intra_threads)
+    if k < 1:
+        raise UserError(f"concurrency: K must be >= 1, got {k}")
+    if threads < 1:
+        raise UserError("intra_threads: a load point needs an explicit thread count (0 = library default "
+                        "has no defined core count)")
+    per_worker = int(point.affinity) if point.affinity else (threads if pin else 0)
+    cores = host_cores()
+    need = k * (per_worker or threads)
+    if need > cores:
+        raise UserError(f"concurrency: K={k} workers x {per_worker or threads} cores = {need} cores, "
+                        f"but this host has {cores}")
+    point = dataclasses.replace(point, concurrency=1, affinity=per_worker)
+    point.validate()  # the single-stream checks (graph file, backend, thread fields)
+    point = dataclasses.replace(point, concurrency=k)
+    window = float(seconds if seconds is not None else min(policy.max_seconds, 10.0))
+    if window <= 0:
+        raise UserError(f"seconds: the measurement window must be > 0, got {seconds!r}")
+    with tempfile.TemporaryDirectory(prefix="speedbench-load-") as tmp:
+        tmp = Path(tmp)
+        images_path = _save_images(images, tmp / "images.npz")
+        allowed = sorted(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else []
+        specs = []
+        for i in range(k):
+            spec = {
+                "point": {**point.to_dict(), "concurrency": 1}, "images": str(images_path),
+                "cores": allowed[i * per_worker:(i + 1) * per_worker] if per_worker else None,
+                "policy": policy.to_dict(), "ready": str(tmp / f"ready.{i}"), "go": str(tmp / "go.json"),
+                "result": str(tmp / f"result.{i}.json"), "index": i,
+            }
+            path = tmp / f"spec.{i}.json"
+            path.write_text(json.dumps(spec))
+            specs.append((spec, path))
+        result = _run_workers(point, k, specs, tmp, window, min_requests, timeout_s)
+    if result.ok:
+        result.summary["host_cores"] = cores
+        if k == 1:
+            result.summary["scaling_eff"] = 1.0
+        elif baseline_fps and baseline_fps > 0:
+            result.summary["scaling_eff"] = result.tput_fps / (k * baseline_fps)
+        else:
+            result.summary["scaling_eff"] = NAN
+    return result
+
+
+def measure_scaling(point, images, ks=(1, 2), **kwargs) -> list["LoadResult"]:
+    """measure_load at each K in ``ks`` (K = 1 first, so every efficiency has its baseline).
+
+    Each K runs its own fresh workers; a failed K does not stop the others.
+    kwargs go to measure_load (policy, timeout_s, seconds, min_requests, pin).
+    """
+    ks = sorted({int(x) for x in ks})
+    baseline = None
+    out = []
+    for k in ([1] if 1 not in ks else []) + ks:
+        res = measure_load(point, images, k=k, baseline_fps=baseline, **kwargs)
+        if k == 1 and res.ok:
+            baseline = res.tput_fps
+        if k in ks:
+            out.append(res)
+    return out
+
+
+def _save_images(images, path: Path) -> Path:
+    from speedbench.data.images import read_image
+
+    arrays = []
+    for im in images:
+        arr = im if isinstance(im, np.ndarray) else read_image(im)
+        if arr.ndim != 3 or arr.shape[2] != 3 or arr.dtype != np.uint8:
+            raise UserError(f"images: expected uint8 [H, W, 3] arrays, got {arr.dtype} {arr.shape}")
+        arrays.append(arr)
+    if not arrays:
+        raise UserError("images: a load measurement needs at least one image")
+    np.savez(path, *arrays)
+    return path
+
+
+def _worker_env(threads: int) -> dict:
+    env = dict(os.environ)
+    for name in THREAD_ENV:
+        env[name] = str(threads)
+    # The worker must import this working tree, whatever the caller's directory.
+    root = str(Path(__file__).resolve().parents[2])
+    env["PYTHONPATH"] = root + (os.pathsep + env["PYTHONPATH"] if env.get("PYTHONPATH") else "")
+    return env
+
+
+def _run_workers(point, k, specs, tmp: Path, window: float, min_requests: int, timeout_s: float):
+    deadline = time.monotonic() + timeout_s
+    env = _worker_env(point.intra_threads)
+    procs = []
+    try:
+        for spec, path in specs:
+            log = open(tmp / f"worker.{spec['index']}.log", "wb")
+            procs.append(subprocess.Popen([sys.executable, "-m", "speedbench.measure.load", str(path)],
+                                          env=env, stdout=log, stderr=subprocess.STDOUT,
+                                          start_new_session=True))
+            log.close()
+        # Barrier: wait until every worker has loaded and warmed up.
+        ready = [None] * k
+        while not all(ready):
+            for i, (spec, _) in enumerate(specs):
+                if ready[i] is None and os.path.exists(spec["ready"]):
+                    ready[i] = _read_json(spec["ready"])
+            failed = _first_failure(procs, specs, tmp)
+            if failed:
+                return LoadResult(point, k, "failed", failed)
+            if time.monotonic() > deadline:
+                return LoadResult(point, k, "failed", f"timed out after {timeout_s:g} s (workers not ready)")
+            time.sleep(0.01)
+        # Stretch the window so the slowest worker completes about min_requests requests.
+        slowest_ms = max(r.get("warmup_p50_ms", 0.0) for r in ready)
+        window = max(window, min_requests * slowest_ms / 1000.0)
+        lead_ns = 200_000_000  # 0.2 s for every worker to see the go file
+        start_ns = time.monotonic_ns() + lead_ns
+        end_ns = start_ns + int(window * 1e9)
+        _write_json(Path(specs[0][0]["go"]), {"start_ns": start_ns, "end_ns": end_ns})
+        while any(p.poll() is None for p in procs):
+            failed = _first_failure(procs, specs, tmp)
+            if failed:
+                return LoadResult(point, k, "failed", failed)
+            if time.monotonic() > deadline:
+                return LoadResult(point, k, "failed", f"timed out after {timeout_s:g} s")
+            time.sleep(0.02)
+        failed = _first_failure(procs, specs, tmp)
+        if failed:
+            return LoadResult(point, k, "failed", failed)
+        workers = [_read_json(spec["result"]) for spec, _ in specs]
+    finally:
+        for p in procs:
+            if p.poll() is None:
+                try:
+                    os.killpg(p.pid, signal.SIGKILL)
+                except ProcessLookupError:
+                    pass
+                p.wait()
+    cores_used = k * (point.affinity or point.intra_threads)
+    summary = summarise(workers, start_ns, end_ns, cores_used)
+    summary["tput_rss_total_mib"] = float(sum(w.get("rss_peak_mib", NAN) for w in workers))
+    lat = []
+    for w in workers:
+        s, e = np.asarray(w["starts_ns"]), np.asarray(w["ends_ns"])
+        done = (e >= start_ns) & (e <= end_ns)
+        lat.extend(((e[done] - s[done]) / 1e6).tolist())
+    if not lat:
+        return LoadResult(point, k, "failed", "no request completed inside the measurement window",
+                          summary=summary, workers=workers)
+    return LoadResult(point, k, "ok", "", summary=summary, latencies_ms=lat, workers=workers)
+
+
+def _first_failure(procs, specs, tmp: Path) -> str:
+    """Reason of the first worker that exited badly, or ''."""
+    for i, p in enumerate(procs):
+        code = p.poll()
+        if code is None or (code == 0 and os.path.exists(specs[i][0]["result"])):
+            continue
+        who = f"worker {i + 1} of {len(procs)}"
+        if code < 0:
+            name = signal.Signals(-code).name
+            hint = " (out of memory?)" if name == "SIGKILL" else ""
+            return f"{who}: killed by {name}{hint}"
+        result = specs[i][0]["result"]
+        if os.path.exists(result):
+            reason = _read_json(result).get("reason", "")
+            if reason:
+                return f"{who}: {reason}"
+        tail = (tmp / f"worker.{i}.log").read_text(errors="replace").strip().splitlines()[-1:] or [""]
+        return f"{who}: exited with status {code} {tail[0]}".strip()
+    return ""
+
+
+def _read_json(path) -> dict:
+    with open(path) as fh:
+        return json.load(fh)
+
+
+def _write_json(path: Path, obj) -> None:
+    tmp = path.with_name(path.name + ".tmp")
+    tmp.write_text(json.dumps(obj))
+    os.replace(tmp, path)  # atomic: a reader sees all of it or nothing
+
+
+# --------------------------------------------------------------------------- worker side
+def _worker_main(spec_path: str) -> int:
+    spec = _read_json(spec_path)
+    result_path = Path(spec["result"])
+    try:
+        if spec.get("cores"):
+            os.sched_setaffinity(0, spec["cores"])
+        from speedbench.measure.point import Point, Policy
+        from speedbench.measure.timing import warm_up
+
+        point = Point.from_dict(spec["point"])
+        policy = Policy.from_dict(spec["policy"])
+        run = _load_runner(point)
+        with np.load(spec["images"]) as npz:
+            inputs = [run.prepare(npz[name]) for name in npz.files]  # outside the timed region
+        warm = warm_up(run, inputs, policy)
+        warm_ms = warm["samples_ms"][-max(1, policy.warmup_window):] or [0.0]
+        _write_json(Path(spec["ready"]), {"warmup_p50_ms": float(np.median(warm_ms)), "pid": os.getpid()})
+        go = Path(spec["go"])
+        while not go.exists():
+            time.sleep(0.002)
+        times = _read_json(go)
+        start_ns, end_ns = times["start_ns"], times["end_ns"]
+        delay = (start_ns - time.monotonic_ns()) / 1e9
+        if delay > 0:
+            time.sleep(delay)
+        starts, ends, cpus = _closed_loop(run, inputs, end_ns, spec["index"])
+        cpu_total = cpus.pop()
+        import resource
+
+        rss_peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # KiB on Linux
+        _write_json(result_path, {"status": "ok", "starts_ns": starts, "ends_ns": ends, "cpu_ns": cpus,
+                                  "cpu_total_ns": cpu_total, "rss_peak_mib": rss_peak,
+                                  "affinity": sorted(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity")
+                                  else []})
+        return 0
+    except Exception as exc:  # reported to the parent, which records the point as failed
+        msg = " ".join(str(exc).split())
+        _write_json(result_path, {"status": "failed", "reason": f"raised {type(exc).__name__}: {msg}"[:500]})
+        return 1
+
+
+def _closed_loop(run, inputs, end_ns: int, offset: int):
+    """Back-to-back requests until end_ns. Returns start/end timestamps and CPU per request;
+    the last element of the CPU list is the CPU time over the whole loop."""
+    mono, cpu = time.monotonic_ns, time.process_time_ns
+    starts, ends, cpus = [], [], []
+    n_inputs = len(inputs)
+    i = offset  # workers start at different images so they do not run in lock-step
+    c_first = cpu()
+    while True:
+        c0 = cpu()
+        t0 = mono()
+        if t0 >= end_ns:
+            break
+        run(inputs[i % n_inputs])
+        t1 = mono()
+        c1 = cpu()
+        starts.append(t0)
+        ends.append(t1)
+        cpus.append(c1 - c0)
+        i += 1
+    cpus.append(c0 - c_first)
+    return starts, ends, cpus
+
+
+def _load_runner(point):
+    """The measure package's backend Runner: prepare(image) -> input, __call__(input) -> outputs."""
+    from speedbench.measure.backends import get_backend
+
+    return get_backend(point.backend).load(point)
+
+
+if __name__ == "__main__":  # python -m speedbench.measure.load SPEC.json
+    sys.exit(_worker_main(sys.argv[1]))

@@ -1,0 +1,133 @@
+"""What to run (Point) and how long to keep running it (Policy)."""
+from __future__ import annotations
+
+import os
+from dataclasses import asdict, dataclass, field, fields
+from pathlib import Path
+
+from speedbench.errors import UserError
+from speedbench.schema import CONFIG_COLUMNS, point_id
+
+BACKENDS = ("ort", "eager", "synthetic")
+EXEC_MODES = ("sequential", "parallel")
+OPT_LEVELS = ("disable", "basic", "extended", "all")
+
+
+@dataclass
+class Point:
+    """One configuration. Fields up to `concurrency` are its identity (schema.CONFIG_COLUMNS).
+
+    `graph` (the ONNX file for backend "ort") and `options` (settings of the
+    synthetic test backend) are not part of the identity: the same configuration
+    measured from a re-exported file, or with an injected slowdown, is the same point.
+    """
+
+    model: str
+    weights: str = "none"
+    size: int = 0
+    proposals: int = 0
+    backend: str = "ort"
+    intra_threads: int = 1
+    inter_threads: int = 1
+    exec_mode: str = "sequential"
+    opt_level: str = "all"
+    affinity: int = 0
+    concurrency: int = 1
+    graph: str | None = None
+    options: dict = field(default_factory=dict)
+
+    def config(self) -> dict:
+        return {c: getattr(self, c) for c in CONFIG_COLUMNS}
+
+    @property
+    def id(self) -> str:
+        return point_id(self.config())
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "Point":
+        names = {f.name for f in fields(cls)}
+        return cls(**{k: v for k, v in d.items() if k in names})
+
+    def validate(self) -> None:
+        """Raise UserError naming the field for a configuration that cannot run."""
+        if self.backend not in BACKENDS:
+            raise UserError(f"point field 'backend': {self.backend!r} is not one of {', '.join(BACKENDS)}")
+        for name in ("size", "proposals", "intra_threads", "inter_threads", "affinity"):
+            value = getattr(self, name)
+            if not isinstance(value, int) or isinstance(value, bool) or value < 0:
+                raise UserError(f"point field {name!r}: expected an integer >= 0, got {value!r}")
+        if self.concurrency != 1:
+            raise UserError(f"point field 'concurrency': only 1 is measured so far, got {self.concurrency!r}")
+        cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
+        if self.affinity > cores:
+            raise UserError(f"point field 'affinity': {self.affinity} cores requested, {cores} available")
+        if self.backend == "ort":
+            if self.exec_mode not in EXEC_MODES:
+                raise UserError(f"point field 'exec_mode': {self.exec_mode!r} is not one of {', '.join(EXEC_MODES)}")
+            if self.opt_level not in OPT_LEVELS:
+                raise UserError(f"point field 'opt_level': {self.opt_level!r} is not one of {', '.join(OPT_LEVELS)}")
+            if not self.graph:
+                raise UserError("point field 'graph': backend 'ort' needs the path of an ONNX file")
+            if not Path(self.graph).is_file():
+                raise UserError(f"{self.graph}: ONNX graph file not found")
+        if not isinstance(self.options, dict):
+            raise UserError(f"point field 'options': expected a table/dict, got {type(self.options).__name__}")
+
+
+@dataclass
+class Policy:
+    """When warm-up ends and when timing stops.
+
+    Warm-up: at least warmup_min runs, then until the median of the last
+    `warmup_window` runs moves less than settle_tol (relative) from the window
+    before it, at most warmup_max runs. Timing: at least min_reps runs, then
+    stop as soon as the `confidence` CI of the median has a half-width
+    <= rel_ci x median, or max_reps runs, or max_seconds of timing.
+    """
+
+    warmup_min: int = 3
+    warmup_max: int = 50
+    warmup_window: int = 5
+    settle_tol: float = 0.05
+    min_reps: int = 20
+    max_reps: int = 1000
+    max_seconds: float = 30.0
+    rel_ci: float = 0.02
+    confidence: float = 0.95
+    noisy_cov: float = 0.10     # rule of thumb (common practice): CoV above 10 % = too noisy to rank on
+    profile_stages: bool = True
+    profile_reps: int = 5
+    memory_every: int = 5       # sample process RSS every N timed runs (outside the timed region)
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "Policy":
+        names = {f.name for f in fields(cls)}
+        unknown = sorted(set(d) - names)
+        if unknown:
+            raise UserError(f"repetition policy: unknown key {unknown[0]!r} (known: {', '.join(sorted(names))})")
+        return cls(**d)
+
+    def validate(self) -> None:
+        for name in ("warmup_min", "warmup_max", "warmup_window", "min_reps", "max_reps", "profile_reps",
+                     "memory_every"):
+            value = getattr(self, name)
+            if not isinstance(value, int) or isinstance(value, bool) or value < 0:
+                raise UserError(f"repetition policy {name!r}: expected an integer >= 0, got {value!r}")
+        if self.min_reps < 1 or self.max_reps < self.min_reps:
+            raise UserError(f"repetition policy: need 1 <= min_reps <= max_reps, got {self.min_reps}, {self.max_reps}")
+        if self.warmup_max < self.warmup_min:
+            raise UserError("repetition policy: warmup_max must be >= warmup_min")
+        if not 0 < self.confidence < 1:
+            raise UserError(f"repetition policy 'confidence': must be in (0, 1), got {self.confidence!r}")
+        for name in ("rel_ci", "settle_tol", "max_seconds", "noisy_cov"):
+            value = getattr(self, name)
+            if not isinstance(value, (int, float)) or value <= 0:
+                raise UserError(f"repetition policy {name!r}: expected a number > 0, got {value!r}")
+        if self.memory_every < 1:
+            raise UserError("repetition policy 'memory_every': must be >= 1")

@@ -1,0 +1,115 @@
+"""The worker process: measures one point and writes its result as JSON.
+
+Run as `python -m speedbench.measure.worker SPEC.json` by speedbench.measure.launch
+(never imported by the parent for measuring). The parent has already put the
+thread environment variables (OMP_NUM_THREADS, MKL_NUM_THREADS, ...) in this
+process's environment; CPU affinity is applied here before any heavy import.
+The result file is written atomically (temp file + os.replace), so the parent
+either reads a complete result or none.
+"""
+from __future__ import annotations
+
+import json
+import os
+import sys
+import traceback
+
+# Libraries whose import cost belongs to "after imports" for each backend.
+IMPORTS = {"ort": ("numpy", "onnxruntime", "onnx"), "eager": ("numpy", "torch", "torchvision"),
+           "synthetic": ("numpy",)}
+
+
+def pin(cores: int) -> list[int]:
+    """Pin this process to the first `cores` allowed CPUs (emulates an N-core budget)."""
+    import psutil
+
+    proc = psutil.Process()
+    allowed = sorted(proc.cpu_affinity())
+    chosen = allowed[:cores]
+    proc.cpu_affinity(chosen)
+    return chosen
+
+
+def write_json_atomic(path: str, data: dict) -> None:
+    tmp = f"{path}.tmp{os.getpid()}"
+    with open(tmp, "w") as f:
+        json.dump(data, f, allow_nan=True)
+        f.flush()
+        os.fsync(f.fileno())
+    os.replace(tmp, path)
+
+
+def run_worker(spec: dict) -> dict:
+    """Measure the point described by `spec` in this process; returns PointResult.to_dict()."""
+    point_d, policy_d = spec["point"], spec["policy"]
+    extra = {}
+    if point_d.get("affinity"):
+        extra["cpus"] = pin(int(point_d["affinity"]))
+
+    import importlib
+
+    for name in IMPORTS[point_d["backend"]]:
+        importlib.import_module(name)
+
+    import numpy as np
+
+    from speedbench.measure import memory, timing
+    from speedbench.measure.backends import get_backend
+    from speedbench.measure.point import Point, Policy
+    from speedbench.measure.result import PointResult
+
+    point, policy = Point.from_dict(point_d), Policy.from_dict(policy_d)
+    mem = {"rss_imports_mib": memory.rss_mib()}
+
+    runner = get_backend(point.backend).load(point)
+    with np.load(spec["images"]) as z:
+        images = [z[k] for k in sorted(z.files, key=lambda k: int(k.split("_")[-1]))]
+    inputs = [runner.prepare(img) for img in images]
+    mem["rss_loaded_mib"] = memory.rss_mib()
+    mem["model_file_mib"] = runner.model_file_mib
+
+    warm = timing.warm_up(runner, inputs, policy)
+    tracker = memory.PeakTracker(policy.memory_every)
+    measurement, how = timing.timed_runs(runner, inputs, policy, between=tracker)
+    mem.update(tracker.result())
+
+    result = PointResult(point=point, measurement=measurement, memory=mem, extra=extra)
+    extra.update(how)
+    extra["warmup_runs"], extra["warmup_settled"] = warm["runs"], warm["settled"]
+    extra["warmup_ms"] = warm["samples_ms"]
+    extra["timed_region"] = runner.timed_region
+    extra["n_images"] = len(inputs)
+    extra["threads_env"] = {k: os.environ.get(k) for k in THREAD_VARS if k in os.environ}
+    if policy.profile_stages and policy.profile_reps > 0:
+        prof = runner.profile(inputs, policy.profile_reps)
+        if prof:
+            result.stages = prof.pop("stages")
+            result.profiled_ms = float(prof["profiled_ms"])
+            runs = sorted(prof.get("run_ms") or [result.profiled_ms])
+            result.profiling_overhead = float(np.median(runs)) / measurement.median - 1
+            extra["profile"] = prof
+    runner.close()
+    return result.to_dict()
+
+
+THREAD_VARS = ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS", "VECLIB_MAXIMUM_THREADS",
+               "NUMEXPR_NUM_THREADS", "BLIS_NUM_THREADS")
+
+
+def main(argv=None) -> int:
+    argv = sys.argv[1:] if argv is None else argv
+    with open(argv[0]) as f:
+        spec = json.load(f)
+    try:
+        out = run_worker(spec)
+    except BaseException as exc:  # report every failure to the parent, then exit non-zero
+        reason = f"raised {type(exc).__name__}: {' '.join(str(exc).split())}"[:500]
+        write_json_atomic(spec["result"], {"point": spec["point"], "status": "failed", "reason": reason,
+                                           "extra": {"traceback": traceback.format_exc()[-4000:]}})
+        return 1
+    write_json_atomic(spec["result"], out)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
