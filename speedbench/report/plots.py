@@ -1,0 +1,229 @@
+"""Plots of a run (matplotlib, object API only: no pyplot state, safe in workers and tests).
+
+Every function takes DataFrames, returns the Figure, and saves it when given a path
+(format from the suffix; svg=True also writes an SVG next to a PNG).
+"""
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from matplotlib.figure import Figure
+from matplotlib.lines import Line2D
+
+from speedbench.analyse import frontier as _frontier
+from speedbench.analyse.common import bounds, split_ok
+from speedbench.schema import STAGES
+
+# Families told apart by marker shape as well as colour (readable in greyscale and by
+# colour-blind readers).
+FAMILY_STYLE = {
+    "one-stage": ("o", "#1f77b4"),
+    "two-stage": ("s", "#d95f02"),
+}
+OTHER_STYLE = ("^", "#666666")
+AXIS_NAMES = {"map": "mAP (COCO, IoU 0.50:0.95)", "rss_peak_mib": "peak memory (MiB)", "fps": "throughput (frames/s)"}
+
+
+def _text(s) -> str:
+    # Matplotlib treats $...$ as maths; a model name is plain text.
+    return str(s).replace("$", r"\$")
+
+
+def axis_name(col: str) -> str:
+    if col.startswith("lat_") and col.endswith("_ms"):
+        return f"latency {col[4:-3]} (ms)"
+    return AXIS_NAMES.get(col, col)
+
+
+def save(fig: Figure, path, svg: bool = False) -> None:
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fig.savefig(path, dpi=110, bbox_inches="tight")
+    if svg and path.suffix.lower() != ".svg":
+        fig.savefig(path.with_suffix(".svg"), bbox_inches="tight")
+
+
+def _done(fig, path, svg):
+    if path is not None:
+        save(fig, path, svg)
+    return fig
+
+
+def _empty(message: str, path=None, svg=False) -> Figure:
+    fig = Figure(figsize=(6, 1.6))
+    ax = fig.add_subplot()
+    ax.axis("off")
+    ax.text(0.5, 0.5, _text(message), ha="center", va="center", wrap=True)
+    return _done(fig, path, svg)
+
+
+def plot_frontier(df: pd.DataFrame, path=None, x: str = "lat_p50_ms", y: str = "map",
+                  minimize_x: bool = True, title: str | None = None, svg: bool = False,
+                  max_labels: int = 14) -> Figure:
+    """Scatter with CI error bars, the frontier as a staircase, frontier and tied points labelled."""
+    f = _frontier(df, x=x, y=y, minimize_x=minimize_x)
+    if not len(f):
+        return _empty("no successful points to plot", path, svg)
+    with_acc = f[f["accuracy_available"]]
+    note = ""
+    if not len(with_acc):
+        note = "accuracy unavailable (untrained weights): points ranked by latency only"
+        f = f.assign(**{y: 0.0})
+        with_acc = f
+    fig = Figure(figsize=(9, 6))
+    ax = fig.add_subplot()
+    xv, xlo, xhi = bounds(with_acc, x)
+    yv, ylo, yhi = bounds(with_acc, y)
+    for k, (_, r) in enumerate(with_acc.iterrows()):
+        marker, colour = FAMILY_STYLE.get(r.get("family"), OTHER_STYLE)
+        st = r["frontier_status"]
+        face = colour if st == "frontier" else ("white" if st == "dominated" else colour)
+        alpha = 1.0 if st != "dominated" else 0.55
+        ax.errorbar(xv[k], yv[k], xerr=[[xv[k] - xlo[k]], [xhi[k] - xv[k]]],
+                    yerr=[[yv[k] - ylo[k]], [yhi[k] - yv[k]]], fmt=marker, ms=8 if st == "frontier" else 6,
+                    mfc=face, mec=colour if st != "tied" else "black", color=colour, alpha=alpha,
+                    elinewidth=0.8, capsize=2)
+    front = with_acc[with_acc["frontier_status"] == "frontier"].sort_values(x, ascending=minimize_x)
+    if len(front) > 1:
+        ax.step(front[x], front[y], where="post", color="black", lw=1.2, zorder=0)
+    show = with_acc[with_acc["frontier_status"] != "dominated"] if len(with_acc) > max_labels else with_acc
+    for _, r in show.head(max_labels * 2).iterrows():
+        ax.annotate(_text(r["label"]), (r[x], r[y]), xytext=(5, 4), textcoords="offset points", fontsize=7)
+    handles = [Line2D([], [], marker=m, color=c, ls="", label=fam) for fam, (m, c) in FAMILY_STYLE.items()]
+    handles += [Line2D([], [], marker="o", color="grey", mfc="grey", ls="", label="frontier (filled)"),
+                Line2D([], [], marker="o", color="black", mfc="grey", ls="", label="tied within noise (black edge)"),
+                Line2D([], [], marker="o", color="grey", mfc="white", ls="", label="dominated (hollow)")]
+    ax.legend(handles=handles, fontsize=8, loc="best")
+    ax.set_xlabel(axis_name(x))
+    ax.set_ylabel(axis_name(y) if not note else "(no accuracy)")
+    ax.grid(alpha=0.3)
+    ax.set_title(_text(title or f"Frontier: {axis_name(y)} vs {axis_name(x)}"), fontsize=11)
+    if note:
+        ax.text(0.5, 0.95, _text(note), transform=ax.transAxes, ha="center", va="top", fontsize=9, color="#a00")
+    return _done(fig, path, svg)
+
+
+def _configs(df: pd.DataFrame, sort_by: str | None = None) -> pd.DataFrame:
+    ok, _ = split_ok(df)
+    if sort_by and sort_by in ok.columns:
+        ok = ok.sort_values(sort_by, ascending=False)
+    return ok
+
+
+def _num(df: pd.DataFrame, col: str) -> pd.Series:
+    if col not in df.columns:
+        return pd.Series(np.nan, index=df.index)
+    return pd.to_numeric(df[col], errors="coerce")
+
+
+def _height(n: int) -> float:
+    return max(2.8, 0.32 * n + 1.4)
+
+
+def plot_stages(df: pd.DataFrame, path=None, svg: bool = False) -> Figure:
+    """Stacked bars of per-stage time for each configuration, the unprofiled p50 marked."""
+    ok = _configs(df, "lat_p50_ms")
+    cols = [f"stage_{s}_ms" for s in STAGES if _num(ok, f"stage_{s}_ms").fillna(0).gt(0).any()]
+    if not len(ok) or not cols:
+        return _empty("no stage times recorded", path, svg)
+    fig = Figure(figsize=(9, _height(len(ok))))
+    ax = fig.add_subplot()
+    ypos = np.arange(len(ok))
+    left = np.zeros(len(ok))
+    colours = ["#4e79a7", "#f28e2b", "#e15759", "#76b7b2", "#59a14f", "#edc948", "#b07aa1", "#bab0ac"]
+    for k, c in enumerate(cols):
+        v = _num(ok, c).fillna(0).to_numpy()
+        ax.barh(ypos, v, left=left, color=colours[STAGES.index(c[6:-3]) % len(colours)], label=c[6:-3],
+                hatch="//" if c == "stage_unattributed_ms" else None)
+        left += v
+    if "lat_p50_ms" in ok.columns:
+        ax.plot(ok["lat_p50_ms"], ypos, "k|", ms=14, mew=2, label="p50 (unprofiled)")
+    ax.set_yticks(ypos, [_text(s) for s in ok["label"]], fontsize=8)
+    ax.invert_yaxis()
+    ax.set_xlabel("time per image (ms), profiled pass")
+    ax.set_title("Where the time goes, per stage", fontsize=11)
+    ax.legend(fontsize=8, loc="lower right")
+    ax.grid(axis="x", alpha=0.3)
+    return _done(fig, path, svg)
+
+
+def plot_latency_distributions(samples: pd.DataFrame, df: pd.DataFrame | None = None, path=None,
+                               svg: bool = False, max_points: int = 40) -> Figure:
+    """Box plots of the raw samples per configuration (whiskers at the 1st and 99th percentiles)."""
+    if samples is None or not len(samples):
+        return _empty("no raw latency samples recorded", path, svg)
+    labels = {}
+    if df is not None and len(df):
+        ok, _ = split_ok(df)
+        labels = dict(zip(ok["point_id"], ok["label"]))
+    groups = [(pid, g["ms"].to_numpy(dtype=float)) for pid, g in samples.groupby("point_id")
+              if not labels or pid in labels]
+    groups.sort(key=lambda t: np.median(t[1]))
+    groups = groups[:max_points]
+    if not groups:
+        return _empty("no raw latency samples for successful points", path, svg)
+    fig = Figure(figsize=(9, _height(len(groups))))
+    ax = fig.add_subplot()
+    ax.boxplot([g for _, g in groups], orientation="horizontal", whis=(1, 99), showfliers=True,
+               flierprops={"markersize": 2, "alpha": 0.4}, medianprops={"color": "black"})
+    ax.set_yticks(np.arange(1, len(groups) + 1), [_text(labels.get(p, p)) for p, _ in groups], fontsize=8)
+    ax.invert_yaxis()
+    ax.set_xlabel("latency per image (ms); box = p25-p75, whiskers = p1-p99")
+    ax.set_title("Latency distributions", fontsize=11)
+    ax.grid(axis="x", alpha=0.3)
+    return _done(fig, path, svg)
+
+
+def plot_accuracy_vs(df: pd.DataFrame, knob: str = "size", path=None, svg: bool = False) -> Figure:
+    """mAP (with CI) against input size or proposal count, one line per model (and other knob)."""
+    ok, _ = split_ok(df)
+    if "map" not in ok.columns or not pd.to_numeric(ok["map"], errors="coerce").notna().any():
+        return _empty("accuracy unavailable (untrained weights)", path, svg)
+    other = "proposals" if knob == "size" else "size"
+    ok = ok[pd.to_numeric(ok["map"], errors="coerce").notna()]
+    # Accuracy depends on the graph, not on the thread setting: one value per graph.
+    cols = [c for c in ("map", "map_ci_lo", "map_ci_hi") if c in ok.columns]
+    graph = ok.groupby(["model", "family", other, knob], dropna=False)[cols].mean().reset_index()
+    fig = Figure(figsize=(8, 5))
+    ax = fig.add_subplot()
+    for (model, fam, o), g in graph.groupby(["model", "family", other], dropna=False):
+        g = g.sort_values(knob)
+        marker, colour = FAMILY_STYLE.get(fam, OTHER_STYLE)
+        lo = g["map"] - g.get("map_ci_lo", g["map"])
+        hi = g.get("map_ci_hi", g["map"]) - g["map"]
+        name = f"{model} ({other} {int(o)})" if pd.notna(o) and graph[other].nunique() > 1 else str(model)
+        ax.errorbar(g[knob], g["map"], yerr=[lo.fillna(0), hi.fillna(0)], marker=marker, capsize=3,
+                    label=_text(name))
+    ax.set_xlabel({"size": "input size (px)", "proposals": "proposal count"}.get(knob, knob))
+    ax.set_ylabel(axis_name("map"))
+    ax.set_title(f"Accuracy vs {knob}", fontsize=11)
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=8)
+    return _done(fig, path, svg)
+
+
+def plot_memory(df: pd.DataFrame, path=None, svg: bool = False) -> Figure:
+    """Peak RSS per configuration, split into imports, model load and inference."""
+    ok = _configs(df, "rss_peak_mib")
+    if not len(ok) or "rss_peak_mib" not in ok.columns or ok["rss_peak_mib"].isna().all():
+        return _empty("no memory figures recorded", path, svg)
+    imp = _num(ok, "rss_imports_mib").fillna(0).to_numpy()
+    load = _num(ok, "rss_loaded_mib").fillna(0).to_numpy()
+    peak = _num(ok, "rss_peak_mib").fillna(0).to_numpy()
+    load = np.maximum(load, imp)
+    peak = np.maximum(peak, load)
+    fig = Figure(figsize=(9, _height(len(ok))))
+    ax = fig.add_subplot()
+    ypos = np.arange(len(ok))
+    ax.barh(ypos, imp, color="#bab0ac", label="after imports")
+    ax.barh(ypos, load - imp, left=imp, color="#4e79a7", label="+ model / session loaded")
+    ax.barh(ypos, peak - load, left=load, color="#e15759", label="+ peak while running")
+    ax.set_yticks(ypos, [_text(s) for s in ok["label"]], fontsize=8)
+    ax.invert_yaxis()
+    ax.set_xlabel("worker resident memory (MiB)")
+    ax.set_title("Memory per configuration", fontsize=11)
+    ax.legend(fontsize=8, loc="lower right")
+    ax.grid(axis="x", alpha=0.3)
+    return _done(fig, path, svg)
