@@ -1,0 +1,199 @@
+"""Throughput under concurrency: K = 1 and K = 2 load measurements on real worker processes.
+
+Timings are never asserted (the machine is shared). What is asserted:
+- the arithmetic of `summarise` on hand-made timelines (worked by hand in the comments),
+- Little's law L = lambda W (textbook operational law: time-average number in the system =
+  throughput x mean time in the system) on real measured timelines. Both sides come from the
+  same timestamps, so this is a consistency check of the bookkeeping (window clipping, gaps
+  between requests), within 10 %,
+- the utilisation law U = X S (textbook operational law: utilisation = throughput x service
+  demand) with U from process CPU time and S from per-request CPU time, within 10 %,
+- structure, pinning, failure capture and bad input.
+"""
+import numpy as np
+import pytest
+
+from speedbench.errors import UserError
+from speedbench.measure.load import LOAD_COLUMNS, host_cores, measure_load, measure_scaling, summarise
+from speedbench.measure.point import Point, Policy
+
+MS = 1_000_000  # ns per ms
+FAST = Policy(warmup_min=2, warmup_max=6, warmup_window=2, max_seconds=1.0)
+IMAGES = [np.full((24, 32, 3), v, np.uint8) for v in (0, 128)]
+
+
+def synthetic(work_ms=4.0, threads=1, **options):
+    return Point(model="synthetic", backend="synthetic", size=320, intra_threads=threads,
+                 options={"work_ms": work_ms, **options})
+
+
+# ------------------------------------------------------------------ hand-worked timelines
+def timeline(starts_ms, dur_ms, cpu_ms=None):
+    s = [int(x * MS) for x in starts_ms]
+    e = [int((x + d) * MS) for x, d in zip(starts_ms, dur_ms)]
+    cpu = [int((c if cpu_ms is not None else d) * MS) for c, d in zip(cpu_ms or dur_ms, dur_ms)]
+    return {"starts_ns": s, "ends_ns": e, "cpu_ns": cpu, "cpu_total_ns": sum(cpu)}
+
+
+def test_summarise_two_saturated_workers():
+    # Two workers, 100 ms requests back to back over a 1 s window [0, 1000] ms:
+    # 10 completions each -> X = 20 / 1 s = 20 fps; W = 0.1 s; L = 2 (both always busy);
+    # Little: X W = 20 x 0.1 = 2 = L.
+    w = [timeline(range(0, 1000, 100), [100] * 10) for _ in range(2)]
+    s = summarise(w, 0, 1000 * MS, cores_used=2)
+    assert s["tput_fps"] == pytest.approx(20.0)
+    assert s["tput_mean_ms"] == pytest.approx(100.0) and s["tput_p99_ms"] == pytest.approx(100.0)
+    assert s["littles_L"] == pytest.approx(2.0) and s["littles_XW"] == pytest.approx(2.0)
+    # utilisation law: CPU 1 s per worker over a 1 s span on 2 cores -> U = 1.0;
+    # X S = (10 / 1 s) x 0.1 s per worker, summed = 2, / 2 cores = 1.0
+    assert s["tput_cpu_util"] == pytest.approx(1.0) and s["tput_cpu_util_xs"] == pytest.approx(1.0)
+
+
+def test_summarise_gaps_and_window_edges():
+    # One worker: 50 ms requests starting every 100 ms from -50 ms; window [0, 500] ms.
+    # Requests: [-50, 0], [50, 100], [150, 200], [250, 300], [350, 400], [450, 500].
+    # Completed inside the window (end in [0, 500]): all 6 -> X = 6 / 0.5 s = 12 fps.
+    # In flight inside the window: 0 + 5 x 50 ms = 250 ms -> L = 0.25 / 0.5 = 0.5.
+    # W = 50 ms -> X W = 12 x 0.05 = 0.6: the request ending exactly at the window start counts as
+    # a completion but adds no time in flight -- the edge effect the 10 % tolerance on real data
+    # is about (it shrinks as the window holds more requests).
+    w = [timeline(range(-50, 500, 100), [50] * 6, cpu_ms=[25] * 6)]
+    s = summarise(w, 0, 500 * MS, cores_used=1)
+    assert s["tput_requests"] == 6 and s["tput_fps"] == pytest.approx(12.0)
+    assert s["littles_L"] == pytest.approx(0.5) and s["littles_XW"] == pytest.approx(0.6)
+    # utilisation law over the worker's span [-50, 500] = 0.55 s: CPU 6 x 25 ms = 0.15 s
+    # -> U = 0.15 / 0.55 = 0.2727; X S = (6 / 0.55) x 0.025 = 0.2727
+    assert s["tput_cpu_util"] == pytest.approx(0.15 / 0.55)
+    assert s["tput_cpu_util_xs"] == pytest.approx(0.15 / 0.55)
+
+
+def test_summarise_rejects_empty_window():
+    with pytest.raises(ValueError):
+        summarise([timeline([0], [1])], 5, 5, cores_used=1)
+
+
+# ------------------------------------------------------------------ real measurements
+@pytest.fixture(scope="module")
+def scaling():
+    return measure_scaling(synthetic(work_ms=4.0), IMAGES, ks=(1, 2), policy=FAST, seconds=0.8,
+                           timeout_s=60)
+
+
+def test_scaling_k1_k2_structure(scaling):
+    r1, r2 = scaling
+    assert r1.ok and r2.ok, (r1.reason, r2.reason)
+    for r, k in ((r1, 1), (r2, 2)):
+        row = r.to_row()
+        assert set(LOAD_COLUMNS) <= set(row)
+        assert row["concurrency"] == k and row["cores_used"] == k
+        assert row["host_cores"] == host_cores()
+        assert row["tput_p50_ms"] <= row["tput_p90_ms"] <= row["tput_p99_ms"]
+        assert row["n_samples"] == row["tput_requests"] == len(r.latencies_ms)
+        # every worker contributed requests inside the common window
+        assert len(r.workers) == k and all(len(w["starts_ns"]) > 5 for w in r.workers)
+    assert r1.to_row()["point_id"] != r2.to_row()["point_id"]
+    assert r1.summary["scaling_eff"] == 1.0
+    # scaling efficiency is X(2) / (2 X(1)), by definition
+    assert r2.summary["scaling_eff"] == pytest.approx(r2.tput_fps / (2 * r1.tput_fps))
+    assert 0 < r2.summary["scaling_eff"] < 1.5
+
+
+def test_littles_law_on_measured_data(scaling):
+    for r in scaling:
+        s = r.summary
+        # consistency check: L (time-average in flight) vs X W from the same timestamps
+        assert s["littles_L"] == pytest.approx(s["littles_XW"], rel=0.10)
+        # closed loop: each worker always has one request in flight, so L is close to K
+        assert s["littles_L"] == pytest.approx(r.k, rel=0.10)
+
+
+def test_utilisation_law_on_measured_data(scaling):
+    for r in scaling:
+        s = r.summary
+        assert s["tput_cpu_util"] > 0
+        assert s["tput_cpu_util"] == pytest.approx(s["tput_cpu_util_xs"], rel=0.10)
+
+
+def test_pinned_workers_get_disjoint_cores():
+    if host_cores() < 2:
+        pytest.skip("needs 2 cores to pin two workers apart")
+    r = measure_load(synthetic(work_ms=2.0), IMAGES, k=2, policy=FAST, seconds=0.3, pin=True, timeout_s=60)
+    assert r.ok, r.reason
+    sets = [set(w["affinity"]) for w in r.workers]
+    assert all(len(s) == 1 for s in sets) and not (sets[0] & sets[1])
+    assert r.to_row()["affinity"] == 1  # recorded in the configuration
+
+
+def test_ort_backend_under_load(tmp_path):
+    # A small real ONNX graph (two convolutions) run by onnxruntime in each worker.
+    onnx = pytest.importorskip("onnx")
+    from onnx import TensorProto, helper, numpy_helper
+
+    rng = np.random.default_rng(0)
+    w1 = numpy_helper.from_array(rng.standard_normal((8, 3, 3, 3)).astype(np.float32), "w1")
+    w2 = numpy_helper.from_array(rng.standard_normal((8, 8, 3, 3)).astype(np.float32), "w2")
+    axes = numpy_helper.from_array(np.array([0], np.int64), "axes")
+    nodes = [helper.make_node("Unsqueeze", ["image", "axes"], ["x"]),
+             helper.make_node("Conv", ["x", "w1"], ["y1"], pads=[1, 1, 1, 1]),
+             helper.make_node("Relu", ["y1"], ["r1"]),
+             helper.make_node("Conv", ["r1", "w2"], ["y2"], pads=[1, 1, 1, 1]),
+             helper.make_node("ReduceMean", ["y2"], ["scores"], keepdims=0)]
+    graph = helper.make_graph(nodes, "tiny", [helper.make_tensor_value_info("image", TensorProto.FLOAT,
+                                                                            [3, "H", "W"])],
+                              [helper.make_tensor_value_info("scores", TensorProto.FLOAT, None)],
+                              initializer=[w1, w2, axes])
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)])
+    path = tmp_path / "tiny.onnx"
+    onnx.save(model, path)
+    point = Point(model="tiny", backend="ort", size=96, intra_threads=1, graph=str(path))
+    images = [np.full((96, 96, 3), v, np.uint8) for v in (10, 200)]
+    k = min(2, host_cores())
+    r1, r2 = measure_scaling(point, images, ks=(1, k), policy=FAST, seconds=0.6, timeout_s=120) if k == 2 else \
+        (measure_load(point, images, k=1, policy=FAST, seconds=0.6),) * 2
+    for r in (r1, r2):
+        assert r.ok, r.reason
+        assert r.summary["littles_L"] == pytest.approx(r.summary["littles_XW"], rel=0.10)
+        assert r.summary["tput_cpu_util"] == pytest.approx(r.summary["tput_cpu_util_xs"], rel=0.10)
+
+
+# ------------------------------------------------------------------ failures and bad input
+def test_worker_that_raises_fails_the_point_with_reason():
+    r = measure_load(synthetic(fail="raise"), IMAGES, k=2, policy=FAST, seconds=0.3, timeout_s=60)
+    assert r.status == "failed" and "ValueError" in r.reason and "worker" in r.reason
+    row = r.to_row()
+    assert row["status"] == "failed" and row["concurrency"] == 2 and np.isnan(row["tput_fps"])
+
+
+def test_worker_killed_mid_window_fails_the_point():
+    r = measure_load(synthetic(work_ms=2.0, fail="sigkill", fail_at="run", fail_after=20), IMAGES, k=1,
+                     policy=FAST, seconds=2.0, timeout_s=60)
+    assert r.status == "failed" and "SIGKILL" in r.reason
+
+
+def test_hung_worker_times_out():
+    r = measure_load(synthetic(fail="hang", fail_at="run", fail_after=3), IMAGES, k=2, policy=FAST,
+                     seconds=0.3, timeout_s=4)
+    assert r.status == "failed" and "timed out" in r.reason
+    # and the harness still works afterwards
+    assert measure_load(synthetic(work_ms=1.0), IMAGES, k=1, policy=FAST, seconds=0.2).ok
+
+
+@pytest.mark.parametrize("kwargs, text", [
+    (dict(k=0), "K must be >= 1"),
+    (dict(k=host_cores() + 1), "cores"),
+    (dict(k=1, seconds=0), "seconds"),
+])
+def test_bad_arguments(kwargs, text):
+    with pytest.raises(UserError, match=text):
+        measure_load(synthetic(), IMAGES, policy=FAST, **kwargs)
+
+
+def test_bad_points_and_images():
+    with pytest.raises(UserError, match="intra_threads"):
+        measure_load(synthetic(threads=0), IMAGES, k=1)
+    with pytest.raises(UserError, match="at least one image"):
+        measure_load(synthetic(), [], k=1)
+    with pytest.raises(UserError, match="graph"):
+        measure_load(Point(model="m", backend="ort", intra_threads=1, graph="/nonexistent.onnx"), IMAGES, k=1)
+    with pytest.raises(UserError, match="uint8"):
+        measure_load(synthetic(), [np.zeros((4, 4), np.float32)], k=1)
