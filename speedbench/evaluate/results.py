@@ -1,0 +1,93 @@
+"""Detections in the COCO results format: a list of {image_id, category_id, bbox, score}.
+
+bbox is [x, y, w, h] in original-image pixels. Validation is vectorised; only
+when something is wrong do we walk the entries to name the first bad one.
+"""
+from __future__ import annotations
+
+import json
+from numbers import Real
+from pathlib import Path
+
+import numpy as np
+
+from speedbench.errors import UserError
+from speedbench.evaluate.cocoeval import Detections, GroundTruth
+
+FIELDS = ("image_id", "category_id", "bbox", "score")
+_NUMBER_TYPES = (int, float, np.integer, np.floating)
+
+
+def load_detections(path, gt) -> list[dict]:
+    """Read and validate a COCO results JSON file against ground truth (dict or Dataset)."""
+    path = Path(path)
+    try:
+        dets = json.loads(path.read_text())
+    except FileNotFoundError:
+        raise UserError(f"{path}: detections file not found") from None
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise UserError(f"{path}: not a readable JSON file ({exc})") from None
+    ground = gt if isinstance(gt, GroundTruth) else GroundTruth(getattr(gt, "coco", gt))
+    parse_detections(dets, ground, source=str(path))
+    return dets
+
+
+def parse_detections(dets, gt: GroundTruth, source: str = "detections") -> Detections:
+    """Validate a results list and return it as arrays; UserError names the source and the entry."""
+    if not isinstance(dets, list):
+        raise UserError(f"{source}: expected a JSON list of detections, got {type(dets).__name__}")
+    try:
+        img = [d["image_id"] for d in dets]
+        cat = [d["category_id"] for d in dets]
+        score = [d["score"] for d in dets]
+        boxes = [d["bbox"] for d in dets]
+        flat = [v for b in boxes for v in b]
+        types_ok = all(issubclass(t, _NUMBER_TYPES) and t is not bool
+                       for t in {type(v) for v in (*img, *cat, *score, *flat)})
+        if not types_ok or any(len(b) != 4 for b in boxes):
+            raise ValueError
+        box = np.array(flat, dtype=np.float64).reshape(-1, 4)
+    except (KeyError, TypeError, ValueError):
+        _raise_first_bad(dets, source)
+        raise  # pragma: no cover - _raise_first_bad always raises
+    img_f, cat_f = np.array(img, float), np.array(cat, float)
+    score = np.array(score, np.float64)
+    checks = [
+        (~np.isfinite(img_f) | (img_f != np.round(img_f)), "image_id must be an integer"),
+        (~np.isin(img_f, gt.image_ids), "image_id is not an image of the ground truth"),
+        (~np.isfinite(cat_f) | (cat_f != np.round(cat_f)), "category_id must be an integer"),
+        (~np.isin(cat_f, gt.cat_ids), "category_id is not a category of the ground truth"),
+        (~np.isfinite(box).all(axis=1), "bbox values must be finite numbers"),
+        ((box[:, 2] < 0) | (box[:, 3] < 0), "bbox has negative width or height"),
+        (~np.isfinite(score), "score must be a finite number"),
+    ]
+    for bad, why in checks:
+        if bad.any():
+            i = int(np.flatnonzero(bad)[0])
+            raise UserError(f"{source}: detection [{i}]: {why} ({_short(dets[i])})")
+    return Detections(gt, img_f.astype(np.int64), cat_f.astype(np.int64), box, score)
+
+
+def _raise_first_bad(dets, source):
+    for i, d in enumerate(dets):
+        if not isinstance(d, dict):
+            raise UserError(f"{source}: detection [{i}]: expected an object, got {type(d).__name__}")
+        missing = [f for f in FIELDS if f not in d]
+        if missing:
+            raise UserError(f"{source}: detection [{i}]: missing field {missing[0]!r}")
+        for f in ("image_id", "category_id", "score"):
+            if not _is_number(d[f]):
+                raise UserError(f"{source}: detection [{i}]: {f} must be a number, got {d[f]!r}")
+        b = d["bbox"]
+        if not isinstance(b, (list, tuple)) or len(b) != 4 or not all(_is_number(v) for v in b):
+            raise UserError(f"{source}: detection [{i}]: bbox must be [x, y, w, h] numbers, got {b!r}")
+    raise UserError(f"{source}: malformed detections list")
+
+
+def _is_number(v) -> bool:
+    return isinstance(v, Real) and not isinstance(v, bool)
+
+
+def _short(d) -> str:
+    text = json.dumps(d, default=str)
+    return text if len(text) <= 120 else text[:117] + "..."
