@@ -1,0 +1,44 @@
+"""speedbench compare BASE NEW: regression verdict between two runs of one profile.
+
+Exit status: 0 no regression, 1 regression, 2 usage or input error.
+"""
+from __future__ import annotations
+
+
+def add_parser(subparsers):
+    p = subparsers.add_parser(
+        "compare", help="regression verdict between two runs (exit 1 on regression)",
+        description="Match points by configuration; per point the ratio of median latencies with a "
+                    "bootstrap CI, memory and accuracy deltas, detection drift and stage ratios; plus the "
+                    "environment diff. Exit 0: no regression, 1: regression, 2: usage or input error.")
+    p.add_argument("base", metavar="BASE_RUN", help="run directory before the change")
+    p.add_argument("new", metavar="NEW_RUN", help="run directory after the change")
+    p.add_argument("--threshold", default="5%", type=_fraction,
+                   help="slowdown tolerated before a verdict of slower, e.g. 5%% or 0.05 (default 5%%)")
+    p.add_argument("--confidence", default=0.95, type=_fraction, help="confidence of the intervals (default 0.95)")
+    p.add_argument("--format", default="text", choices=["text", "md", "json"], help="output format")
+    p.add_argument("--fail-on-drift", action="store_true",
+                   help="count changed detections on the held-out images as a regression")
+    p.add_argument("--seed", type=int, default=0, help="bootstrap seed (default 0)")
+    p.set_defaults(run=run)
+
+
+def _fraction(text: str) -> float:
+    import argparse
+
+    s = str(text).strip()
+    try:
+        return float(s[:-1]) / 100 if s.endswith("%") else float(s)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a fraction like 0.05 or a percentage like 5%, not {text!r}")
+
+
+def run(args) -> int:
+    from speedbench.analyse import Run, compare
+
+    base, new = Run.load(args.base), Run.load(args.new)
+    result = compare(base, new, threshold=args.threshold, confidence=args.confidence, seed=args.seed,
+                     fail_on_drift=args.fail_on_drift)
+    out = {"text": result.to_text, "md": result.to_markdown, "json": result.to_json}[args.format]()
+    print(out)
+    return 1 if result.regressed else 0
