@@ -92,8 +92,17 @@ def test_skips_pins_beyond_cores_and_unsupported_concurrency():
     assert any("skipped affinity=8" in n for n in p.notes)
     assert any("skipped concurrency=2" in n for n in p.notes)
     p = plan_of(body, cores=2, concurrency_supported=True)
-    assert len(p.points) == 3 and {pt.config["concurrency"] for pt in p.points} == {1, 2, 4}
-    assert any("oversubscribes" in n for n in p.notes)
+    # K=4 workers x 1 thread do not fit 2 cores: skipped; K=2 fits.
+    assert len(p.points) == 2 and {pt.config["concurrency"] for pt in p.points} == {1, 2}
+    assert any("skipped concurrency=4 x 1 threads" in n for n in p.notes)
+
+
+def test_synthetic_model_only_on_synthetic_backend():
+    p = plan_of('[sweep]\nbackends = ["ort", "synthetic"]\nproposals = [50, 100]\n'
+                '[[models]]\nid = "synthetic:work_ms=1"\n[[threads]]\nintra = 1\n')
+    assert {pt.config["backend"] for pt in p.points} == {"synthetic"}
+    assert {pt.config["proposals"] for pt in p.points} == {50, 100}
+    assert any("synthetic backend only" in n for n in p.notes)
 
 
 def test_unknown_model_names_key_path():

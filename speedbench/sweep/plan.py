@@ -73,6 +73,18 @@ def _zoo_lookup(model_id: str):
     return zoo.get_spec(model_id)
 
 
+def synthetic_spec(model_id: str):
+    """Stand-in spec for the measure package's synthetic harness backend (no real model).
+
+    Its work grows with size and proposals, so both axes can be exercised.
+    """
+    from speedbench.zoo.spec import ModelSpec
+
+    return ModelSpec(id=model_id, builder="", family="two-stage", native_size=320,
+                     detections_per_img=0, score_thresh=0.0, default_proposals=100,
+                     notes="harness test backend, not a detector")
+
+
 def _cores_allowed() -> int:
     try:
         return len(os.sched_getaffinity(0))
@@ -100,7 +112,7 @@ def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool | N
 
     for mi, entry in enumerate(profile.models):
         try:
-            spec = get_spec(entry.id)
+            spec = synthetic_spec(entry.id) if entry.id.startswith("synthetic") else get_spec(entry.id)
         except UserError as exc:
             raise UserError(f"{profile.source}: models[{mi}].id: {exc}") from None
         except KeyError:
@@ -145,6 +157,9 @@ def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool | N
 def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, concurrency_supported, notes):
     point_notes = []
     mode, inter = t.mode, t.inter
+    if entry.id.startswith("synthetic") and backend != "synthetic":
+        notes[f"skipped {entry.id} on backend {backend}: a synthetic model runs on the synthetic backend only"] += 1
+        return None
     if backend == "eager":
         # PyTorch eager has no ORT execution mode or graph optimisation level.
         if opt != profile.opt_levels[0]:
@@ -161,8 +176,13 @@ def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, conc
     if k > 1 and not concurrency_supported:
         notes[f"skipped concurrency={k}: throughput points are not supported by the measure package yet"] += 1
         return None
-    if k > 1 and k * max(t.intra, 1) > cores:
-        notes[f"concurrency={k} x intra={t.intra} oversubscribes {cores} core(s) (kept)"] += 1
+    if k > 1 and t.intra == 0:
+        notes[f"skipped concurrency={k} with intra=0: throughput points need an explicit thread count"] += 1
+        return None
+    if k > 1 and k * max(t.intra, t.affinity) > cores:
+        # K workers x T threads beyond the cores measures contention, not the configuration.
+        notes[f"skipped concurrency={k} x {max(t.intra, t.affinity)} threads: more than the {cores} core(s) here"] += 1
+        return None
     config = {
         "model": entry.id, "weights": entry.weights, "size": int(size), "proposals": int(prop),
         "backend": backend, "intra_threads": t.intra, "inter_threads": inter, "exec_mode": mode,
@@ -181,10 +201,10 @@ def _dedupe(values) -> list:
 
 def _measure_supports_concurrency() -> bool:
     try:
-        from speedbench import measure
+        from speedbench.measure.load import measure_load  # noqa: F401
     except ImportError:
         return False
-    return bool(getattr(measure, "SUPPORTS_CONCURRENCY", False))
+    return True
 
 
 def estimate_seconds(plan: Plan, profile: Profile, done_ids=(), n_images: int | None = None,

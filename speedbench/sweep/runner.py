@@ -1,0 +1,102 @@
+"""Running a sweep: export each graph once, evaluate it once, measure every point
+in its own worker, and store each row the moment it is measured.
+
+Failures never stop the sweep: an export that fails or a point that fails
+becomes a row with status "failed" and a reason. A sweep that is killed keeps
+every point already written; `resume=True` measures only the missing ones.
+"""
+from __future__ import annotations
+
+import sys
+import time
+from pathlib import Path
+
+from speedbench.errors import UserError
+from speedbench.sweep import steps
+from speedbench.sweep.plan import Plan, expand_plan
+from speedbench.sweep.profile import Profile, load_profile
+from speedbench.sweep.progress import Progress
+from speedbench.sweep.rundir import RunDir
+
+
+def run_sweep(profile_path, out_dir=None, resume: bool = False, quiet: bool = False,
+              stream=None) -> Path:
+    """Run (or resume) the sweep described by a profile file; returns the run directory."""
+    profile = load_profile(profile_path)
+    plan = expand_plan(profile)
+    out = Path(out_dir) if out_dir else profile.output_dir()
+    rd = _open_run(profile, out, resume)
+    try:
+        run_plan(rd, profile, plan, quiet=quiet, stream=stream)
+    finally:
+        rd.close()
+    return out
+
+
+def _open_run(profile: Profile, out: Path, resume: bool) -> RunDir:
+    if resume:
+        rd = RunDir.open(out)
+        stored = rd.profile_text()
+        if stored.strip() != profile.text.strip():
+            rd.close()
+            raise UserError(f"{out / 'profile.toml'}: the run was started with a different profile than "
+                            f"{profile.source}; resume with that file or start a new run directory")
+        return rd
+    if out.exists() and any(out.iterdir()) and not (out / "meta.json").exists():
+        raise UserError(f"{out}: exists and is not empty; choose another output directory")
+    from speedbench.sweep.env import environment_fingerprint
+
+    meta = {"profile_name": profile.name, "host": profile.host, "profile_source": profile.source,
+            "env": environment_fingerprint()}
+    return RunDir.create(out, profile.text, meta)
+
+
+def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stream=None) -> dict:
+    """Measure every point of `plan` not yet in `rd`; returns counts by status."""
+    stream = stream or sys.stderr
+    todo = plan.missing(rd.done_ids())
+    counts = {"ok": 0, "failed": 0, "skipped_done": len(plan.points) - len(todo)}
+    rd.update_meta(plan_points=len(plan.points), plan_notes=plan.notes)
+    for note in plan.notes:
+        print(f"note: {note}", file=stream)
+    if not todo:
+        rd.finish()
+        return counts
+
+    cache = Path(profile.cache)
+    needs_data = any(p.config["backend"] != "synthetic" for p in todo)
+    dataset = steps.prepare_dataset(profile, cache) if needs_data else None
+    timing_images = steps.timing_images(dataset, profile.timing_images)
+    policy = steps.make_policy(profile.repetitions)
+
+    progress = Progress(len(todo), quiet=quiet, stream=stream)
+    graph_info: dict = {}
+    # One-stream throughput of each configuration, for the scaling efficiency of K > 1 points.
+    single_fps = {_stream_key(r): r.get("fps") for r in rd.rows()
+                  if r.get("concurrency") == 1 and r.get("status") == "ok"}
+    try:
+        for point in todo:
+            key = point.graph_key
+            if key not in graph_info and point.config["backend"] != "synthetic":
+                progress.status(f"export {key[0]} {key[2]}px")
+                graph_info[key] = steps.prepare_graph(point, profile, dataset, rd, cache, progress)
+            info = graph_info.get(key, steps.GraphInfo())
+            progress.start(point.label)
+            t0 = time.monotonic()
+            row, samples = steps.measure(point, info, profile, timing_images, policy,
+                                         baseline_fps=single_fps.get(_stream_key(point.config)))
+            if point.config["concurrency"] == 1 and row.get("status") == "ok":
+                single_fps[_stream_key(point.config)] = row.get("fps")
+            row["wall_s"] = round(time.monotonic() - t0, 3)
+            rd.write_point(row, samples)
+            counts["ok" if row.get("status") == "ok" else "failed"] += 1
+            progress.done(point.label, row)
+    finally:
+        progress.close()
+    rd.finish()
+    return counts
+
+
+def _stream_key(config: dict) -> tuple:
+    return tuple(config.get(c) for c in ("model", "weights", "size", "proposals", "backend", "intra_threads",
+                                          "inter_threads", "exec_mode", "opt_level", "affinity"))

@@ -1,0 +1,237 @@
+"""The sweep's calls into the packages above it: data, export, evaluate, measure.
+
+Kept in one place so the runner reads as the procedure it is, and so every
+failure of a step becomes data (a failed row, a note) instead of stopping the sweep.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import os
+import shutil
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from speedbench.errors import UserError
+
+NAN = float("nan")
+ACCURACY_COLUMNS = ("map", "map50", "map75", "map_small", "map_medium", "map_large", "mar_100",
+                    "map_ci_lo", "map_ci_hi")
+
+
+@dataclass
+class GraphInfo:
+    """One distinct graph (model, weights, size, proposals): its export and its accuracy."""
+    path: str | None = None
+    ok: bool = True
+    reason: str = ""
+    facts: dict = field(default_factory=dict)       # params, gmacs, model_file_mib, ...
+    accuracy: dict = field(default_factory=dict)    # ACCURACY_COLUMNS (+ extras)
+    notes: list = field(default_factory=list)
+
+
+# ----------------------------------------------------------------- dataset
+def prepare_dataset(profile, cache: Path):
+    """The profile's dataset: a path as given, or generated scenes kept in the cache."""
+    from speedbench.data import load_dataset
+
+    if profile.dataset_path:
+        return load_dataset(profile.dataset_path)
+    return load_dataset(scenes_path(profile, cache))
+
+
+def scenes_path(profile, cache: Path) -> Path:
+    """Generate the profile's held-out scenes once; later runs reuse the same files."""
+    from speedbench.data import make_scenes
+
+    out = Path(cache) / "scenes" / f"heldout-n{profile.scenes_count}-s{profile.scenes_seed}"
+    ann = out / "annotations.json"
+    if not ann.exists():
+        tmp = out.with_name(out.name + f".tmp{os.getpid()}")
+        shutil.rmtree(tmp, ignore_errors=True)
+        make_scenes(tmp, count=profile.scenes_count, seed=profile.scenes_seed, split="heldout")
+        out.parent.mkdir(parents=True, exist_ok=True)
+        try:
+            os.replace(tmp, out)   # atomic: a half-generated set is never picked up
+        except OSError:
+            shutil.rmtree(tmp, ignore_errors=True)  # another sweep generated it meanwhile
+    return ann
+
+
+def timing_images(dataset, n: int, size: int = 320) -> list:
+    """The first n images of the dataset, decoded once (decode is outside every timed region)."""
+    import numpy as np
+
+    if dataset is None:
+        # Synthetic backend only: it does not look at pixels.
+        return [np.zeros((size, size, 3), dtype=np.uint8)]
+    images = []
+    for i in range(min(n, len(dataset))):
+        images.append(dataset.image(i))
+    if not images:
+        raise UserError(f"{dataset.source}: dataset has no images")
+    return images
+
+
+def make_policy(repetitions: dict):
+    from speedbench.measure import Policy
+
+    policy = Policy(**repetitions)
+    if "warmup_max" not in repetitions and policy.warmup_max < policy.warmup_min:
+        policy.warmup_max = policy.warmup_min
+    policy.validate()
+    return policy
+
+
+# ----------------------------------------------------------------- export + accuracy
+def prepare_graph(point, profile, dataset, rd, cache: Path, progress) -> GraphInfo:
+    """Export the point's graph (cached by content) and evaluate its accuracy (cached too)."""
+    model, weights, size, proposals = point.graph_key
+    info = GraphInfo()
+    try:
+        from speedbench.export import export_onnx
+
+        record = export_onnx(model, weights=weights, size=size, proposals=proposals,
+                             cache_dir=Path(cache) / "exports")
+    except UserError as exc:
+        return GraphInfo(ok=False, reason=f"export: {exc}")
+    except Exception as exc:  # an exporter crash is a failed graph, not a failed sweep
+        return GraphInfo(ok=False, reason=f"export: {type(exc).__name__}: {_one_line(exc)}")
+    if not record.ok:
+        return GraphInfo(ok=False, reason=f"export: {record.reason}")
+    info.path = str(_link_into_run(Path(record.path), rd.exports))
+    info.facts = _facts(record)
+    if weights == "none" or not profile.accuracy or dataset is None:
+        return info
+    progress.status(f"accuracy {model} {size}px")
+    info.accuracy = _accuracy(Path(record.path), point, profile, dataset, cache, info)
+    return info
+
+
+def _facts(record) -> dict:
+    facts = dict(getattr(record, "facts", None) or {})
+    out = {k: facts[k] for k in ("params", "gmacs") if k in facts}
+    path = Path(record.path)
+    out["model_file_mib"] = float(facts.get("model_file_mib", path.stat().st_size / 2**20))
+    for key in ("opset", "graph_sha"):
+        if key in facts:
+            out[f"graph_{key}" if key == "opset" else key] = facts[key]
+    return out
+
+
+def _link_into_run(path: Path, exports: Path) -> Path:
+    """Keep a copy of the graph in the run directory (a hard link when possible: no extra space)."""
+    exports.mkdir(exist_ok=True)
+    target = exports / path.name
+    if target.exists():
+        return target
+    tmp = exports / f".{path.name}.{os.getpid()}.tmp"
+    try:
+        os.link(path, tmp)
+    except OSError:
+        shutil.copyfile(path, tmp)
+    os.replace(tmp, target)
+    return target
+
+
+def _file_digest(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()[:16]
+
+
+def _accuracy(graph: Path, point, profile, dataset, cache: Path, info: GraphInfo) -> dict:
+    """mAP of one graph over the dataset; cached by (graph bytes, dataset, limit)."""
+    key = hashlib.sha256(json.dumps([_file_digest(graph), dataset_fingerprint(dataset), profile.limit])
+                         .encode()).hexdigest()[:20]
+    path = Path(cache) / "accuracy" / f"{key}.json"
+    if path.exists():
+        try:
+            return json.loads(path.read_text())
+        except (OSError, json.JSONDecodeError):
+            pass  # a damaged cache entry is recomputed
+    try:
+        from speedbench.evaluate import evaluate_graph
+
+        result = evaluate_graph(graph, dataset, model=point.graph_key[0], limit=profile.limit or None)
+    except UserError as exc:
+        info.notes.append(f"accuracy not measured: {exc}")
+        return {}
+    except Exception as exc:
+        info.notes.append(f"accuracy failed: {type(exc).__name__}: {_one_line(exc)}")
+        return {}
+    acc = {k: float(result.get(k, NAN)) for k in ACCURACY_COLUMNS}
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_suffix(f".{os.getpid()}.tmp")
+    tmp.write_text(json.dumps({k: (None if math.isnan(v) else v) for k, v in acc.items()}))
+    os.replace(tmp, path)
+    return acc
+
+
+def dataset_fingerprint(dataset) -> str:
+    fp = getattr(dataset, "fingerprint", None)
+    if callable(fp):
+        return str(fp())
+    if fp:
+        return str(fp)
+    return str(getattr(dataset, "source", ""))
+
+
+# ----------------------------------------------------------------- measuring
+def measure(planned, info: GraphInfo, profile, images, policy, baseline_fps=None) -> tuple[dict, list]:
+    """Measure one planned point in its own worker; always returns a row (failed rows included)."""
+    from speedbench.measure import Point
+
+    c = planned.config
+    point = Point(**c, graph=info.path,
+                  options=dict(profile.synthetic) if c["backend"] == "synthetic" else {})
+    samples: list = []
+    if not info.ok:
+        row = {**c, "point_id": planned.point_id, "status": "failed", "reason": info.reason}
+    else:
+        try:
+            if c["concurrency"] > 1:
+                from speedbench.measure.load import measure_load
+
+                result = measure_load(point, images, k=c["concurrency"], policy=policy,
+                                      timeout_s=profile.timeout_s, baseline_fps=baseline_fps)
+                samples = list(result.latencies_ms or [])
+            else:
+                from speedbench.measure import measure_point
+
+                result = measure_point(point, images, policy, profile.timeout_s)
+                if result.measurement is not None:
+                    samples = [float(x) for x in result.measurement.samples_ms]
+            row = result.to_row()
+        except UserError as exc:
+            row = {**c, "point_id": planned.point_id, "status": "failed", "reason": str(exc)}
+        except Exception as exc:  # a harness bug on one point must not cost the others
+            row = {**c, "point_id": planned.point_id, "status": "failed",
+                   "reason": f"{type(exc).__name__}: {_one_line(exc)}"}
+    row.update(merge_columns(planned, info, profile))
+    return row, samples
+
+
+def merge_columns(planned, info: GraphInfo, profile) -> dict:
+    """Columns the sweep adds to what the measurement produced."""
+    c = planned.config
+    untrained = c["weights"] == "none"
+    out = {"point_id": planned.point_id, "host": profile.host, "family": planned.family,
+           "untrained": untrained}
+    for k, v in info.facts.items():
+        # the export's own file size wins over the worker's view only when the worker had none
+        out[k] = v
+    for k in ACCURACY_COLUMNS:
+        out[k] = NAN if untrained else info.accuracy.get(k, NAN)
+    notes = list(planned.notes) + list(info.notes)
+    if untrained:
+        notes.append("untrained weights: latency only, accuracy not meaningful")
+    out["note"] = "; ".join(notes)
+    return out
+
+
+def _one_line(exc) -> str:
+    return " ".join(str(exc).split())[:300]
