@@ -68,9 +68,11 @@ class Plan:
 
 
 def _zoo_lookup(model_id: str):
-    from speedbench import zoo
-
-    return zoo.get_spec(model_id)
+    try:
+        from speedbench.zoo import get_spec
+    except ImportError:  # the zoo's public face may not forward it yet
+        from speedbench.zoo.registry import get_spec
+    return get_spec(model_id)
 
 
 def synthetic_spec(model_id: str):
@@ -149,7 +151,7 @@ def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool | N
                                     notes=prop_note + point_notes)
     if merged:
         notes[f"{merged} combination(s) mapped onto points already planned (measured once)"] += 1
-    plan_notes = [n if c == 1 or n.startswith(tuple("0123456789")) else f"{n} (x{c})"
+    plan_notes = [n if c == 1 or n.startswith(tuple("0123456789")) else f"{n} ({c} combinations)"
                   for n, c in notes.items()]
     return Plan(points=list(points.values()), notes=plan_notes)
 
@@ -162,7 +164,7 @@ def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, conc
         return None
     if backend == "eager":
         # PyTorch eager has no ORT execution mode or graph optimisation level.
-        if opt != profile.opt_levels[0]:
+        if len(profile.opt_levels) > 1 and opt == profile.opt_levels[0]:
             notes["eager backend: opt_levels do not apply; measured once"] += 1
         opt, mode = "", ""
     elif mode == "sequential" and inter != 1:

@@ -206,6 +206,7 @@ def measure(planned, info: GraphInfo, profile, images, policy, baseline_fps=None
                 if result.measurement is not None:
                     samples = [float(x) for x in result.measurement.samples_ms]
             row = result.to_row()
+            row.update(_extra_columns(getattr(result, "extra", None) or {}))
         except UserError as exc:
             row = {**c, "point_id": planned.point_id, "status": "failed", "reason": str(exc)}
         except Exception as exc:  # a harness bug on one point must not cost the others
@@ -213,6 +214,19 @@ def measure(planned, info: GraphInfo, profile, images, policy, baseline_fps=None
                    "reason": f"{type(exc).__name__}: {_one_line(exc)}"}
     row.update(merge_columns(planned, info, profile))
     return row, samples
+
+
+def _extra_columns(extra: dict) -> dict:
+    """The worker's details that help read a row: how warm-up and timing ended."""
+    out = {}
+    if "warmup_runs" in extra:
+        out["warmup_runs"] = extra["warmup_runs"]
+        out["warmup_settled"] = bool(extra.get("warmup_settled"))
+    if "stop" in extra:
+        out["stop_reason"] = extra["stop"]
+    if "seconds" in extra:
+        out["timing_s"] = extra["seconds"]
+    return out
 
 
 def merge_columns(planned, info: GraphInfo, profile) -> dict:
