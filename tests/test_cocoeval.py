@@ -207,7 +207,8 @@ def test_bootstrap_unit_weights_reproduce_map():
 def test_bootstrap_draw_equals_reference_on_duplicated_images():
     # A resample drawn with counts w must score what pycocotools gives on a dataset where
     # image i really appears w[i] times (fresh image and annotation ids for the copies).
-    gt, dets = random_case(11)
+    gt, dets = merged_case(range(30, 36))
+    assert any(a["iscrowd"] for a in gt["annotations"])  # the ignored-detection path is used
     ground = GroundTruth(gt)
     m = Matching(ground, parse_detections(dets, ground))
     rng = np.random.default_rng(5)

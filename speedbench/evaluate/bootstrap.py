@@ -20,7 +20,7 @@ import numpy as np
 
 from speedbench.evaluate.cocoeval import EPS, IOU_THRS, MAX_DETS, REC_THRS, Matching
 
-_CHUNK_ELEMENTS = 3_000_000  # bounds memory: resamples x thresholds x detections per chunk
+_CHUNK_ELEMENTS = 2_000_000  # bounds memory: resamples x detections per chunk
 
 
 def draw_weights(n_images: int, n_boot: int, seed: int) -> np.ndarray:
@@ -43,49 +43,57 @@ def resampled_maps(m: Matching, weights: np.ndarray) -> np.ndarray:
     for k in range(n_cat):
         sel = order[starts[k]:starts[k + 1]]
         npos = weights @ m.pos_per_image[k]
-        tps, fps = m.tp[sel, :, 0].T.astype(float), m.fp[sel, :, 0].T.astype(float)
-        step = max(1, _CHUNK_ELEMENTS // max(1, tps.size))
+        tp, ig = m.tp[sel, :, 0].T, ~m.tp[sel, :, 0].T & ~m.fp[sel, :, 0].T
+        step = max(1, _CHUNK_ELEMENTS // max(1, len(sel)))
         for c in range(0, n_boot, step):
-            rows = slice(c, min(n_boot, c + step))
-            ok = npos[rows] > 0
-            if not ok.any():
-                continue
-            q = _mean_precision(weights[rows][ok][:, m.img[sel]], tps, fps, npos[rows][ok])
-            idx = np.arange(rows.start, rows.stop)[ok]
-            total[idx] += q
-            count[idx] += 1
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(count > 0, total / np.maximum(count, 1), -1.0)
+            rows = np.arange(c, min(n_boot, c + step))
+            rows = rows[npos[rows] > 0]
+            if rows.size:
+                total[rows] += _mean_precision(weights[rows][:, m.img[sel]], tp, ig, npos[rows])
+                count[rows] += 1
+    return np.where(count > 0, total / np.maximum(count, 1), -1.0)
 
 
-def _mean_precision(w, tps, fps, npos):
+def _mean_precision(w, tp_mask, ig_mask, npos):
     """Mean interpolated precision over thresholds and recall points, per weight row.
 
-    w [B, N] weight of each detection, tps/fps [T, N] in score order, npos [B] > 0.
+    w [B, N]: weight of each detection (in score order); tp_mask / ig_mask [T, N]: true
+    positive / ignored at each threshold; npos [B] > 0: weighted count of ground truths.
+    The precision envelope read at a recall point is a suffix maximum that is always
+    reached at a true positive (precision only rises there), so only true-positive
+    positions are evaluated: |TP| instead of N per row and threshold.
     """
     B, N = w.shape
     T, R = len(IOU_THRS), len(REC_THRS)
     if N == 0:
         return np.zeros(B)
-    tp = np.cumsum(w[:, None, :] * tps[None], axis=2)
-    fp = np.cumsum(w[:, None, :] * fps[None], axis=2)
-    pr = tp / (fp + tp + EPS)
-    pr = np.maximum.accumulate(pr[..., ::-1], axis=2)[..., ::-1]
+    seen = np.cumsum(w, axis=1)
     # recall tp / npos >= r  <=>  tp >= need, the least integer j with j / npos >= r.
     n = npos[:, None]
     need = np.ceil(REC_THRS[None, :] * n)
     need = np.where((need - 1) / n >= REC_THRS, need - 1, need)
-    need = np.where(need / n < REC_THRS, need + 1, need)
-    # One searchsorted for all rows: offset each row's (integer) counts past the previous row.
+    need = np.where(need / n < REC_THRS, need + 1, need).astype(np.int64)
     big = int(npos.max()) + 2
-    row = (np.arange(B)[:, None] * T + np.arange(T)[None, :]).astype(np.int64)  # [B, T]
-    keys = (np.rint(tp).astype(np.int64) + row[..., None] * big).ravel()
-    queries = need.astype(np.int64)[:, None, :] + row[..., None] * big  # [B, T, R]
-    pos = np.searchsorted(keys, queries, side="left") - row[..., None] * N
-    inside = pos < N
-    flat = np.minimum(pos, N - 1) + row[..., None] * N
-    q = np.where(inside, pr.ravel()[flat], 0.0)
-    return q.mean(axis=(1, 2))
+    total = np.zeros(B)
+    for t in range(T):
+        P = np.flatnonzero(tp_mask[t])
+        if P.size == 0:
+            continue  # no true positive: precision 0 at every recall point
+        tp = np.cumsum(w[:, P], axis=1)
+        fp = seen[:, P] - tp
+        I = np.flatnonzero(ig_mask[t])
+        if I.size:
+            ig = np.concatenate([np.zeros((B, 1)), np.cumsum(w[:, I], axis=1)], axis=1)
+            fp -= ig[:, np.searchsorted(I, P, side="right")]
+        pr = tp / (fp + tp + EPS)
+        pr = np.maximum.accumulate(pr[:, ::-1], axis=1)[:, ::-1]
+        # One searchsorted for all rows: offset each row's integer counts past the previous row.
+        off = np.arange(B, dtype=np.int64)[:, None] * big
+        pos = np.searchsorted((np.rint(tp).astype(np.int64) + off).ravel(), need + off)
+        pos -= np.arange(B)[:, None] * P.size
+        q = np.where(pos < P.size, pr.ravel()[np.minimum(pos, P.size - 1) + np.arange(B)[:, None] * P.size], 0.0)
+        total += q.sum(axis=1)
+    return total / (T * R)
 
 
 def percentile_interval(maps: np.ndarray, confidence: float):
