@@ -191,9 +191,107 @@ def test_bad_arguments(kwargs, text):
 def test_bad_points_and_images():
     with pytest.raises(UserError, match="intra_threads"):
         measure_load(synthetic(threads=0), IMAGES, k=1)
-    with pytest.raises(UserError, match="at least one image"):
+    with pytest.raises(UserError, match="no images"):
         measure_load(synthetic(), [], k=1)
     with pytest.raises(UserError, match="graph"):
         measure_load(Point(model="m", backend="ort", intra_threads=1, graph="/nonexistent.onnx"), IMAGES, k=1)
     with pytest.raises(UserError, match="uint8"):
         measure_load(synthetic(), [np.zeros((4, 4), np.float32)], k=1)
+
+
+# ------------------------------------------------------------------ the `speedbench load` command
+LOAD_PROFILE = """
+[run]
+name = "load-test"
+timeout_s = 60
+
+[dataset]
+scenes = {count = 1}
+accuracy = false
+
+[sweep]
+sizes = [64]
+proposals = [10]
+backends = ["synthetic"]
+
+[[models]]
+id = "synthetic"
+
+[[threads]]
+intra = 1
+
+[repetitions]
+warmup_min = 1
+warmup_max = 3
+min_reps = 3
+max_reps = 20
+max_seconds = 0.3
+
+[synthetic]
+work_ms = 3.0
+"""
+
+
+@pytest.fixture()
+def profile_file(tmp_path):
+    path = tmp_path / "load.toml"
+    path.write_text(LOAD_PROFILE)
+    return path
+
+
+def test_load_into_an_existing_run_then_size(tmp_path, profile_file, capsys):
+    import os
+
+    from speedbench.cli import main
+    from speedbench.sweep import load_run, load_samples, run_sweep
+
+    run = run_sweep(profile_file, out_dir=tmp_path / "run", quiet=True, stream=open(os.devnull, "w"))
+    before = load_run(run)
+    k1_id, n_before = before["point_id"].iloc[0], int(before["n_samples"].iloc[0])
+    k = min(2, host_cores())
+    assert main(["load", str(run), "-k", f"1,{k}", "--seconds", "0.4", "--quiet"]) == 0
+    df = load_run(run).set_index("concurrency")
+    # K=1: load columns merged into the stored single-stream row, its latency samples kept
+    assert df.loc[1, "point_id"] == k1_id and df.loc[1, "tput_fps"] > 0
+    assert int(df.loc[1, "n_samples"]) == n_before
+    samples = load_samples(run)
+    assert (samples["point_id"] == k1_id).sum() == n_before
+    if k == 2:
+        # K=2: its own row and samples, accuracy/graph columns carried over
+        assert df.loc[2, "tput_fps"] > 0 and df.loc[2, "cores_used"] == 2
+        assert df.loc[2, "family"] == df.loc[1, "family"]
+        assert (samples["point_id"] == df.loc[2, "point_id"]).sum() == df.loc[2, "tput_requests"]
+    capsys.readouterr()
+    assert main(["size", str(run), "--streams", "4", "--fps", "10", "--server-cores", "8"]) == 0
+    assert "40 frames/s" in capsys.readouterr().out
+
+
+def test_load_from_a_profile(tmp_path, profile_file):
+    from speedbench.cli import main
+    from speedbench.sweep import load_run
+
+    out = tmp_path / "prof-run"
+    assert main(["load", str(profile_file), "-k", "1", "--seconds", "0.3", "-o", str(out), "--quiet"]) == 0
+    df = load_run(out)
+    assert len(df) == 1 and df["concurrency"].iloc[0] == 1 and df["tput_fps"].iloc[0] > 0
+    assert df["littles_L"].iloc[0] == pytest.approx(df["littles_XW"].iloc[0], rel=0.10)
+
+
+@pytest.mark.parametrize("argv, text", [
+    (["-k", "0"], "K must be >= 1"),
+    (["-k", "one"], "not a whole number"),
+    (["--seconds", "0"], "--seconds"),
+])
+def test_load_cli_bad_input(profile_file, capsys, argv, text):
+    from speedbench.cli import main
+
+    assert main(["load", str(profile_file), *argv]) == 2
+    err = capsys.readouterr().err
+    assert text in err and err.count("\n") == 1
+
+
+def test_load_cli_missing_target(tmp_path, capsys):
+    from speedbench.cli import main
+
+    assert main(["load", str(tmp_path / "nothing-here")]) == 2
+    assert "neither a run directory nor a profile" in capsys.readouterr().err

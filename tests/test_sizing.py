@@ -148,6 +148,23 @@ def test_scaling_summary_recomputes_efficiency_from_rows():
     assert excluded.empty
 
 
+def test_k1_throughput_from_a_single_stream_latency_row():
+    # A sweep measures K=1 as a latency point (no tput_fps) and K=2 as a load point. One closed-loop
+    # stream has X = 1 / W (Little's law with L = 1): mean latency 50 ms -> X(1) = 20 fps.
+    lat_row = row("e", 1, 1, None, None, None, map_=0.6)
+    lat_row.update(lat_mean_ms=50.0, lat_p99_ms=70.0)
+    df = pd.DataFrame([lat_row, row("e", 2, 1, 36.0, 90.0, 55.0)])
+    configs, _ = scaling_summary(df)
+    e = configs.iloc[0]
+    # efficiency = 36 / (2 x 20) = 0.9; per-core = 36 / 2 = 18
+    assert e["x1_fps"] == pytest.approx(20.0) and e["scaling_eff"] == pytest.approx(0.9)
+    assert e["per_core_fps"] == pytest.approx(18.0) and "single-stream" in e["k1_source"]
+    out = size(df, 10, 10, server_cores=[8])
+    # 100 fps / (8 x 18 x 0.7 = 100.8) -> 1 server; utilisation 100 / 144 = 0.694, nearest measured
+    # utilisation 0.5 (K=1) -> p99 70 ms from the latency row
+    assert out["servers"].iloc[0] == 1 and out["expected_p99_ms"].iloc[0] == 70.0
+
+
 def test_configuration_without_k1_is_left_out_with_reason():
     df = pd.concat([table(), pd.DataFrame([row("d", 2, 1, 40.0, 90.0, 50.0, map_=0.9)])])
     out = size(df, 40, 10)

@@ -49,7 +49,7 @@ SIZE_COLUMNS = [
     "required_fps", "per_core_fps", "measured_cores", "scaling_eff", "cores_needed",
     "server_cores", "workers_per_server", "servers", "provisioned_cores", "capacity_fps",
     "utilisation", "in_flight", "expected_p99_ms", "p99_at_util", "p99_beyond_measured",
-    "meets_p99", "cost_per_mframe", "extrapolated", "assumption", "p99_note",
+    "meets_p99", "cost_per_mframe", "extrapolated", "assumption", "p99_note", "k1_source",
 ]
 
 
@@ -101,7 +101,7 @@ def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
     if "status" in df.columns:
         df = df[df["status"].fillna("ok").astype(str) == "ok"]
     for col in ("tput_fps", "tput_p99_ms", "tput_mean_ms", "cores_used", "concurrency",
-                "intra_threads", "host_cores"):
+                "intra_threads", "host_cores", "lat_mean_ms", "lat_p99_ms"):
         df[col] = pd.to_numeric(df[col], errors="coerce") if col in df.columns else np.nan
     df["concurrency"] = df["concurrency"].fillna(1)
     # cores_used = K x T; rebuild it for rows that lack it.
@@ -114,9 +114,19 @@ def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
         if measured.empty:
             continue  # a latency-only point; nothing to size
         base = measured[measured["concurrency"] == 1]
+        k1_source = "load"
         if base.empty:
-            excluded.append({**_ident(first), "reason": "no throughput measured at K=1"})
-            continue
+            # One closed-loop stream: X(1) = 1 / W (Little's law with L = 1), so a single-stream
+            # latency row of the same configuration gives the K = 1 throughput.
+            single = group[(group["concurrency"] == 1) & (group["lat_mean_ms"] > 0)]
+            if single.empty:
+                excluded.append({**_ident(first), "reason": "no throughput or latency measured at K=1"})
+                continue
+            base = single.iloc[[0]].assign(tput_fps=1000.0 / single["lat_mean_ms"].iloc[0],
+                                           tput_p99_ms=single["lat_p99_ms"].iloc[0],
+                                           tput_mean_ms=single["lat_mean_ms"].iloc[0])
+            measured = pd.concat([base, measured])
+            k1_source = "single-stream latency (X(1) = 1 / mean latency)"
         x1 = float(base["tput_fps"].iloc[0])
         measured = measured.sort_values(["cores_used", "concurrency"], kind="stable")
         host_cores = measured["host_cores"].max()
@@ -139,9 +149,10 @@ def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
             "x1_fps": x1,
             "host_cores": float(host_cores),
             "curve": curve,
+            "k1_source": k1_source,
         })
     cols = [*_IDENT, "map", "map_ci_lo", "map_ci_hi", "point_id", "per_core_fps", "measured_cores",
-            "measured_k", "scaling_eff", "x1_fps", "host_cores", "curve"]
+            "measured_k", "scaling_eff", "x1_fps", "host_cores", "curve", "k1_source"]
     return pd.DataFrame(configs, columns=cols), pd.DataFrame(excluded, columns=[*_IDENT, "reason"])
 
 
@@ -181,7 +192,8 @@ def _size_one(cfg: dict, shape: int, required: float, p99_ms, headroom: float, c
     cores_needed = required / (per_core * headroom)
     workers = shape // threads
     row = {k: cfg.get(k) for k in ("label", "model", "size", "proposals", "backend", "intra_threads",
-                                   "map", "frontier_status", "per_core_fps", "measured_cores", "scaling_eff")}
+                                   "map", "frontier_status", "per_core_fps", "measured_cores", "scaling_eff",
+                                   "k1_source")}
     row.update(required_fps=required, cores_needed=cores_needed, server_cores=shape,
                workers_per_server=workers, extrapolated=shape > measured_cores)
     if workers == 0:

@@ -55,8 +55,6 @@ LOAD_COLUMNS = (
     "littles_L", "littles_XW", "cores_used", "host_cores", "tput_window_s", "tput_requests",
     "tput_cpu_util", "tput_cpu_util_xs", "tput_cpu_ms", "tput_rss_total_mib",
 )
-THREAD_ENV = ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS", "NUMEXPR_NUM_THREADS",
-              "VECLIB_MAXIMUM_THREADS")
 NAN = float("nan")
 
 
@@ -234,43 +232,39 @@ def measure_load(point, images, k: int | None = None, policy=None, timeout_s: fl
     return result
 
 
-def measure_scaling(point, images, ks=(1, 2), **kwargs) -> list["LoadResult"]:
+def measure_scaling(point, images, ks=(1, 2), on_result=None, **kwargs) -> list["LoadResult"]:
     """measure_load at each K in ``ks`` (K = 1 first, so every efficiency has its baseline).
 
     Each K runs its own fresh workers; a failed K does not stop the others.
-    kwargs go to measure_load (policy, timeout_s, seconds, min_requests, pin).
+    on_result(result) is called as each K finishes, so callers can store it at once.
+    kwargs go to measure_load (policy, timeout_s, seconds, min_requests, pin, baseline_fps).
     """
     ks = sorted({int(x) for x in ks})
-    baseline = None
+    baseline = kwargs.pop("baseline_fps", None)
     out = []
-    for k in ([1] if 1 not in ks else []) + ks:
+    for k in ([1] if 1 not in ks and baseline is None else []) + ks:
         res = measure_load(point, images, k=k, baseline_fps=baseline, **kwargs)
         if k == 1 and res.ok:
             baseline = res.tput_fps
         if k in ks:
             out.append(res)
+            if on_result is not None:
+                on_result(res)
     return out
 
 
 def _save_images(images, path: Path) -> Path:
-    from speedbench.data.images import read_image
+    from speedbench.measure.launch import load_images
 
-    arrays = []
-    for im in images:
-        arr = im if isinstance(im, np.ndarray) else read_image(im)
-        if arr.ndim != 3 or arr.shape[2] != 3 or arr.dtype != np.uint8:
-            raise UserError(f"images: expected uint8 [H, W, 3] arrays, got {arr.dtype} {arr.shape}")
-        arrays.append(arr)
-    if not arrays:
-        raise UserError("images: a load measurement needs at least one image")
+    arrays = load_images(images)  # UserError naming a bad image
     np.savez(path, *arrays)
     return path
 
 
-def _worker_env(threads: int) -> dict:
-    env = dict(os.environ)
-    for name in THREAD_ENV:
-        env[name] = str(threads)
+def _worker_env(point) -> dict:
+    from speedbench.measure.launch import thread_env
+
+    env = thread_env(point)
     # The worker must import this working tree, whatever the caller's directory.
     root = str(Path(__file__).resolve().parents[2])
     env["PYTHONPATH"] = root + (os.pathsep + env["PYTHONPATH"] if env.get("PYTHONPATH") else "")
@@ -279,7 +273,7 @@ def _worker_env(threads: int) -> dict:
 
 def _run_workers(point, k, specs, tmp: Path, window: float, min_requests: int, timeout_s: float):
     deadline = time.monotonic() + timeout_s
-    env = _worker_env(point.intra_threads)
+    env = _worker_env(point)
     procs = []
     try:
         for spec, path in specs:
@@ -348,9 +342,9 @@ def _first_failure(procs, specs, tmp: Path) -> str:
             continue
         who = f"worker {i + 1} of {len(procs)}"
         if code < 0:
-            name = signal.Signals(-code).name
-            hint = " (out of memory?)" if name == "SIGKILL" else ""
-            return f"{who}: killed by {name}{hint}"
+            from speedbench.measure.launch import signal_reason
+
+            return f"{who}: {signal_reason(code)}"
         result = specs[i][0]["result"]
         if os.path.exists(result):
             reason = _read_json(result).get("reason", "")
