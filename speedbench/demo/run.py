@@ -1,0 +1,52 @@
+"""`speedbench demo`: the README's main job, end to end, offline.
+
+Runs profiles/demo.toml (the four compact yard detectors with their trained
+demo weights, on generated held-out scenes), then writes the accuracy-latency
+frontier plot and the review report next to the run. A second call with the
+same output directory resumes the run (measuring only what is missing) and
+re-renders the plot and report.
+"""
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+from speedbench.errors import UserError
+
+DEMO_PROFILE = Path(__file__).resolve().parents[2] / "profiles" / "demo.toml"
+
+
+def demo_profile_path() -> Path:
+    if not DEMO_PROFILE.is_file():
+        raise UserError(f"{DEMO_PROFILE}: demo profile not found (is this a source checkout of speedbench?)")
+    return DEMO_PROFILE
+
+
+def run_demo(out_dir=None, quiet: bool = False, budget_ms: float | None = None, stream=None) -> dict:
+    """Run (or resume) the demo sweep, then plot and report. Returns the paths written."""
+    from speedbench.sweep import load_profile, load_run
+    from speedbench.sweep.runner import run_sweep
+
+    stream = stream or sys.stderr
+    profile_path = demo_profile_path()
+    profile = load_profile(profile_path)
+    out = Path(out_dir) if out_dir else profile.output_dir()
+    resume = (out / "meta.json").exists()
+    if resume:
+        print(f"{out}: continuing the demo run there (only missing points are measured)", file=stream)
+    run_sweep(profile_path, out_dir=out, resume=resume, quiet=quiet, stream=stream)
+
+    df = load_run(out)
+    return {"run": out, **render(out, df, budget_ms)}
+
+
+def render(out: Path, df, budget_ms: float | None = None) -> dict:
+    """Frontier plot + HTML and Markdown reports of a finished run directory."""
+    from speedbench.report import plot_frontier, render_html, render_markdown
+
+    paths = {"frontier": out / "frontier.png"}
+    fig = plot_frontier(df, path=paths["frontier"], title="Demo: accuracy vs latency on this CPU")
+    del fig
+    paths["report_html"] = render_html([out], out / "report.html", budget_ms=budget_ms)
+    paths["report_md"] = render_markdown([out], out / "report.md", budget_ms=budget_ms)
+    return paths

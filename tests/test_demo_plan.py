@@ -1,0 +1,51 @@
+"""The demo profile's plan, in dry run: what `speedbench demo` will measure, without measuring."""
+from pathlib import Path
+
+from speedbench.cli import main
+from speedbench.demo.run import demo_profile_path
+from speedbench.sweep import expand_plan, load_profile
+
+DEMO_MODELS = {"demo_ssdlite", "demo_fcos", "demo_frcnn", "demo_frcnn_lite"}
+
+
+def test_demo_plan_covers_the_compact_zoo():
+    profile = load_profile(demo_profile_path())
+    plan = expand_plan(profile, concurrency_supported=True, cores=2)
+    by_model = {}
+    for p in plan.points:
+        by_model.setdefault(p.config["model"], []).append(p)
+    assert set(by_model) == DEMO_MODELS
+    # 2 sizes x 2 thread settings; the two-stage models also x 2 proposal counts
+    for m in ("demo_ssdlite", "demo_fcos"):
+        assert len(by_model[m]) == 2 * 2 and {p.config["proposals"] for p in by_model[m]} == {0}
+        assert by_model[m][0].family == "one-stage"
+    for m in ("demo_frcnn", "demo_frcnn_lite"):
+        assert len(by_model[m]) == 2 * 2 * 2 and {p.config["proposals"] for p in by_model[m]} == {50, 300}
+        assert by_model[m][0].family == "two-stage"
+    assert len(plan.points) == 24 and len(plan.graphs) == 12
+    assert all(p.config["weights"] == "demo" for p in plan.points)   # trained: accuracy is measured
+    assert profile.accuracy and profile.scenes_count > 0 and profile.dataset_path is None  # offline data
+    assert {p.config["intra_threads"] for p in plan.points} == {1, 2}
+    assert all(p.config["backend"] == "ort" and p.config["concurrency"] == 1 for p in plan.points)
+
+
+def test_demo_dry_run_prints_plan_and_estimate(tmp_path, capsys):
+    assert main(["demo", "--dry-run", "-o", str(tmp_path / "demo")]) == 0
+    out = capsys.readouterr().out
+    assert "24 point(s) over 12 distinct graph(s)" in out
+    assert out.count("demo_frcnn_lite/demo/") == 8
+    assert "estimate" in out and "has no proposal knob" in out
+    assert not (tmp_path / "demo").exists()   # a dry run writes nothing
+
+
+def test_demo_budget_must_be_positive(capsys):
+    assert main(["demo", "--budget-ms", "-5"]) == 2
+    assert "--budget-ms" in capsys.readouterr().err
+
+
+def test_sweep_dry_run_of_shipped_profiles(capsys):
+    root = Path(demo_profile_path()).parent
+    for name in ("cpu-budget", "upgrade-check", "full-study"):
+        assert main(["sweep", str(root / f"{name}.toml"), "--dry-run"]) == 0
+        out = capsys.readouterr().out
+        assert f"profile {name!r}" in out and "estimate" in out
