@@ -83,7 +83,11 @@ def test_sweep_writes_rows_and_keeps_failures(tmp_path):
 def test_resume_with_a_different_profile_is_refused(tmp_path):
     prof = write_profile(tmp_path, sizes="[64]")
     run_sweep(prof, out_dir=tmp_path / "run", quiet=True, stream=open(os.devnull, "w"))
-    prof.write_text(prof.read_text().replace("[64]", "[64, 96]"))
+    # Comments and formatting may change between the start and the resume...
+    prof.write_text("# edited\n" + prof.read_text().replace("sizes = [64]", "sizes   =   [ 64 ]  # one size"))
+    run_sweep(prof, out_dir=tmp_path / "run", resume=True, quiet=True, stream=open(os.devnull, "w"))
+    # ...the study may not.
+    prof.write_text(prof.read_text().replace("[ 64 ]", "[64, 96]"))
     from speedbench.errors import UserError
 
     with pytest.raises(UserError, match="different profile"):

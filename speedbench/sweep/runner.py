@@ -25,19 +25,33 @@ def run_sweep(profile_path, out_dir=None, resume: bool = False, quiet: bool = Fa
     profile = load_profile(profile_path)
     plan = expand_plan(profile)
     out = Path(out_dir) if out_dir else profile.output_dir()
+    # Check the dataset before a run directory exists, so a bad path leaves nothing behind.
+    needs_data = any(p.config["backend"] != "synthetic" for p in plan.points)
+    dataset = steps.prepare_dataset(profile, Path(profile.cache)) if needs_data else None
     rd = _open_run(profile, out, resume)
     try:
-        run_plan(rd, profile, plan, quiet=quiet, stream=stream)
+        run_plan(rd, profile, plan, quiet=quiet, stream=stream, dataset=dataset)
     finally:
         rd.close()
     return out
 
 
+def _same_study(a: Profile, b: Profile) -> bool:
+    """Equal in everything but formatting, comments and the file's name."""
+    skip = {"source", "text"}
+    return all(getattr(a, f) == getattr(b, f) for f in a.__dataclass_fields__ if f not in skip)
+
+
 def _open_run(profile: Profile, out: Path, resume: bool) -> RunDir:
     if resume:
+        from speedbench.sweep.profile import parse_profile
+
         rd = RunDir.open(out)
-        stored = rd.profile_text()
-        if stored.strip() != profile.text.strip():
+        try:
+            stored = parse_profile(rd.profile_text(), str(out / "profile.toml"))
+        except UserError:
+            stored = None
+        if stored is None or not _same_study(stored, profile):
             rd.close()
             raise UserError(f"{out / 'profile.toml'}: the run was started with a different profile than "
                             f"{profile.source}; resume with that file or start a new run directory")
@@ -51,7 +65,8 @@ def _open_run(profile: Profile, out: Path, resume: bool) -> RunDir:
     return RunDir.create(out, profile.text, meta)
 
 
-def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stream=None) -> dict:
+def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stream=None,
+             dataset=None) -> dict:
     """Measure every point of `plan` not yet in `rd`; returns counts by status."""
     stream = stream or sys.stderr
     todo = plan.missing(rd.done_ids())
@@ -65,7 +80,8 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
 
     cache = Path(profile.cache)
     needs_data = any(p.config["backend"] != "synthetic" for p in todo)
-    dataset = steps.prepare_dataset(profile, cache) if needs_data else None
+    if needs_data and dataset is None:
+        dataset = steps.prepare_dataset(profile, cache)
     timing_images = steps.timing_images(dataset, profile.timing_images)
     policy = steps.make_policy(profile.repetitions)
 

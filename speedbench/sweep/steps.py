@@ -189,7 +189,7 @@ def measure(planned, info: GraphInfo, profile, images, policy, baseline_fps=None
     point = Point(**c, graph=info.path,
                   options=dict(profile.synthetic) if c["backend"] == "synthetic" else {})
     samples: list = []
-    if not info.ok:
+    if not info.ok and c["backend"] != "eager":
         row = {**c, "point_id": planned.point_id, "status": "failed", "reason": info.reason}
     else:
         try:
@@ -236,11 +236,15 @@ def merge_columns(planned, info: GraphInfo, profile) -> dict:
     out = {"point_id": planned.point_id, "host": profile.host, "family": planned.family,
            "untrained": untrained}
     for k, v in info.facts.items():
-        # the export's own file size wins over the worker's view only when the worker had none
+        # Eager points keep the worker's own model size (parameter bytes), not the ONNX file's.
+        if k == "model_file_mib" and c["backend"] == "eager":
+            continue
         out[k] = v
     for k in ACCURACY_COLUMNS:
         out[k] = NAN if untrained else info.accuracy.get(k, NAN)
     notes = list(planned.notes) + list(info.notes)
+    if not info.ok and c["backend"] == "eager":
+        notes.append(f"accuracy not measured ({info.reason})")
     if untrained:
         notes.append("untrained weights: latency only, accuracy not meaningful")
     out["note"] = "; ".join(notes)
