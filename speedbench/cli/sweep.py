@@ -41,11 +41,13 @@ def run(args) -> int:
 def format_plan(plan, profile, out, resume: bool = False) -> str:
     from speedbench.sweep import RunDir, estimate_seconds
 
-    done = set()
+    done, wall = set(), None
     if resume and (Path(out) / "meta.json").exists():
         with RunDir.open(out) as rd:
             done = rd.done_ids()
-    est = estimate_seconds(plan, profile, done)
+            walls = sorted(r["wall_s"] for r in rd.rows() if isinstance(r.get("wall_s"), (int, float)))
+            wall = walls[len(walls) // 2] if walls else None
+    est = estimate_seconds(plan, profile, done, point_wall_s=wall)
     lines = [f"profile {profile.name!r} ({profile.source}) -> {out}",
              f"{len(plan.points)} point(s) over {len(plan.graphs)} distinct graph(s)"
              + (f"; {len(done & {p.point_id for p in plan.points})} already measured" if resume else "")]

@@ -210,15 +210,17 @@ def _measure_supports_concurrency() -> bool:
 
 
 def estimate_seconds(plan: Plan, profile: Profile, done_ids=(), n_images: int | None = None,
-                     cached_graphs=()) -> dict:
+                     cached_graphs=(), point_wall_s: float | None = None) -> dict:
     """Rough wall-time estimate for the points still to measure (a rule of thumb).
 
-    Per point: a worker start plus the repetition budget; per distinct graph
-    still needed: one export and one accuracy pass over the dataset.
+    Per point: a worker start plus the repetition budget, or point_wall_s when
+    the run already measured points (their median wall time); per distinct
+    graph still needed: one export and one accuracy pass over the dataset.
     """
     todo = plan.missing(done_ids)
     budget = profile.repetitions.get("max_seconds", DEFAULT_MAX_SECONDS)
-    measure_s = len(todo) * (WORKER_START_S + budget)
+    per_point = point_wall_s if point_wall_s else WORKER_START_S + budget
+    measure_s = len(todo) * per_point
     graphs = []
     for p in todo:
         if p.graph_key not in graphs and p.config["backend"] != "synthetic":

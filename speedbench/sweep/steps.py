@@ -66,12 +66,9 @@ def timing_images(dataset, n: int, size: int = 320) -> list:
     if dataset is None:
         # Synthetic backend only: it does not look at pixels.
         return [np.zeros((size, size, 3), dtype=np.uint8)]
-    images = []
-    for i in range(min(n, len(dataset))):
-        images.append(dataset.image(i))
-    if not images:
+    if len(dataset) == 0:
         raise UserError(f"{dataset.source}: dataset has no images")
-    return images
+    return [dataset.read(rec.id) for rec in dataset.images[:n]]
 
 
 def make_policy(repetitions: dict):
