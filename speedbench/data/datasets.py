@@ -1,0 +1,351 @@
+"""Held-out sets: COCO-style annotation JSON with an image folder, or a Pascal VOC folder.
+
+Everything is validated on load; a problem is a one-line UserError naming the
+file and the image / annotation id. Image paths are confined to the dataset
+root: a file_name that leads outside it (absolute, "..", a symlink out) is refused.
+
+Pascal VOC is converted to the COCO layout: images get ids 1..N in sorted XML
+file order, categories ids 1..C in sorted name order, boxes move from VOC's
+1-based inclusive corners to [x, y, w, h] (x = xmin - 1, w = xmax - xmin + 1,
+the usual conversion, from memory of common VOC loaders). Objects marked
+"difficult" become iscrowd=1, so detections on them are neither counted nor
+penalised, as VOC intends; note the COCO protocol then scores overlap against
+them as intersection / detection area.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import warnings
+from dataclasses import dataclass
+from functools import cached_property
+from pathlib import Path
+
+import numpy as np
+
+from speedbench.data.images import read_image
+from speedbench.errors import UserError
+
+ANNOTATIONS_FILE = "annotations.json"
+# Boxes may overhang the image by this much (px): VOC's inclusive corners and float
+# rounding in converters put correct boxes a fraction of a pixel outside.
+BOX_TOLERANCE = 1.0
+# Names in torchvision's COCO label list that are not classes.
+PLACEHOLDER_CLASSES = {"__background__", "n/a", ""}
+
+
+@dataclass(frozen=True)
+class ImageRecord:
+    id: int
+    file_name: str
+    path: Path       # resolved, inside the dataset root
+    width: int
+    height: int
+
+    def __getitem__(self, key):  # records also read like dicts: rec["id"]
+        return getattr(self, key)
+
+
+class Dataset:
+    """A validated held-out set. `coco` is its COCO-format dict (ids as in the source)."""
+
+    def __init__(self, root: Path, coco: dict, source: Path, images: list[ImageRecord]):
+        self.root = root
+        self.coco = coco
+        self.source = source
+        self.images = images
+        self.categories = [{"id": c["id"], "name": c["name"]} for c in coco["categories"]]
+        self._by_id = {im.id: im for im in images}
+
+    def __len__(self) -> int:
+        return len(self.images)
+
+    def __repr__(self) -> str:
+        return (f"Dataset({self.source}, {len(self.images)} images, "
+                f"{len(self.coco['annotations'])} boxes, {len(self.categories)} categories)")
+
+    def read(self, image_id: int) -> np.ndarray:
+        """The image as uint8 [H, W, 3] RGB."""
+        if image_id not in self._by_id:
+            raise UserError(f"{self.source}: no image with id {image_id!r}")
+        im = self._by_id[image_id]
+        try:
+            return read_image(im.path)
+        except UserError as exc:
+            raise UserError(f"{self.source}: image id {im.id}: {exc}") from None
+
+    def subset(self, n: int, seed: int = 0) -> "Dataset":
+        """n images drawn without replacement (seeded), in their original order."""
+        if not isinstance(n, int) or n < 1:
+            raise UserError(f"subset size must be a whole number >= 1, not {n!r}")
+        if n >= len(self.images):
+            return self
+        pick = np.sort(np.random.default_rng(seed).choice(len(self.images), n, replace=False))
+        images = [self.images[i] for i in pick]
+        keep = {im.id for im in images}
+        coco = {
+            "images": [im for im in self.coco["images"] if im["id"] in keep],
+            "annotations": [a for a in self.coco["annotations"] if a["image_id"] in keep],
+            "categories": self.coco["categories"],
+        }
+        return Dataset(self.root, coco, self.source, images)
+
+    @cached_property
+    def digest(self) -> str:
+        """sha256 of the annotations and the bytes of every image: a cache key."""
+        h = hashlib.sha256(json.dumps(self.coco, sort_keys=True).encode())
+        for im in sorted(self.images, key=lambda r: r.id):
+            try:
+                h.update(hashlib.sha256(im.path.read_bytes()).digest())
+            except OSError:
+                raise UserError(f"{self.source}: image id {im.id}: cannot read {im.path}") from None
+        return h.hexdigest()
+
+
+def load_dataset(path, images_dir=None, check_images: bool = True) -> Dataset:
+    """Load and validate a held-out set.
+
+    path: a COCO JSON file (images relative to its folder, or to images_dir), a folder
+    holding annotations.json, or a Pascal VOC folder (Annotations/*.xml + JPEGImages/).
+    check_images decodes every image once (missing / corrupt files, size mismatch);
+    turn it off when only the annotations are needed (evaluating a results file).
+    """
+    path = Path(path)
+    if not path.exists():
+        raise UserError(f"{path}: dataset not found")
+    if path.is_dir() and (path / ANNOTATIONS_FILE).is_file():
+        path = path / ANNOTATIONS_FILE
+    if path.is_file():
+        coco = _read_json(path)
+        root = Path(images_dir) if images_dir else path.parent
+        source = path
+    elif (path / "Annotations").is_dir():
+        root = Path(images_dir) if images_dir else path / "JPEGImages"
+        coco = _voc_to_coco(path / "Annotations")
+        source = path / "Annotations"
+    else:
+        raise UserError(f"{path}: not a dataset (expected a COCO JSON file, a folder with "
+                        f"{ANNOTATIONS_FILE}, or a Pascal VOC folder with Annotations/)")
+    if not root.is_dir():
+        raise UserError(f"{root}: image folder not found")
+    coco = validate_coco(coco, source)
+    images = [_record(im, root, source) for im in coco["images"]]
+    if check_images:
+        for rec in images:
+            _check_image(rec, source)
+    return Dataset(root, coco, source, images)
+
+
+def category_map(dataset, model_classes) -> dict[int, int]:
+    """model label index -> dataset category id.
+
+    model_classes: names by label index (torchvision weights: torchvision_coco_classes(),
+    where index == COCO id). Names match case-, space-, '-' and '_'-insensitively. Only
+    when no name matches are labels matched by id (label index == category id), with a
+    warning: that is a guess. Dataset categories that nothing maps to can never be
+    detected and score AP 0 (warned). UserError when nothing maps at all.
+    """
+    cats = dataset.categories if hasattr(dataset, "categories") else dataset["categories"]
+    by_name = {_norm(c["name"]): c["id"] for c in cats}
+    labels = [(i, _norm(n)) for i, n in enumerate(model_classes) if _norm(n) not in PLACEHOLDER_CLASSES]
+    mapping = {i: by_name[n] for i, n in labels if n in by_name}
+    if not mapping:
+        ids = {c["id"] for c in cats}
+        mapping = {i: i for i, _ in labels if i in ids}
+        if mapping:
+            warnings.warn("no class name of the model matches a dataset category; mapping "
+                          "label index to category id instead - check that this is intended",
+                          stacklevel=2)
+    if not mapping:
+        raise UserError(
+            f"no model class maps to a dataset category: model has {_sample(n for _, n in labels)}, "
+            f"dataset has {_sample(c['name'] for c in cats)}")
+    missing = [c["name"] for c in cats if c["id"] not in mapping.values()]
+    if missing:
+        warnings.warn(f"dataset categories no model class maps to (they will score AP 0): "
+                      f"{_sample(missing)}", stacklevel=2)
+    return mapping
+
+
+def torchvision_coco_classes() -> list[str]:
+    """torchvision's COCO category names by label index (index == COCO id); no download."""
+    from torchvision.models.detection import FasterRCNN_ResNet50_FPN_Weights
+
+    return list(FasterRCNN_ResNet50_FPN_Weights.DEFAULT.meta["categories"])
+
+
+def validate_coco(coco, source) -> dict:
+    """Check a COCO dict; return a clean copy (area and iscrowd filled in)."""
+    if not isinstance(coco, dict):
+        raise UserError(f"{source}: expected a JSON object with images, annotations, categories")
+    for key in ("images", "annotations", "categories"):
+        if not isinstance(coco.get(key), list):
+            raise UserError(f"{source}: missing or non-list {key!r}")
+    images, cats, anns = {}, {}, []
+    for i, im in enumerate(coco["images"]):
+        where = f"{source}: image {_label(im, i)}"
+        if not isinstance(im, dict):
+            raise UserError(f"{where}: expected an object")
+        _need_int(im, "id", where)
+        if im["id"] in images:
+            raise UserError(f"{source}: duplicate image id {im['id']}")
+        if not isinstance(im.get("file_name"), str) or not im["file_name"]:
+            raise UserError(f"{where}: missing file_name")
+        for key in ("width", "height"):
+            if _need_int(im, key, where) <= 0:
+                raise UserError(f"{where}: {key} must be positive")
+        images[im["id"]] = {k: im[k] for k in ("id", "file_name", "width", "height")}
+    names = set()
+    for i, c in enumerate(coco["categories"]):
+        where = f"{source}: category {_label(c, i)}"
+        if not isinstance(c, dict):
+            raise UserError(f"{where}: expected an object")
+        _need_int(c, "id", where)
+        if c["id"] in cats:
+            raise UserError(f"{source}: duplicate category id {c['id']}")
+        if not isinstance(c.get("name"), str):
+            raise UserError(f"{where}: missing name")
+        if _norm(c["name"]) in names:
+            raise UserError(f"{where}: duplicate category name {c['name']!r}")
+        names.add(_norm(c["name"]))
+        cats[c["id"]] = {"id": c["id"], "name": c["name"]}
+    seen = set()
+    for i, a in enumerate(coco["annotations"]):
+        where = f"{source}: annotation {_label(a, i)}"
+        if not isinstance(a, dict):
+            raise UserError(f"{where}: expected an object")
+        _need_int(a, "id", where)
+        if a["id"] in seen:
+            raise UserError(f"{source}: duplicate annotation id {a['id']}")
+        seen.add(a["id"])
+        if _need_int(a, "image_id", where) not in images:
+            raise UserError(f"{where}: unknown image_id {a['image_id']}")
+        if _need_int(a, "category_id", where) not in cats:
+            raise UserError(f"{where}: unknown category_id {a['category_id']}")
+        im = images[a["image_id"]]
+        box = a.get("bbox")
+        if not (isinstance(box, list) and len(box) == 4 and all(_is_number(v) for v in box)):
+            raise UserError(f"{where}: bbox must be [x, y, w, h] numbers, got {box!r}")
+        check_box(*box, im["width"], im["height"], where)
+        area = a.get("area", box[2] * box[3])
+        if not _is_number(area) or area < 0:
+            raise UserError(f"{where}: area must be a number >= 0, got {area!r}")
+        crowd = a.get("iscrowd", 0)
+        if crowd not in (0, 1):
+            raise UserError(f"{where}: iscrowd must be 0 or 1, got {crowd!r}")
+        anns.append({"id": a["id"], "image_id": a["image_id"], "category_id": a["category_id"],
+                     "bbox": [float(v) for v in box], "area": float(area), "iscrowd": int(crowd)})
+    return {"images": list(images.values()), "annotations": anns, "categories": list(cats.values())}
+
+
+def check_box(x, y, w, h, width, height, where):
+    """A box [x, y, w, h] must have positive size and lie inside the image (within tolerance)."""
+    if w < 0 or h < 0:
+        raise UserError(f"{where}: box {[x, y, w, h]} has negative size")
+    if w == 0 or h == 0:
+        raise UserError(f"{where}: box {[x, y, w, h]} has zero area")
+    t = BOX_TOLERANCE
+    if x < -t or y < -t or x + w > width + t or y + h > height + t:
+        raise UserError(f"{where}: box {[x, y, w, h]} lies outside the {width}x{height} image")
+
+
+def _record(im: dict, root: Path, source) -> ImageRecord:
+    name = im["file_name"]
+    base = root.resolve()
+    path = (base / name).resolve()
+    if Path(name).is_absolute() or not path.is_relative_to(base):
+        raise UserError(f"{source}: image {im['id']}: file_name {name!r} leads outside the "
+                        f"dataset root {root}; refused")
+    return ImageRecord(im["id"], name, path, im["width"], im["height"])
+
+
+def _check_image(rec: ImageRecord, source):
+    if not rec.path.is_file():
+        raise UserError(f"{source}: image {rec.id}: missing image file {rec.path}")
+    try:
+        pixels = read_image(rec.path)
+    except UserError as exc:
+        raise UserError(f"{source}: image {rec.id}: {exc}") from None
+    h, w = pixels.shape[:2]
+    if (w, h) != (rec.width, rec.height):
+        raise UserError(f"{source}: image {rec.id}: {rec.file_name} is {w}x{h} but the "
+                        f"annotations say {rec.width}x{rec.height}")
+
+
+def _voc_to_coco(folder: Path) -> dict:
+    import xml.etree.ElementTree as ET  # expat >= 2.4 refuses entity-expansion bombs
+
+    files = sorted(folder.glob("*.xml"))
+    if not files:
+        raise UserError(f"{folder}: no .xml annotation files")
+    parsed = []
+    for f in files:
+        try:
+            node = ET.parse(f).getroot()
+        except (ET.ParseError, OSError) as exc:
+            raise UserError(f"{f}: not a readable Pascal VOC XML file ({exc})") from None
+        try:
+            name = node.findtext("filename").strip()
+            width, height = (int(float(node.findtext(f"size/{k}"))) for k in ("width", "height"))
+            objects = []
+            for j, obj in enumerate(node.findall("object")):
+                where = f"{f}: object {j}"
+                cls = (obj.findtext("name") or "").strip()
+                if not cls:
+                    raise UserError(f"{where}: missing name")
+                try:
+                    x1, y1, x2, y2 = (float(obj.findtext(f"bndbox/{k}"))
+                                      for k in ("xmin", "ymin", "xmax", "ymax"))
+                except (TypeError, ValueError):
+                    raise UserError(f"{where}: bndbox needs numeric xmin, ymin, xmax, ymax") from None
+                box = [x1 - 1, y1 - 1, x2 - x1 + 1, y2 - y1 + 1]
+                check_box(*box, width, height, where)
+                difficult = (obj.findtext("difficult") or "0").strip() == "1"
+                objects.append((cls, box, difficult))
+        except (AttributeError, TypeError, ValueError):
+            raise UserError(f"{f}: needs filename and size/width, size/height") from None
+        parsed.append((name, width, height, objects))
+    names = sorted({o[0] for _, _, _, objs in parsed for o in objs})
+    cat_id = {n: i + 1 for i, n in enumerate(names)}
+    images, anns = [], []
+    for i, (name, width, height, objects) in enumerate(parsed):
+        images.append({"id": i + 1, "file_name": name, "width": width, "height": height})
+        for cls, box, difficult in objects:
+            anns.append({"id": len(anns) + 1, "image_id": i + 1, "category_id": cat_id[cls],
+                         "bbox": box, "area": box[2] * box[3], "iscrowd": int(difficult)})
+    return {"images": images, "annotations": anns,
+            "categories": [{"id": cat_id[n], "name": n} for n in names]}
+
+
+def _read_json(path: Path):
+    try:
+        return json.loads(path.read_text())
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise UserError(f"{path}: not a readable JSON file ({exc})") from None
+
+
+def _label(obj, i: int) -> str:
+    """An entry's id for messages, or its list position when it has none."""
+    return str(obj["id"]) if isinstance(obj, dict) and "id" in obj else f"[{i}]"
+
+
+def _need_int(obj: dict, key: str, where: str) -> int:
+    v = obj.get(key)
+    if not isinstance(v, int) or isinstance(v, bool):
+        raise UserError(f"{where}: {key} must be an integer, got {v!r}")
+    return v
+
+
+def _is_number(v) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
+
+
+def _norm(name) -> str:
+    return "".join(ch for ch in str(name).lower() if ch not in " \t-_")
+
+
+def _sample(names, k: int = 5) -> str:
+    names = list(names)
+    shown = ", ".join(repr(n) for n in names[:k])
+    return f"[{shown}{', ...' if len(names) > k else ''}] ({len(names)})"
