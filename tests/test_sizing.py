@@ -217,7 +217,7 @@ def test_cli_on_a_run_directory(tmp_path, capsys):
     from speedbench.sweep import RunDir
 
     rd = RunDir.create(tmp_path / "run", "# test\n", {"profile_name": "t", "env": {}})
-    for r in table().to_dict("records"):
+    for r in table().assign(tput_cpu_util=0.45).to_dict("records"):
         rd.write_point({k: v for k, v in r.items() if v is not None}, [1.0, 2.0])
     rd.close()
     code = main(["size", str(tmp_path / "run"), "--streams", "40", "--fps", "10", "--p99-ms", "150",
@@ -226,6 +226,7 @@ def test_cli_on_a_run_directory(tmp_path, capsys):
     assert code == 0
     assert "400 frames/s" in out and "extrapolated" in out and "linear in cores" in out
     assert "safety-relevant" in out
+    assert "only 45% of their cores' CPU time" in out  # a contended measurement is called out
     # --json gives machine-readable records with the same arithmetic
     code = main(["size", str(tmp_path / "run"), "--streams", "40", "--fps", "10", "--server-cores", "8", "--json"])
     recs = pd.read_json(__import__("io").StringIO(capsys.readouterr().out))

@@ -37,6 +37,11 @@ import pandas as pd
 from speedbench.errors import UserError
 from speedbench.schema import CONFIG_COLUMNS
 
+# Rule of thumb (ours): workers that got less than this share of their cores' CPU time were
+# competing with other work on the host (or idling threads), so the throughput understates a
+# dedicated server and the sizing errs on the side of more servers.
+CONTENDED_CPU_UTIL = 0.8
+
 # Columns a throughput (load) row carries on top of a point row.
 THROUGHPUT_COLUMNS = ("tput_fps", "tput_p50_ms", "tput_p90_ms", "tput_p99_ms", "tput_mean_ms",
                       "scaling_eff", "littles_L", "cores_used", "host_cores")
@@ -50,6 +55,7 @@ SIZE_COLUMNS = [
     "server_cores", "workers_per_server", "servers", "provisioned_cores", "capacity_fps",
     "utilisation", "in_flight", "expected_p99_ms", "p99_at_util", "p99_beyond_measured",
     "meets_p99", "cost_per_mframe", "extrapolated", "assumption", "p99_note", "k1_source",
+    "measured_cpu_util",
 ]
 
 
@@ -150,9 +156,11 @@ def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
             "host_cores": float(host_cores),
             "curve": curve,
             "k1_source": k1_source,
+            "measured_cpu_util": float(pd.to_numeric(top.get("tput_cpu_util", np.nan), errors="coerce")),
         })
     cols = [*_IDENT, "map", "map_ci_lo", "map_ci_hi", "point_id", "per_core_fps", "measured_cores",
-            "measured_k", "scaling_eff", "x1_fps", "host_cores", "curve", "k1_source"]
+            "measured_k", "scaling_eff", "x1_fps", "host_cores", "curve", "k1_source",
+            "measured_cpu_util"]
     return pd.DataFrame(configs, columns=cols), pd.DataFrame(excluded, columns=[*_IDENT, "reason"])
 
 
@@ -193,7 +201,7 @@ def _size_one(cfg: dict, shape: int, required: float, p99_ms, headroom: float, c
     workers = shape // threads
     row = {k: cfg.get(k) for k in ("label", "model", "size", "proposals", "backend", "intra_threads",
                                    "map", "frontier_status", "per_core_fps", "measured_cores", "scaling_eff",
-                                   "k1_source")}
+                                   "k1_source", "measured_cpu_util")}
     row.update(required_fps=required, cores_needed=cores_needed, server_cores=shape,
                workers_per_server=workers, extrapolated=shape > measured_cores)
     if workers == 0:
@@ -237,7 +245,7 @@ def _assumption(cfg: dict, shape: int) -> str:
     if shape <= mc:
         return f"measured: {basis}"
     return (f"extrapolated: throughput assumed linear in cores beyond the measured {mc} cores at "
-            f"{basis}; memory bandwidth and cache contention on a {shape}-core host may lower it")
+            f"{basis}; memory bandwidth and cache contention on larger hosts may lower it")
 
 
 def _check_args(streams, fps, p99_ms, server_cores, headroom, cost):

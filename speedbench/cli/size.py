@@ -36,6 +36,8 @@ def run(args) -> int:
 
 
 def render_text(table, with_p99: bool, with_cost: bool) -> str:
+    from speedbench.analyse.sizing import CONTENDED_CPU_UTIL
+
     cols = ["label", "server_cores", "servers", "utilisation", "expected_p99_ms", "extrapolated"]
     if with_p99:
         cols.append("meets_p99")
@@ -52,8 +54,14 @@ def render_text(table, with_p99: bool, with_cost: bool) -> str:
         first = group.iloc[0]
         lines.append(f"{label}: {first['per_core_fps']:.3g} fps/core, scaling efficiency "
                      f"{first['scaling_eff']:.2f} at {int(first['measured_cores'])} measured cores")
-        for note in dict.fromkeys(group.loc[group["extrapolated"], "assumption"]):
-            lines.append(f"  note: {note}")
+        util = first.get("measured_cpu_util", float("nan"))
+        if util == util and util < CONTENDED_CPU_UTIL:
+            lines.append(f"  note: its workers got only {util:.0%} of their cores' CPU time while measured "
+                         "(other load on the host, or idle threads): a dedicated server may do better")
+        extra = group[group["extrapolated"].astype(bool)]
+        for note in dict.fromkeys(extra["assumption"]):
+            shapes = ", ".join(str(int(c)) for c in extra.loc[extra["assumption"] == note, "server_cores"])
+            lines.append(f"  note ({shapes}-core servers): {note}")
         beyond = group[group["p99_beyond_measured"].astype(bool)]
         if len(beyond):
             lines.append("  note: p99 for " + ", ".join(f"{int(c)}-core" for c in beyond["server_cores"])
