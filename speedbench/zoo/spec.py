@@ -25,3 +25,8 @@ class ModelSpec:
     weights_enum: str | None = None  # torchvision weights enum name, if torchvision ships weights
     default_weights: str = "none"    # "none", "torchvision", "demo" or "file:PATH"
     notes: str = ""
+    # torchvision detector class name ("FasterRCNN", "MaskRCNN", "RetinaNet", "FCOS", "SSD");
+    # "" = find out by building the model on the meta device.
+    arch: str = ""
+    # Smallest input size (px) the architecture runs at; export refuses smaller ones.
+    min_size: int = 32

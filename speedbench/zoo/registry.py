@@ -1,0 +1,195 @@
+"""The registry of detector architectures: torchvision's builders plus anything registered later.
+
+Stage scopes are module paths inside the torchvision model. They survive into the
+ONNX node names of the TorchScript exporter (``/backbone/body/layer1/...``), so the
+same table attributes both FLOP counts (by module) and profiled node times (by name)
+to the stages of speedbench.schema.STAGES.
+
+How postprocess is told apart from the stage around it: torchvision runs box decoding
+and NMS in *methods* (``postprocess_detections``, ``transform.postprocess``), not in
+submodules. A method call opens no new module scope, so its nodes carry the scope of
+the module that called it:
+- one-stage models: the model itself, i.e. the top level (scope "") -> postprocess;
+- two-stage models: ``roi_heads`` directly (its submodules box_roi_pool / box_head /
+  box_predictor are the ROI head proper) -> postprocess; plus the top level, where
+  ``transform.postprocess`` maps boxes back to the input image.
+The RPN's own decoding and NMS stay in "proposals": they are what the proposal knob buys.
+"""
+from __future__ import annotations
+
+import difflib
+
+from speedbench.errors import UserError
+from speedbench.schema import STAGES
+from speedbench.zoo.spec import ModelSpec
+
+_REGISTRY: dict[str, ModelSpec] = {}
+
+_FPN = {"preprocess": ("transform",), "backbone": ("backbone.body",), "neck": ("backbone.fpn",)}
+_RCNN = {**_FPN, "proposals": ("rpn",),
+         "roi_heads": ("roi_heads.box_roi_pool", "roi_heads.box_head", "roi_heads.box_predictor"),
+         "postprocess": ("roi_heads", "")}
+_MASK = {**_RCNN, "roi_heads": _RCNN["roi_heads"] + (
+    "roi_heads.mask_roi_pool", "roi_heads.mask_head", "roi_heads.mask_predictor")}
+_DENSE = {**_FPN, "head": ("head",), "postprocess": ("anchor_generator", "")}
+# SSD: the base network's layers are the backbone, the extra layers play the neck's part.
+_SSD = {"preprocess": ("transform",), "backbone": ("backbone", "backbone.features"),
+        "neck": ("backbone.extra",), "head": ("head",), "postprocess": ("anchor_generator", "")}
+
+
+def _tv(id, weights, family, native, dets, thresh, props, scopes, arch, notes=""):
+    return ModelSpec(id=id, builder=f"torchvision.models.detection.{id}", family=family,
+                     native_size=native, detections_per_img=dets, score_thresh=thresh,
+                     default_proposals=props, stage_scopes=scopes, num_classes=91,
+                     weights_enum=f"{weights}.COCO_V1", arch=arch, notes=notes)
+
+
+# Values are torchvision 0.29's builder defaults; tests/test_zoo.py checks them against
+# the built models so a torchvision upgrade that changes them is caught.
+TORCHVISION_SPECS = (
+    _tv("fasterrcnn_resnet50_fpn", "FasterRCNN_ResNet50_FPN_Weights", "two-stage", 800, 100, 0.05, 1000,
+        _RCNN, "FasterRCNN"),
+    _tv("fasterrcnn_resnet50_fpn_v2", "FasterRCNN_ResNet50_FPN_V2_Weights", "two-stage", 800, 100, 0.05, 1000,
+        _RCNN, "FasterRCNN"),
+    _tv("fasterrcnn_mobilenet_v3_large_fpn", "FasterRCNN_MobileNet_V3_Large_FPN_Weights", "two-stage", 800,
+        100, 0.05, 150, _RCNN, "FasterRCNN"),
+    _tv("fasterrcnn_mobilenet_v3_large_320_fpn", "FasterRCNN_MobileNet_V3_Large_320_FPN_Weights", "two-stage",
+        320, 100, 0.05, 150, _RCNN, "FasterRCNN"),
+    _tv("maskrcnn_resnet50_fpn", "MaskRCNN_ResNet50_FPN_Weights", "two-stage", 800, 100, 0.05, 1000,
+        _MASK, "MaskRCNN", notes="extra output: masks [N, 1, H, W] in input-image pixels"),
+    _tv("retinanet_resnet50_fpn", "RetinaNet_ResNet50_FPN_Weights", "one-stage", 800, 300, 0.05, 1000,
+        _DENSE, "RetinaNet"),
+    _tv("retinanet_resnet50_fpn_v2", "RetinaNet_ResNet50_FPN_V2_Weights", "one-stage", 800, 300, 0.05, 1000,
+        _DENSE, "RetinaNet"),
+    _tv("fcos_resnet50_fpn", "FCOS_ResNet50_FPN_Weights", "one-stage", 800, 100, 0.2, 1000, _DENSE, "FCOS"),
+    _tv("ssd300_vgg16", "SSD300_VGG16_Weights", "one-stage", 300, 200, 0.01, 400, _SSD, "SSD"),
+    _tv("ssdlite320_mobilenet_v3_large", "SSDLite320_MobileNet_V3_Large_Weights", "one-stage", 320, 300,
+        0.001, 300, _SSD, "SSD"),
+)
+
+# How the sweep's knobs land on each torchvision class (shown by `speedbench models`).
+SIZE_KNOBS = {
+    "GeneralizedRCNN": "transform.min_size = size, transform.max_size = size x (native max/min), "
+                       "so the shorter image side is resized to `size`",
+    "SSD": "transform.fixed_size = (size, size): the image is resized to a size x size square",
+}
+PROPOSAL_KNOBS = {
+    "GeneralizedRCNN": "RPN at test time keeps the top `proposals` anchors per FPN level before NMS and "
+                       "`proposals` boxes after NMS (pre/post ratio as in the builder)",
+    "RetinaNet": "head keeps the top `proposals` candidates per FPN level before NMS (topk_candidates)",
+    "FCOS": "head keeps the top `proposals` candidates per FPN level before NMS (topk_candidates)",
+    "SSD": "keeps the top `proposals` candidates per class before NMS (topk_candidates)",
+}
+
+
+def register(spec: ModelSpec) -> None:
+    if spec.family not in ("one-stage", "two-stage"):
+        raise ValueError(f"model {spec.id}: family must be one-stage or two-stage, not {spec.family!r}")
+    bad = [s for s in spec.stage_scopes if s not in STAGES]
+    if bad:
+        raise ValueError(f"model {spec.id}: unknown stage names {bad}; expected {STAGES}")
+    _REGISTRY[spec.id] = spec
+
+
+def _load_extras() -> None:
+    # The compact demo zoo registers itself on import; it may not exist in every checkout.
+    try:
+        import speedbench.zoo.compact  # noqa: F401
+    except ModuleNotFoundError as exc:
+        if exc.name != "speedbench.zoo.compact":
+            raise
+
+
+for _spec in TORCHVISION_SPECS:
+    register(_spec)
+
+
+def list_specs() -> list[ModelSpec]:
+    _load_extras()
+    return list(_REGISTRY.values())
+
+
+def get_spec(model_id: str) -> ModelSpec:
+    _load_extras()
+    spec = _REGISTRY.get(str(model_id))
+    if spec is None:
+        close = difflib.get_close_matches(str(model_id), list(_REGISTRY), n=3, cutoff=0.5)
+        hint = f"; did you mean {', '.join(close)}?" if close else "; `speedbench models` lists them"
+        raise UserError(f"unknown model id {model_id!r}{hint}")
+    return spec
+
+
+def arch_of(spec: ModelSpec) -> str:
+    """The torchvision detector class the spec builds (builds on the meta device if not declared)."""
+    if spec.arch:
+        return spec.arch
+    from speedbench.zoo.build import build_model
+
+    return type(build_model(spec.id, device="meta")).__name__
+
+
+def _knob_key(arch: str, table: dict) -> str | None:
+    if arch in table:
+        return arch
+    if arch in ("FasterRCNN", "MaskRCNN", "KeypointRCNN", "GeneralizedRCNN"):
+        return "GeneralizedRCNN" if "GeneralizedRCNN" in table else None
+    return None
+
+
+def describe_knobs(spec: ModelSpec) -> dict:
+    arch = arch_of(spec)
+    size = SIZE_KNOBS.get(_knob_key(arch, SIZE_KNOBS) or "", "transform.min_size / max_size")
+    if arch == "SSD":
+        size = SIZE_KNOBS["SSD"]
+    key = _knob_key(arch, PROPOSAL_KNOBS)
+    props = PROPOSAL_KNOBS[key] if key and spec.default_proposals else "none (the model has no such knob)"
+    return {"arch": arch, "size_knob": size, "proposal_knob": props}
+
+
+def scope_to_path(scope: str) -> str:
+    """ONNX node name or module path -> dotted module path ("" for the top level).
+
+    The TorchScript exporter names nodes ``/backbone/body/layer1/layer1.0/conv1/Conv``:
+    one component per module call, where a component repeats its parent's name for
+    numbered children. Collapsing those repeats gives ``backbone.body.layer1.0.conv1``.
+    """
+    scope = str(scope)
+    if not scope.startswith("/"):
+        return scope.strip(".")
+    parts = [p for p in scope.split("/")[1:-1] if p]   # last part is the op's own name
+    path: list[str] = []
+    for part in parts:
+        if path and part.startswith(path[-1] + "."):
+            path[-1] = part
+        else:
+            path.append(part)
+    return ".".join(path)
+
+
+def stage_of_scope(spec: ModelSpec, scope: str) -> str:
+    """Stage of an ONNX node name (``/rpn/head/conv/Conv``) or module path (``rpn.head.conv``).
+
+    The longest matching prefix in spec.stage_scopes wins; "" stands for nodes outside any
+    submodule (the top-level forward). Names without a module scope that the exporter or
+    ONNX Runtime made up (``Identity_12``, fused or reordered nodes) are "unattributed".
+    """
+    if not str(scope).startswith("/") and "." not in str(scope) and str(scope) not in _all_prefixes(spec):
+        return "unattributed"
+    path = scope_to_path(scope)
+    best, best_len = "unattributed", -1
+    scopes = dict(spec.stage_scopes)
+    scopes.setdefault("preprocess", ("transform",))
+    if not any("" in p for p in scopes.values()):
+        scopes = {**scopes, "postprocess": tuple(scopes.get("postprocess", ())) + ("",)}
+    for stage, prefixes in scopes.items():
+        for prefix in prefixes:
+            hit = prefix == "" or path == prefix or path.startswith(prefix + ".")
+            if hit and len(prefix) > best_len:
+                best, best_len = stage, len(prefix)
+    if best_len == 0 and path != "":
+        return "unattributed"   # a submodule no stage lists: say so rather than guess
+    return best
+
+
+def _all_prefixes(spec: ModelSpec) -> set[str]:
+    return {p for prefixes in spec.stage_scopes.values() for p in prefixes} | {"transform"}
