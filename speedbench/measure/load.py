@@ -29,7 +29,12 @@ How one load point is measured (``measure_load``):
 4. The parent enforces one timeout for the whole point and survives any worker dying;
    the point is then "failed" with the reason, as for single points.
 
-Public: ``measure_load``, ``measure_scaling``, ``LoadResult``, ``summarise``, ``LOAD_COLUMNS``.
+Paced runs (``measure_curve``): frames arrive on a fixed clock at a fraction u of the closed-loop
+capacity, split over the K workers as cameras would be, and each frame's latency runs from its
+arrival, so queueing is included; the p99 at each achieved utilisation is what sizing reads.
+
+Public: ``measure_load``, ``measure_scaling``, ``measure_curve``, ``LoadResult``, ``summarise``,
+``LOAD_COLUMNS``.
 """
 from __future__ import annotations
 
@@ -54,6 +59,7 @@ LOAD_COLUMNS = (
     "tput_fps", "tput_p50_ms", "tput_p90_ms", "tput_p99_ms", "tput_mean_ms", "scaling_eff",
     "littles_L", "littles_XW", "cores_used", "host_cores", "tput_window_s", "tput_requests",
     "tput_cpu_util", "tput_cpu_util_xs", "tput_cpu_ms", "tput_rss_total_mib",
+    "tput_busy", "tput_busy_xs", "tput_service_ms", "load_curve",
 )
 NAN = float("nan")
 
@@ -69,6 +75,7 @@ class LoadResult:
     summary: dict = field(default_factory=dict)   # LOAD_COLUMNS values
     latencies_ms: list = field(default_factory=list)  # per request, completed inside the window
     workers: list = field(default_factory=list)   # raw per-worker timelines (see _worker_main)
+    offered_fps: float | None = None               # paced arrivals; None = closed loop
 
     @property
     def ok(self) -> bool:
@@ -122,14 +129,19 @@ def summarise(workers: list[dict], start_ns: int, end_ns: int, cores_used: int) 
     lat = []
     cpu_rate, xs_rate = 0.0, 0.0
     n_total = 0
+    busy_s, service = 0.0, []
     for w in workers:
         s = np.asarray(w["starts_ns"], dtype=np.int64)
         e = np.asarray(w["ends_ns"], dtype=np.int64)
+        # Paced runs record when service began; a request waits from its arrival (s) until then.
+        v = np.asarray(w.get("service_ns", w["starts_ns"]), dtype=np.int64)
         # time in flight inside the window: each interval clipped to [start, end]
         overlap = np.clip(np.minimum(e, end_ns) - np.maximum(s, start_ns), 0, None)
         in_flight_s += overlap.sum() / 1e9
+        busy_s += np.clip(np.minimum(e, end_ns) - np.maximum(v, start_ns), 0, None).sum() / 1e9
         done = (e >= start_ns) & (e <= end_ns)
         lat.extend(((e[done] - s[done]) / 1e6).tolist())
+        service.extend(((e[done] - v[done]) / 1e6).tolist())
         n_total += len(s)
         # Utilisation law per worker over its own span: U_k = CPU / span vs X_k S_k.
         if len(s):
@@ -148,6 +160,10 @@ def summarise(workers: list[dict], start_ns: int, end_ns: int, cores_used: int) 
         "littles_L": float(in_flight_s / window_s),
         "littles_XW": x * mean_ms / 1000.0 if n else NAN,
         "cores_used": int(cores_used),
+        # Utilisation law per worker, U = X S: busy fraction vs throughput x mean service time.
+        "tput_busy": float(busy_s / window_s / len(workers)),
+        "tput_busy_xs": float(x * np.mean(service) / 1000.0 / len(workers)) if n else NAN,
+        "tput_service_ms": float(np.mean(service)) if n else NAN,
         "tput_cpu_util": float(cpu_rate / cores_used),
         "tput_cpu_util_xs": float(xs_rate / cores_used),
         "tput_cpu_ms": float(np.mean(np.concatenate([np.asarray(w["cpu_ns"], float) for w in workers]))) / 1e6
@@ -166,7 +182,7 @@ def host_cores() -> int:
 
 def measure_load(point, images, k: int | None = None, policy=None, timeout_s: float = 600,
                  seconds: float | None = None, min_requests: int = 20, pin: bool = False,
-                 baseline_fps: float | None = None) -> "LoadResult":
+                 baseline_fps: float | None = None, offered_fps: float | None = None) -> "LoadResult":
     """Measure throughput of ``k`` concurrent workers of ``point`` (a speedbench.measure.Point).
 
     images: uint8 [H, W, 3] arrays or image paths, cycled by every worker.
@@ -179,6 +195,10 @@ def measure_load(point, images, k: int | None = None, policy=None, timeout_s: fl
       A point with affinity > 0 is always pinned, to that many cores per worker.
     baseline_fps: X(1) of the same configuration, for scaling_eff = X(K) / (K X(1)); for k = 1
       the efficiency is 1 by definition.
+    offered_fps: paced (open-loop) arrivals instead of a closed loop: frames arrive on a fixed
+      clock at offered_fps in total, split evenly over the K workers (like cameras); each frame's
+      latency runs from its arrival, so it includes queueing. A paced result describes the same
+      configuration at a given utilisation (``tput_busy``); see ``measure_curve``.
     timeout_s: for the whole point (start-up, warm-up, window). On timeout or any worker failure
       every worker is killed and the result is status "failed" with the reason; no exception.
     Bad arguments (k < 1, K x T above the host's cores, thread count 0) raise UserError.
@@ -205,6 +225,8 @@ def measure_load(point, images, k: int | None = None, policy=None, timeout_s: fl
     window = float(seconds if seconds is not None else min(policy.max_seconds, 10.0))
     if window <= 0:
         raise UserError(f"seconds: the measurement window must be > 0, got {seconds!r}")
+    if offered_fps is not None and not offered_fps > 0:
+        raise UserError(f"offered_fps: must be > 0, got {offered_fps!r}")
     with tempfile.TemporaryDirectory(prefix="speedbench-load-") as tmp:
         tmp = Path(tmp)
         images_path = _save_images(images, tmp / "images.npz")
@@ -216,13 +238,18 @@ def measure_load(point, images, k: int | None = None, policy=None, timeout_s: fl
                 "cores": allowed[i * per_worker:(i + 1) * per_worker] if per_worker else None,
                 "policy": policy.to_dict(), "ready": str(tmp / f"ready.{i}"), "go": str(tmp / "go.json"),
                 "result": str(tmp / f"result.{i}.json"), "index": i,
+                # paced: worker i gets every K-th frame of one clock at offered_fps
+                "period_ns": int(k * 1e9 / offered_fps) if offered_fps else 0,
+                "phase_ns": int(i * 1e9 / offered_fps) if offered_fps else 0,
             }
             path = tmp / f"spec.{i}.json"
             path.write_text(json.dumps(spec))
             specs.append((spec, path))
         result = _run_workers(point, k, specs, tmp, window, min_requests, timeout_s)
+    result.offered_fps = offered_fps
     if result.ok:
         result.summary["host_cores"] = cores
+        result.summary["tput_offered_fps"] = offered_fps if offered_fps else NAN
         if k == 1:
             result.summary["scaling_eff"] = 1.0
         elif baseline_fps and baseline_fps > 0:
@@ -232,10 +259,12 @@ def measure_load(point, images, k: int | None = None, policy=None, timeout_s: fl
     return result
 
 
-def measure_scaling(point, images, ks=(1, 2), on_result=None, **kwargs) -> list["LoadResult"]:
+def measure_scaling(point, images, ks=(1, 2), on_result=None, utilisations=(), **kwargs) -> list["LoadResult"]:
     """measure_load at each K in ``ks`` (K = 1 first, so every efficiency has its baseline).
 
     Each K runs its own fresh workers; a failed K does not stop the others.
+    utilisations: for the largest K, also run ``measure_curve`` at these fractions of its
+    closed-loop throughput and keep the curve in that result's ``load_curve`` column.
     on_result(result) is called as each K finishes, so callers can store it at once.
     kwargs go to measure_load (policy, timeout_s, seconds, min_requests, pin, baseline_fps).
     """
@@ -246,10 +275,47 @@ def measure_scaling(point, images, ks=(1, 2), on_result=None, **kwargs) -> list[
         res = measure_load(point, images, k=k, baseline_fps=baseline, **kwargs)
         if k == 1 and res.ok:
             baseline = res.tput_fps
+        if k == ks[-1] and res.ok and utilisations:
+            paced = measure_curve(point, images, k, utilisations, capacity_fps=res.tput_fps, **kwargs)
+            res.summary["load_curve"] = json.dumps([curve_entry(r) for r in paced])
         if k in ks:
             out.append(res)
             if on_result is not None:
                 on_result(res)
+    return out
+
+
+def measure_curve(point, images, k: int, utilisations=(0.5, 0.7, 0.9), capacity_fps: float | None = None,
+                  **kwargs) -> list["LoadResult"]:
+    """Latency against utilisation: paced runs of K workers at fractions of their capacity.
+
+    capacity_fps: the closed-loop throughput X(K) (measured first when not given). Frames then
+    arrive on a fixed clock at u x capacity for each u; the latency of each frame runs from its
+    arrival, so waiting behind earlier frames (queueing) is included, unlike the closed loop.
+    The achieved utilisation is each result's ``tput_busy`` (busy fraction per worker).
+    """
+    for u in utilisations:
+        if not 0 < float(u) <= 1.5:
+            raise UserError(f"utilisations: each must be in (0, 1.5], got {u!r}")
+    if capacity_fps is None:
+        closed = measure_load(point, images, k=k, **kwargs)
+        if not closed.ok:
+            return [closed]
+        capacity_fps = closed.tput_fps
+    return [measure_load(point, images, k=k, offered_fps=float(u) * capacity_fps, **kwargs)
+            for u in utilisations]
+
+
+def curve_entry(r: "LoadResult") -> dict:
+    """One point of a latency-vs-utilisation curve, JSON-ready (NaN -> None)."""
+    s = r.summary
+    keys = {"util": "tput_busy", "offered_fps": "tput_offered_fps", "tput_fps": "tput_fps",
+            "p50_ms": "tput_p50_ms", "p99_ms": "tput_p99_ms", "mean_ms": "tput_mean_ms",
+            "service_ms": "tput_service_ms", "littles_L": "littles_L", "littles_XW": "littles_XW"}
+    out = {k: (None if not isinstance(s.get(v), (int, float)) or math.isnan(s.get(v)) else float(s[v]))
+           for k, v in keys.items()}
+    out["offered_fps"] = r.offered_fps
+    out["status"] = r.status if r.ok else f"failed: {r.reason}"
     return out
 
 
@@ -392,12 +458,18 @@ def _worker_main(spec_path: str) -> int:
         delay = (start_ns - time.monotonic_ns()) / 1e9
         if delay > 0:
             time.sleep(delay)
-        starts, ends, cpus = _closed_loop(run, inputs, end_ns, spec["index"])
+        service = None
+        if spec.get("period_ns"):
+            starts, service, ends, cpus = _paced_loop(run, inputs, start_ns + spec["phase_ns"], end_ns,
+                                                      spec["period_ns"], spec["index"])
+        else:
+            starts, ends, cpus = _closed_loop(run, inputs, end_ns, spec["index"])
         cpu_total = cpus.pop()
         import resource
 
         rss_peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # KiB on Linux
         _write_json(result_path, {"status": "ok", "starts_ns": starts, "ends_ns": ends, "cpu_ns": cpus,
+                                  **({"service_ns": service} if service is not None else {}),
                                   "cpu_total_ns": cpu_total, "rss_peak_mib": rss_peak,
                                   "affinity": sorted(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity")
                                   else []})
@@ -430,6 +502,41 @@ def _closed_loop(run, inputs, end_ns: int, offset: int):
         i += 1
     cpus.append(c0 - c_first)
     return starts, ends, cpus
+
+
+def _paced_loop(run, inputs, first_ns: int, end_ns: int, period_ns: int, offset: int):
+    """Frames arrive every period_ns from first_ns until end_ns and are served in order.
+
+    Returns arrival, service-start and end timestamps, CPU per request (+ loop total last).
+    An overloaded worker stops serving a backlog one window after end_ns; frames it never
+    served simply do not count as completed.
+    """
+    mono, cpu = time.monotonic_ns, time.process_time_ns
+    arrivals, service, ends, cpus = [], [], [], []
+    n_inputs = len(inputs)
+    give_up = end_ns + (end_ns - first_ns)
+    c_first = cpu()
+    j = 0
+    while True:
+        a = first_ns + j * period_ns
+        if a >= end_ns:
+            break
+        now = mono()
+        if now < a:
+            time.sleep((a - now) / 1e9)
+        elif now > give_up:
+            break
+        c0 = cpu()
+        t0 = mono()
+        run(inputs[(offset + j) % n_inputs])
+        t1 = mono()
+        cpus.append(cpu() - c0)
+        arrivals.append(a)
+        service.append(t0)
+        ends.append(t1)
+        j += 1
+    cpus.append(cpu() - c_first)
+    return arrivals, service, ends, cpus
 
 
 def _load_runner(point):

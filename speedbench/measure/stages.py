@@ -15,6 +15,13 @@ graph), which differs from the exported one:
 - If/Loop/Scan nodes own subgraphs whose nodes get their own events while the
   parent's event spans all of them. Each node is counted by its *self* time
   (its time minus its direct children's), so no time is counted twice.
+- Between two nodes the executor spends time preparing the next one (output
+  allocation, shape inference, the profiler's own bookkeeping). With the
+  sequential executor that gap is charged to the node that follows, so the
+  stages partition the profiled run; the profiler's share of it is why
+  `profiling_overhead` is reported and why `kernel_stages` (kernel time only)
+  is kept as well - for graphs of many tiny nodes (the unrolled per-class NMS
+  of SSD-style heads) the two splits differ.
 
 Whatever cannot be tied to a scope is reported as "unattributed". Attribution
 is a pure function of (original graph, optimized graph, profile events), so
@@ -30,11 +37,21 @@ KERNEL_SUFFIX = "_kernel_time"
 
 
 def scope_of_name(name: str) -> str | None:
-    """"/backbone/body/features.0/Conv" -> "backbone.body.features.0"; "/Softmax" -> ""; "If_12" -> None."""
+    """Module path of an exporter node name, or None for a name without a scope.
+
+    "/backbone/body/layer1/layer1.0/conv1/Conv" -> "backbone.body.layer1.0.conv1"
+    (the exporter repeats a parent's name for numbered children: "layer1/layer1.0"),
+    "/Softmax" -> "" (the model's own forward), "If_12" -> None.
+    """
     if not name.startswith("/"):
         return None
-    parts = name.strip("/").split("/")
-    return ".".join(parts[:-1])
+    path: list[str] = []
+    for part in [p for p in name.split("/")[1:-1] if p]:
+        if path and part.startswith(path[-1] + "."):
+            path[-1] = part
+        else:
+            path.append(part)
+    return ".".join(path)
 
 
 class GraphIndex:
@@ -82,16 +99,19 @@ class Attributor:
         return self.opt.nodes.get(name) or self.orig.nodes.get(name)
 
     def resolve(self, name: str) -> tuple[str | None, str]:
-        """(scope or None, how it was found: name | fused-name | ancestry | parent | none)."""
+        """(a scoped name or None, how it was found: name | fused-name | ancestry | parent | none).
+
+        The scoped name is the node's own name when it carries a scope, else the name of
+        the ancestor (node or tensor) that does; scope_of_name() turns it into a module path.
+        """
         if name not in self._memo:
             self._memo[name] = self._resolve(name)
         return self._memo[name]
 
     def _resolve(self, name: str):
-        if name in self.orig.nodes and scope_of_name(name) is not None:
-            return scope_of_name(name), "name"
-        if scope_of_name(name) is not None:          # ORT derived the name from an original tensor
-            return scope_of_name(name), "fused-name"
+        if scope_of_name(name) is not None:
+            # in the exported graph, or a name ORT derived from an original tensor ("..._nchwc")
+            return name, "name" if name in self.orig.nodes else "fused-name"
         scope = self._ancestry(name)
         if scope is not None:
             return scope, "ancestry"
@@ -105,7 +125,7 @@ class Attributor:
     def _tensor_scope(self, tensor: str) -> str | None:
         prod = self.orig.producer.get(tensor)
         if prod is not None and scope_of_name(prod) is not None:
-            return scope_of_name(prod)
+            return prod
         return None
 
     def _ancestry(self, name: str) -> str | None:
@@ -130,7 +150,7 @@ class Attributor:
                     if prod and prod not in seen:
                         seen.add(prod)
                         if scope_of_name(prod) is not None:
-                            return scope_of_name(prod)
+                            return prod
                         p = self.node(prod)
                         if p is not None:
                             nxt.append(p)
@@ -152,33 +172,56 @@ def run_windows(events: list[dict], last: int | None = None) -> list[tuple[int, 
     return runs[-last:] if last else runs
 
 
-def attribute(events: list[dict], attributor: Attributor, stage_of, last_runs: int | None = None) -> dict:
+def attribute(events: list[dict], attributor: Attributor, stage_of, last_runs: int | None = None,
+              dispatch: bool = True) -> dict:
     """Stage times (ms per run) from profile events.
 
     stage_of(scope) -> stage name; scope None means unattributed. Only node
     events inside the last `last_runs` model_run windows are used (the earlier
-    ones are warm-up). Returns stages, profiled_ms (mean run), node_ms (sum of
-    self times per run), coverage (node_ms / profiled_ms) and the slowest nodes.
+    ones are warm-up).
+
+    Each node counts with its self time (control-flow parents minus their
+    subgraph children). With `dispatch` (sequential executor: one node at a
+    time), the gap between one top-level node and the next - the executor
+    preparing that node, and the profiler's own bookkeeping - is charged to
+    the node that follows, so the stages partition the profiled run; the time
+    before the first and after the last node goes to "unattributed". The pure
+    kernel split is returned too (kernel_stages).
     """
+    import bisect
+
     windows = run_windows(events, last_runs)
     if not windows:
         raise ValueError("profile has no model_run events")
     starts = [w[0] for w in windows]
-
-    def in_window(ts):
-        import bisect
-
-        i = bisect.bisect_right(starts, ts) - 1
-        return i >= 0 and ts <= windows[i][1]
-
-    total = defaultdict(float)                       # node name -> summed µs over the windows
+    per_window = defaultdict(list)
     for e in events:
         if e.get("cat") != "Node" or not e.get("name", "").endswith(KERNEL_SUFFIX):
             continue
-        if in_window(e["ts"]):
-            total[e["name"][: -len(KERNEL_SUFFIX)]] += e["dur"]
+        i = bisect.bisect_right(starts, e["ts"]) - 1
+        if i >= 0 and e["ts"] <= windows[i][1]:
+            per_window[i].append(e)
 
-    # Self time: a control-flow node's event includes its subgraph's node events.
+    total = defaultdict(float)        # node name -> summed kernel µs over the windows
+    gap = defaultdict(float)          # node name -> summed dispatch gap µs before it
+    edge_us = 0.0                     # before the first / after the last node of each run
+    for i, evs in per_window.items():
+        evs.sort(key=lambda e: (e["ts"], -e["dur"]))
+        top_end = None
+        for e in evs:
+            name = e["name"][: -len(KERNEL_SUFFIX)]
+            total[name] += e["dur"]
+            if top_end is None:
+                edge_us += e["ts"] - windows[i][0]
+                top_end = e["ts"] + e["dur"]
+            elif e["ts"] >= top_end:             # a top-level node (not inside a control-flow node)
+                gap[name] += e["ts"] - top_end
+                top_end = e["ts"] + e["dur"]
+            else:
+                top_end = max(top_end, e["ts"] + e["dur"])
+        if top_end is not None:
+            edge_us += max(0.0, windows[i][1] - top_end)
+
     child_sum = defaultdict(float)
     for name, us in total.items():
         parent = attributor.parent_of(name)
@@ -187,41 +230,51 @@ def attribute(events: list[dict], attributor: Attributor, stage_of, last_runs: i
     self_us = {name: max(0.0, us - child_sum.get(name, 0.0)) for name, us in total.items()}
 
     n = len(windows)
-    stages = defaultdict(float)
-    how = defaultdict(float)
+    stages, kernel_stages, how = defaultdict(float), defaultdict(float), defaultdict(float)
     per_node = []
     for name, us in self_us.items():
         scope, method = attributor.resolve(name)
         stage = "unattributed" if scope is None else stage_of(scope)
-        stages[stage] += us / n / 1000
-        how[method] += us / n / 1000
-        per_node.append((us / n / 1000, name, stage))
+        ms = us / n / 1000
+        kernel_stages[stage] += ms
+        stages[stage] += ms + (gap.get(name, 0.0) / n / 1000 if dispatch else 0.0)
+        how[method] += ms
+        per_node.append((ms, name, stage))
+    if dispatch:
+        stages["unattributed"] += edge_us / n / 1000
     run_ms = sum(b - a for a, b in windows) / n / 1000
-    node_ms = sum(stages.values())
+    kernel_ms = sum(kernel_stages.values())
+    stage_ms = sum(stages.values())
     per_node.sort(reverse=True)
     return {
         "stages": dict(stages),
+        "kernel_stages": dict(kernel_stages),
         "profiled_ms": run_ms,
         "run_ms": [(b - a) / 1000 for a, b in windows],
-        "node_ms": node_ms,
+        "stage_sum_ms": stage_ms,
+        "kernel_ms": kernel_ms,
+        "dispatch_ms": sum(gap.values()) / n / 1000 if dispatch else 0.0,
         "naive_node_ms": sum(total.values()) / n / 1000,   # parents and children both counted (wrong)
-        "coverage": node_ms / run_ms if run_ms > 0 else float("nan"),
+        "subgraph_ms": sum(child_sum.values()) / n / 1000,  # time inside If/Loop bodies, counted once
+        "coverage": stage_ms / run_ms if run_ms > 0 else float("nan"),
+        "kernel_coverage": kernel_ms / run_ms if run_ms > 0 else float("nan"),
         "resolved_by": dict(how),
         "top_nodes": [{"node": nm, "stage": st, "ms": round(ms, 4)} for ms, nm, st in per_node[:10]],
     }
 
 
 def prefix_stage_of(stage_scopes: dict, scope: str) -> str:
-    """Fallback scope -> stage by the longest matching module-path prefix of spec.stage_scopes.
+    """Fallback (node name or module path) -> stage by the longest matching prefix of stage_scopes.
 
-    A leading wrapper component (the exporter's own module) is tolerated. Code
+    A leading wrapper component (an exporter's own module) is tolerated. Code
     at the detector's top level (not inside any stage module) is box decoding
     and NMS in torchvision's one-stage detectors, so it counts as postprocess.
     """
-    parts = scope.split(".") if scope else []
-    best, best_len = None, -1
+    path = scope_of_name(scope) if scope.startswith("/") else scope
+    parts = path.split(".") if path else []
     for start in (0, 1):
         cand = ".".join(parts[start:])
+        best, best_len = None, -1
         for stage, prefixes in stage_scopes.items():
             for p in prefixes:
                 if p and (cand == p or cand.startswith(p + ".")) and len(p) > best_len:

@@ -80,7 +80,8 @@ class Runner:
                 optimized = onnx.load(opt_files[0], load_external_data=False)
             original = onnx.load(self.point.graph, load_external_data=False)
         attributor = st.Attributor(original, optimized)
-        out = st.attribute(events, attributor, st.stage_function(_spec(self.point.model)), last_runs=reps)
+        out = st.attribute(events, attributor, st.stage_function(_spec(self.point.model)), last_runs=reps,
+                           dispatch=self.point.exec_mode == "sequential")
         if self.point.exec_mode == "parallel":
             out["note"] = ("parallel executor: node times overlap across threads, "
                            "so stage times can add up to more than the run")
