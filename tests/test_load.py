@@ -67,6 +67,48 @@ def test_summarise_gaps_and_window_edges():
     assert s["tput_cpu_util_xs"] == pytest.approx(0.15 / 0.55)
 
 
+def test_summarise_paced_arrivals_with_a_queue():
+    # Frames arrive every 100 ms (0, 100, 200, 300) and each takes 150 ms, so a queue builds:
+    # service starts 0, 150, 300, 450; ends 150, 300, 450, 600. Window [0, 600] ms.
+    # X = 4 / 0.6 s = 6.667 fps; latency from arrival = 150, 200, 250, 300 -> W = 225 ms.
+    # Little: L = (150 + 200 + 250 + 300) / 600 = 1.5 = X W = 6.667 x 0.225.
+    # Utilisation law: busy = 4 x 150 / 600 = 1.0 = X S = 6.667 x 0.150.
+    # L - U = 0.5 frames waiting on average (L = Lq + U): the queue the closed loop never shows.
+    w = {"starts_ns": [0, 100 * MS, 200 * MS, 300 * MS], "service_ns": [0, 150 * MS, 300 * MS, 450 * MS],
+         "ends_ns": [150 * MS, 300 * MS, 450 * MS, 600 * MS], "cpu_ns": [150 * MS] * 4,
+         "cpu_total_ns": 600 * MS}
+    s = summarise([w], 0, 600 * MS, cores_used=1)
+    assert s["tput_fps"] == pytest.approx(4 / 0.6)
+    assert s["tput_mean_ms"] == pytest.approx(225.0) and s["tput_service_ms"] == pytest.approx(150.0)
+    assert s["littles_L"] == pytest.approx(1.5) and s["littles_XW"] == pytest.approx(1.5)
+    assert s["tput_busy"] == pytest.approx(1.0) and s["tput_busy_xs"] == pytest.approx(1.0)
+    # Below capacity: every 200 ms a 100 ms frame -> no waiting, L = U = 0.5.
+    w = {"starts_ns": [0, 200 * MS, 400 * MS], "service_ns": [0, 200 * MS, 400 * MS],
+         "ends_ns": [100 * MS, 300 * MS, 500 * MS], "cpu_ns": [100 * MS] * 3, "cpu_total_ns": 300 * MS}
+    s = summarise([w], 0, 600 * MS, cores_used=1)
+    assert s["littles_L"] == pytest.approx(0.5) == s["tput_busy"] and s["tput_busy_xs"] == pytest.approx(0.5)
+
+
+def test_paced_curve_on_real_workers():
+    from speedbench.measure.load import curve_entry, measure_curve
+
+    paced = measure_curve(synthetic(work_ms=4.0), IMAGES, k=1, utilisations=(0.5,), policy=FAST, seconds=0.8,
+                          timeout_s=60)
+    (r,) = paced
+    assert r.ok, r.reason
+    s = r.summary
+    assert s["tput_offered_fps"] == r.offered_fps > 0
+    assert all(len(w["service_ns"]) == len(w["starts_ns"]) for w in r.workers)
+    # latency counts from arrival, so it is never below the service time
+    assert s["tput_mean_ms"] >= s["tput_service_ms"]
+    assert s["littles_L"] == pytest.approx(s["littles_XW"], rel=0.10)
+    assert s["tput_busy"] == pytest.approx(s["tput_busy_xs"], rel=0.10)
+    e = curve_entry(r)
+    assert e["status"] == "ok" and e["util"] == pytest.approx(s["tput_busy"])
+    with pytest.raises(UserError, match="utilisations"):
+        measure_curve(synthetic(), IMAGES, k=1, utilisations=(0,), capacity_fps=10.0)
+
+
 def test_summarise_rejects_empty_window():
     with pytest.raises(ValueError):
         summarise([timeline([0], [1])], 5, 5, cores_used=1)
@@ -249,7 +291,7 @@ def test_load_into_an_existing_run_then_size(tmp_path, profile_file, capsys):
     before = load_run(run)
     k1_id, n_before = before["point_id"].iloc[0], int(before["n_samples"].iloc[0])
     k = min(2, host_cores())
-    assert main(["load", str(run), "-k", f"1,{k}", "--seconds", "0.4", "--quiet"]) == 0
+    assert main(["load", str(run), "-k", f"1,{k}", "--seconds", "0.4", "--utilisation", "0.6", "--quiet"]) == 0
     df = load_run(run).set_index("concurrency")
     # K=1: load columns merged into the stored single-stream row, its latency samples kept
     assert df.loc[1, "point_id"] == k1_id and df.loc[1, "tput_fps"] > 0
@@ -261,9 +303,15 @@ def test_load_into_an_existing_run_then_size(tmp_path, profile_file, capsys):
         assert df.loc[2, "tput_fps"] > 0 and df.loc[2, "cores_used"] == 2
         assert df.loc[2, "family"] == df.loc[1, "family"]
         assert (samples["point_id"] == df.loc[2, "point_id"]).sum() == df.loc[2, "tput_requests"]
+    # the paced curve (one point at 60 % of capacity) is stored on the largest K's row
+    import json
+
+    curve = json.loads(df.loc[k, "load_curve"])
+    assert len(curve) == 1 and curve[0]["status"] == "ok" and curve[0]["util"] > 0
     capsys.readouterr()
-    assert main(["size", str(run), "--streams", "4", "--fps", "10", "--server-cores", "8"]) == 0
-    assert "40 frames/s" in capsys.readouterr().out
+    assert main(["size", str(run), "--streams", "4", "--fps", "10", "--server-cores", "8", "--json"]) == 0
+    recs = json.loads(capsys.readouterr().out)
+    assert recs[0]["required_fps"] == 40 and "queueing included" in recs[0]["p99_note"]
 
 
 def test_load_from_a_profile(tmp_path, profile_file):
@@ -271,7 +319,8 @@ def test_load_from_a_profile(tmp_path, profile_file):
     from speedbench.sweep import load_run
 
     out = tmp_path / "prof-run"
-    assert main(["load", str(profile_file), "-k", "1", "--seconds", "0.3", "-o", str(out), "--quiet"]) == 0
+    assert main(["load", str(profile_file), "-k", "1", "--seconds", "0.3", "-o", str(out), "--quiet",
+                 "--utilisation", "none"]) == 0
     df = load_run(out)
     assert len(df) == 1 and df["concurrency"].iloc[0] == 1 and df["tput_fps"].iloc[0] > 0
     assert df["littles_L"].iloc[0] == pytest.approx(df["littles_XW"].iloc[0], rel=0.10)
@@ -281,6 +330,8 @@ def test_load_from_a_profile(tmp_path, profile_file):
     (["-k", "0"], "K must be >= 1"),
     (["-k", "one"], "not a whole number"),
     (["--seconds", "0"], "--seconds"),
+    (["--utilisation", "0.5,x"], "--utilisation"),
+    (["--utilisation", "2"], "--utilisation"),
 ])
 def test_load_cli_bad_input(profile_file, capsys, argv, text):
     from speedbench.cli import main

@@ -104,6 +104,29 @@ def test_p99_nearest_measured_utilisation_and_beyond():
     assert c2["p99_beyond_measured"] and "beyond" in c2["p99_note"]
 
 
+def test_paced_curve_gives_the_p99_with_queueing():
+    import json
+
+    df = table()
+    curve = [{"util": 0.5, "p99_ms": 90.0, "mean_ms": 50.0, "status": "ok"},
+             {"util": 0.8, "p99_ms": 140.0, "mean_ms": 70.0, "status": "ok"},
+             {"util": None, "p99_ms": None, "mean_ms": None, "status": "failed: timed out"}]
+    df["load_curve"] = [None, json.dumps(curve), None, None]  # on A's largest K (K=2)
+    out = size(df, 40, 10, p99_ms=100, server_cores=[2, 8], headroom=0.9)
+    a8 = pick(out, "a", 8)
+    # 8-core: ceil(400 / (180 x 0.9) = 2.47) = 3 servers, 540 fps, utilisation 0.741 -> nearest paced
+    # point 0.8 -> p99 140 ms (queueing included), misses the 100 ms target; mean 70 ms -> in flight
+    # 400 x 0.070 = 28 (Little's law)
+    assert a8["servers"] == 3 and a8["utilisation"] == pytest.approx(400 / 540)
+    assert a8["expected_p99_ms"] == 140.0 and not a8["meets_p99"]
+    assert "queueing included" in a8["p99_note"] and a8["in_flight"] == pytest.approx(28.0)
+    a2 = pick(out, "a", 2)
+    # 2-core: 10 servers, utilisation 0.889 > 0.8, the highest paced point: flagged beyond
+    assert a2["p99_beyond_measured"] and a2["expected_p99_ms"] == 140.0
+    # C has no curve: closed-loop figure, said so
+    assert "no queueing" in pick(out, "c", 8)["p99_note"]
+
+
 def test_threads_per_worker_set_the_workers_per_server():
     out = size(table(), 40, 10, server_cores=[1, 9], use_frontier=False)
     b9 = pick(out, "b", 9)

@@ -16,11 +16,14 @@ The model, stated so that nobody mistakes it for a measurement:
   ``assumption`` and has ``extrapolated=True``.
 - a server of C cores runs floor(C / T) workers; servers = ceil(required / (capacity per
   server x headroom)), which is ceil(cores_needed / C) when T divides C.
-- expected p99 = the under-load p99 measured at the utilisation nearest to the deployed one
-  (measured utilisation = cores_used / cores of the measuring host). The measurement is closed
-  loop (a worker sends its next frame when the last one returns), so it contains contention but
-  no queueing: cameras arrive on their own clock, and as utilisation nears 1 queueing delay adds
-  to this figure. Rows beyond the highest measured utilisation are flagged.
+- expected p99 = the p99 measured at the utilisation nearest to the deployed one. Preferred:
+  the paced-arrival curve of the largest K (``load_curve``, speedbench.measure.load.measure_curve):
+  frames arrive on a clock at a fraction of capacity, latency counted from arrival, so queueing
+  is included; its utilisation is the measured busy fraction per worker. Without a curve: the
+  closed-loop rows (a worker sends its next frame when the last one returns), measured
+  utilisation = cores_used / cores of the measuring host; those contain contention but no
+  queueing, and as utilisation nears 1 queueing delay adds to them. ``p99_note`` says which.
+  Rows beyond the highest measured utilisation are flagged.
 
 Textbook operational laws the output satisfies (checked in tests/test_sizing.py):
 utilisation law U = X S (S = 1 / per-core fps core-seconds per frame, X = required fps,
@@ -157,10 +160,11 @@ def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
             "curve": curve,
             "k1_source": k1_source,
             "measured_cpu_util": float(pd.to_numeric(top.get("tput_cpu_util", np.nan), errors="coerce")),
+            "paced": _paced_curve(top.get("load_curve")),
         })
     cols = [*_IDENT, "map", "map_ci_lo", "map_ci_hi", "point_id", "per_core_fps", "measured_cores",
             "measured_k", "scaling_eff", "x1_fps", "host_cores", "curve", "k1_source",
-            "measured_cpu_util"]
+            "measured_cpu_util", "paced"]
     return pd.DataFrame(configs, columns=cols), pd.DataFrame(excluded, columns=[*_IDENT, "reason"])
 
 
@@ -185,7 +189,7 @@ def _frontier(configs: pd.DataFrame) -> pd.DataFrame:
         from speedbench.analyse.frontier import frontier
     except ImportError:  # frontier module not available: size every configuration
         return configs.assign(frontier_status="not computed")
-    marked = frontier(configs.drop(columns=["curve"]), x="per_core_fps", y="map", minimize_x=False)
+    marked = frontier(configs.drop(columns=["curve", "paced"]), x="per_core_fps", y="map", minimize_x=False)
     keep = marked[marked["frontier_status"].isin(["frontier", "tied"])]
     status = dict(zip(keep["point_id"], keep["frontier_status"]))
     out = configs[configs["point_id"].isin(status)].copy()
@@ -215,7 +219,8 @@ def _size_one(cfg: dict, shape: int, required: float, p99_ms, headroom: float, c
     servers = math.ceil(required / (per_server * headroom) - 1e-9)
     capacity = servers * per_server
     util = required / capacity
-    p99, at_util, mean_ms, beyond = _p99_at(cfg["curve"], util)
+    paced = cfg.get("paced") or []
+    p99, at_util, mean_ms, beyond = _p99_at(paced or cfg["curve"], util)
     provisioned = servers * shape
     row.update(
         servers=servers, provisioned_cores=provisioned, capacity_fps=capacity, utilisation=util,
@@ -225,10 +230,30 @@ def _size_one(cfg: dict, shape: int, required: float, p99_ms, headroom: float, c
         meets_p99=None if p99_ms is None else bool(p99 <= p99_ms),
         cost_per_mframe=np.nan if cost is None else cost * provisioned / (required * 3600.0) * 1e6,
         assumption=_assumption(cfg, shape),
-        p99_note=(f"closed-loop p99 at utilisation {at_util:.2f} (no queueing)"
+        p99_note=((f"paced-arrival p99 at utilisation {at_util:.2f} (queueing included)" if paced else
+                   f"closed-loop p99 at utilisation {at_util:.2f} (no queueing)")
                   + ("; deployed utilisation is beyond the highest measured" if beyond else "")),
     )
     return row
+
+
+def _paced_curve(value) -> list:
+    """The load_curve column (JSON text or a list) -> [(utilisation, p99, mean, K)] of ok points."""
+    import json
+
+    if isinstance(value, str) and value.strip():
+        try:
+            value = json.loads(value)
+        except json.JSONDecodeError:
+            return []
+    if not isinstance(value, list):
+        return []
+    out = []
+    for e in value:
+        if isinstance(e, dict) and e.get("status") == "ok" and all(
+                isinstance(e.get(k), (int, float)) for k in ("util", "p99_ms", "mean_ms")):
+            out.append((float(e["util"]), float(e["p99_ms"]), float(e["mean_ms"]), 0))
+    return out
 
 
 def _p99_at(curve, util: float):

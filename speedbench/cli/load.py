@@ -25,6 +25,10 @@ def add_parser(subparsers):
     p.add_argument("-k", "--concurrency", default="1,2", help="worker counts K, comma-separated (default 1,2)")
     p.add_argument("--seconds", type=float, default=5.0, help="measurement window per K (default 5)")
     p.add_argument("--pin", action="store_true", help="pin each worker to its own T cores")
+    p.add_argument("--utilisation", default="0.5,0.7,0.9",
+                   help="for the largest K, paced-arrival runs at these fractions of its throughput "
+                        "(latency incl. queueing, read by `speedbench size`); 'none' to skip "
+                        "(default 0.5,0.7,0.9)")
     p.add_argument("-o", "--out", default=None, help="run directory to create (profile mode)")
     p.add_argument("--quiet", action="store_true", help="no per-point lines")
     p.set_defaults(run=run)
@@ -34,17 +38,19 @@ def run(args) -> int:
     from speedbench.errors import UserError
 
     ks = parse_ks(args.concurrency)
+    utils = parse_utilisations(args.utilisation)
     if not args.seconds > 0:
         raise UserError(f"--seconds: must be > 0, got {args.seconds}")
     target = Path(args.target)
     if target.is_dir():
         if args.out:
             raise UserError("-o/--out: only with a profile; a run directory gets its rows in place")
-        counts = load_into_run(target, ks, seconds=args.seconds, pin=args.pin, quiet=args.quiet)
+        counts = load_into_run(target, ks, seconds=args.seconds, pin=args.pin, quiet=args.quiet,
+                               utilisations=utils)
         out = target
     elif target.suffix == ".toml" or target.is_file():
         out = load_from_profile(target, ks, out_dir=args.out, seconds=args.seconds, pin=args.pin,
-                                quiet=args.quiet)
+                                quiet=args.quiet, utilisations=utils)
         counts = None
     else:
         raise UserError(f"{target}: neither a run directory nor a profile file")
@@ -75,7 +81,24 @@ def parse_ks(text) -> list[int]:
     return sorted(set(ks))
 
 
-def load_into_run(run_dir, ks, seconds=5.0, pin=False, quiet=False) -> dict:
+def parse_utilisations(text) -> tuple:
+    from speedbench.errors import UserError
+
+    if str(text).strip().lower() in ("", "none", "0"):
+        return ()
+    out = []
+    for part in str(text).split(","):
+        try:
+            u = float(part)
+        except ValueError:
+            raise UserError(f"--utilisation: {part.strip()!r} is not a number") from None
+        if not 0 < u <= 1.5:
+            raise UserError(f"--utilisation: each must be in (0, 1.5], got {u:g}")
+        out.append(u)
+    return tuple(out)
+
+
+def load_into_run(run_dir, ks, seconds=5.0, pin=False, quiet=False, utilisations=()) -> dict:
     """Re-measure the ok single-stream points of a run at each K; rows go into the same run."""
     from speedbench.errors import UserError
     from speedbench.sweep import RunDir, parse_profile, steps
@@ -100,12 +123,13 @@ def load_into_run(run_dir, ks, seconds=5.0, pin=False, quiet=False) -> dict:
                 row = {**{c: source[c] for c in CARRIED if c in source}, **result.to_row()}
                 rd.write_point(row, result.latencies_ms)
 
-        return _measure_all(todo, profile, rd, ks, seconds, pin, quiet, write, steps)
+        return _measure_all(todo, profile, rd, ks, seconds, pin, quiet, write, steps, utilisations)
     finally:
         rd.close()
 
 
-def load_from_profile(profile_path, ks, out_dir=None, seconds=5.0, pin=False, quiet=False) -> Path:
+def load_from_profile(profile_path, ks, out_dir=None, seconds=5.0, pin=False, quiet=False,
+                      utilisations=()) -> Path:
     """Measure a profile's points at each K into a new run directory; returns its path."""
     from speedbench.errors import UserError
     from speedbench.sweep import RunDir, environment_fingerprint, expand_plan, load_profile, steps
@@ -125,14 +149,14 @@ def load_from_profile(profile_path, ks, out_dir=None, seconds=5.0, pin=False, qu
             merged["point_id"] = result.point.id  # the load point's own id (concurrency = K)
             rd.write_point({**result.to_row(), **merged}, result.latencies_ms)
 
-        _measure_all([(p, p) for p in planned], profile, rd, ks, seconds, pin, quiet, write, steps)
+        _measure_all([(p, p) for p in planned], profile, rd, ks, seconds, pin, quiet, write, steps, utilisations)
         rd.finish()
     finally:
         rd.close()
     return out
 
 
-def _measure_all(todo, profile, rd, ks, seconds, pin, quiet, write, steps) -> dict:
+def _measure_all(todo, profile, rd, ks, seconds, pin, quiet, write, steps, utilisations=()) -> dict:
     from speedbench.errors import UserError
     from speedbench.measure import Point
     from speedbench.measure.load import measure_scaling
@@ -165,7 +189,7 @@ def _measure_all(todo, profile, rd, ks, seconds, pin, quiet, write, steps) -> di
             continue
         try:
             measure_scaling(point, images, ks=ks, policy=policy, timeout_s=profile.timeout_s,
-                            seconds=seconds, pin=pin, on_result=on_result)
+                            seconds=seconds, pin=pin, on_result=on_result, utilisations=utilisations)
         except UserError as exc:  # e.g. K x T above this host's cores: say so, go on with the rest
             counts["failed"] += 1
             print(f"  {planned.label}: not measured, {exc}", file=sys.stderr)
@@ -173,10 +197,16 @@ def _measure_all(todo, profile, rd, ks, seconds, pin, quiet, write, steps) -> di
 
 
 def _describe(r) -> str:
+    import json
+
     s = r.summary
-    return (f"{s['tput_fps']:.2f} frames/s, p99 {s['tput_p99_ms']:.1f} ms under load, "
+    text = (f"{s['tput_fps']:.2f} frames/s, p99 {s['tput_p99_ms']:.1f} ms under load, "
             f"scaling efficiency {s.get('scaling_eff', float('nan')):.2f}, "
             f"L={s['littles_L']:.2f} (X*W={s['littles_XW']:.2f})")
+    for e in json.loads(s.get("load_curve") or "[]"):
+        text += (f"\n    paced at {e['offered_fps']:.1f} frames/s: utilisation {e['util']:.2f}, "
+                 f"p99 {e['p99_ms']:.1f} ms" if e["status"] == "ok" else f"\n    paced: {e['status']}")
+    return text
 
 
 def _planned(row: dict):

@@ -66,8 +66,10 @@ def render_text(table, with_p99: bool, with_cost: bool) -> str:
         if len(beyond):
             lines.append("  note: p99 for " + ", ".join(f"{int(c)}-core" for c in beyond["server_cores"])
                          + " servers is read beyond the highest measured utilisation")
-    lines.append("note: expected p99 comes from a closed-loop load test (contention, no queueing); "
-                 "camera streams arriving on their own clock add queueing delay near full utilisation.")
+    if table["p99_note"].astype(str).str.startswith("closed-loop").any():
+        lines.append("note: expected p99 of some rows comes from a closed-loop load test (contention, no "
+                     "queueing); camera streams arriving on their own clock add queueing delay near full "
+                     "utilisation. `speedbench load RUN --utilisation 0.5,0.7,0.9` measures it with paced arrivals.")
     lines.append("caution: these are estimates from one host's measurements; a safety-relevant "
                  "deployment needs its own validation at the planned load.")
     excluded = table.attrs.get("excluded")
