@@ -292,7 +292,9 @@ def measure_curve(point, images, k: int, utilisations=(0.5, 0.7, 0.9), capacity_
     capacity_fps: the closed-loop throughput X(K) (measured first when not given). Frames then
     arrive on a fixed clock at u x capacity for each u; the latency of each frame runs from its
     arrival, so waiting behind earlier frames (queueing) is included, unlike the closed loop.
-    The achieved utilisation is each result's ``tput_busy`` (busy fraction per worker).
+    Each result records u as ``tput_offered_frac`` (the same definition of utilisation as a
+    deployment's required / capacity) and the busy fraction per worker it achieved, ``tput_busy``
+    (lower than u when service is faster below saturation).
     """
     for u in utilisations:
         if not 0 < float(u) <= 1.5:
@@ -302,14 +304,19 @@ def measure_curve(point, images, k: int, utilisations=(0.5, 0.7, 0.9), capacity_
         if not closed.ok:
             return [closed]
         capacity_fps = closed.tput_fps
-    return [measure_load(point, images, k=k, offered_fps=float(u) * capacity_fps, **kwargs)
-            for u in utilisations]
+    out = []
+    for u in utilisations:
+        r = measure_load(point, images, k=k, offered_fps=float(u) * capacity_fps, **kwargs)
+        r.summary["tput_offered_frac"] = float(u)  # offered load / closed-loop capacity
+        out.append(r)
+    return out
 
 
 def curve_entry(r: "LoadResult") -> dict:
     """One point of a latency-vs-utilisation curve, JSON-ready (NaN -> None)."""
     s = r.summary
-    keys = {"util": "tput_busy", "offered_fps": "tput_offered_fps", "tput_fps": "tput_fps",
+    keys = {"load": "tput_offered_frac", "util": "tput_busy", "offered_fps": "tput_offered_fps",
+            "tput_fps": "tput_fps",
             "p50_ms": "tput_p50_ms", "p99_ms": "tput_p99_ms", "mean_ms": "tput_mean_ms",
             "service_ms": "tput_service_ms", "littles_L": "littles_L", "littles_XW": "littles_XW"}
     out = {k: (None if not isinstance(s.get(v), (int, float)) or math.isnan(s.get(v)) else float(s[v]))

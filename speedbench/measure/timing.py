@@ -14,12 +14,15 @@ from speedbench.measure.point import Policy
 from speedbench.measure.stats import Measurement
 
 
-def warm_up(run, inputs, policy: Policy) -> dict:
-    """Run until latency settles; returns {"runs": n, "settled": bool, "samples_ms": [...]}."""
+def warm_up(run, inputs, policy: Policy, clock=time.perf_counter_ns) -> dict:
+    """Run until latency settles; returns {"runs": n, "settled": bool, "samples_ms": [...]}.
+
+    `clock` (ns) is injectable so tests can script latencies exactly.
+    """
     w = max(1, policy.warmup_window)
     times = []
     settled = False
-    perf = time.perf_counter_ns
+    perf = clock
     while len(times) < policy.warmup_max:
         x = inputs[len(times) % len(inputs)]
         t0 = perf()
@@ -37,15 +40,15 @@ def warm_up(run, inputs, policy: Policy) -> dict:
     return {"runs": len(times), "settled": settled, "samples_ms": times}
 
 
-def timed_runs(run, inputs, policy: Policy, between=None) -> tuple[Measurement, dict]:
+def timed_runs(run, inputs, policy: Policy, between=None, clock=time.perf_counter_ns) -> tuple[Measurement, dict]:
     """Adaptive repetitions; returns the Measurement and how/why it stopped.
 
     `between(i)` is called after every run, outside the timed region (memory sampling).
     The stopping check sorts the samples, so it runs every ~5 % of the count.
     """
     samples = []
-    perf = time.perf_counter_ns
-    start = time.monotonic()
+    perf = clock
+    start = clock()
     stop = "max_reps"
     next_check = policy.min_reps
     n_inputs = len(inputs)
@@ -64,14 +67,14 @@ def timed_runs(run, inputs, policy: Policy, between=None) -> tuple[Measurement, 
             if m.ci_complete(50) and m.median_rel_halfwidth <= policy.rel_ci:
                 stop = "ci_reached"
                 break
-        if n >= policy.min_reps and time.monotonic() - start >= policy.max_seconds:
+        if n >= policy.min_reps and (clock() - start) / 1e9 >= policy.max_seconds:
             stop = "max_seconds"
             break
     m = _measurement(samples, policy)
     per_image = {}
     for i in range(min(n_inputs, len(samples))):
         per_image[i] = statistics.median(samples[i::n_inputs])
-    return m, {"stop": stop, "seconds": time.monotonic() - start, "per_image_p50_ms": list(per_image.values())}
+    return m, {"stop": stop, "seconds": (clock() - start) / 1e9, "per_image_p50_ms": list(per_image.values())}
 
 
 def _measurement(samples, policy: Policy) -> Measurement:
