@@ -104,7 +104,7 @@ def test_paced_curve_on_real_workers():
     assert s["littles_L"] == pytest.approx(s["littles_XW"], rel=0.10)
     assert s["tput_busy"] == pytest.approx(s["tput_busy_xs"], rel=0.10)
     e = curve_entry(r)
-    assert e["status"] == "ok" and e["util"] == pytest.approx(s["tput_busy"])
+    assert e["status"] == "ok" and e["util"] == pytest.approx(s["tput_busy"]) and e["load"] == 0.5
     with pytest.raises(UserError, match="utilisations"):
         measure_curve(synthetic(), IMAGES, k=1, utilisations=(0,), capacity_fps=10.0)
 
@@ -307,7 +307,7 @@ def test_load_into_an_existing_run_then_size(tmp_path, profile_file, capsys):
     import json
 
     curve = json.loads(df.loc[k, "load_curve"])
-    assert len(curve) == 1 and curve[0]["status"] == "ok" and curve[0]["util"] > 0
+    assert len(curve) == 1 and curve[0]["status"] == "ok" and curve[0]["load"] == 0.6
     capsys.readouterr()
     assert main(["size", str(run), "--streams", "4", "--fps", "10", "--server-cores", "8", "--json"]) == 0
     recs = json.loads(capsys.readouterr().out)

@@ -108,8 +108,9 @@ def test_paced_curve_gives_the_p99_with_queueing():
     import json
 
     df = table()
-    curve = [{"util": 0.5, "p99_ms": 90.0, "mean_ms": 50.0, "status": "ok"},
-             {"util": 0.8, "p99_ms": 140.0, "mean_ms": 70.0, "status": "ok"},
+    # "load" = offered / capacity of the paced run; "util" = busy fraction it achieved (not used)
+    curve = [{"load": 0.5, "util": 0.45, "p99_ms": 90.0, "mean_ms": 50.0, "status": "ok"},
+             {"load": 0.8, "util": 0.71, "p99_ms": 140.0, "mean_ms": 70.0, "status": "ok"},
              {"util": None, "p99_ms": None, "mean_ms": None, "status": "failed: timed out"}]
     df["load_curve"] = [None, json.dumps(curve), None, None]  # on A's largest K (K=2)
     out = size(df, 40, 10, p99_ms=100, server_cores=[2, 8], headroom=0.9)

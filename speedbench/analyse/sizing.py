@@ -19,7 +19,8 @@ The model, stated so that nobody mistakes it for a measurement:
 - expected p99 = the p99 measured at the utilisation nearest to the deployed one. Preferred:
   the paced-arrival curve of the largest K (``load_curve``, speedbench.measure.load.measure_curve):
   frames arrive on a clock at a fraction of capacity, latency counted from arrival, so queueing
-  is included; its utilisation is the measured busy fraction per worker. Without a curve: the
+  is included; its utilisation is the offered load / closed-loop capacity, the same definition
+  as the deployed required / capacity. Without a curve: the
   closed-loop rows (a worker sends its next frame when the last one returns), measured
   utilisation = cores_used / cores of the measuring host; those contain contention but no
   queueing, and as utilisation nears 1 queueing delay adds to them. ``p99_note`` says which.
@@ -250,9 +251,12 @@ def _paced_curve(value) -> list:
         return []
     out = []
     for e in value:
-        if isinstance(e, dict) and e.get("status") == "ok" and all(
-                isinstance(e.get(k), (int, float)) for k in ("util", "p99_ms", "mean_ms")):
-            out.append((float(e["util"]), float(e["p99_ms"]), float(e["mean_ms"]), 0))
+        # "load" = offered / closed-loop capacity, the same definition as the deployed utilisation
+        # (required / capacity); older curves only carry the busy fraction "util".
+        u = e.get("load", e.get("util")) if isinstance(e, dict) else None
+        if isinstance(e, dict) and e.get("status") == "ok" and isinstance(u, (int, float)) and all(
+                isinstance(e.get(k), (int, float)) for k in ("p99_ms", "mean_ms")):
+            out.append((float(u), float(e["p99_ms"]), float(e["mean_ms"]), 0))
     return out
 
 

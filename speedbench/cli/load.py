@@ -204,8 +204,8 @@ def _describe(r) -> str:
             f"scaling efficiency {s.get('scaling_eff', float('nan')):.2f}, "
             f"L={s['littles_L']:.2f} (X*W={s['littles_XW']:.2f})")
     for e in json.loads(s.get("load_curve") or "[]"):
-        text += (f"\n    paced at {e['offered_fps']:.1f} frames/s: utilisation {e['util']:.2f}, "
-                 f"p99 {e['p99_ms']:.1f} ms" if e["status"] == "ok" else f"\n    paced: {e['status']}")
+        text += (f"\n    paced at {e['load']:.0%} of capacity ({e['offered_fps']:.1f} frames/s): busy "
+                 f"{e['util']:.2f}, p99 {e['p99_ms']:.1f} ms" if e["status"] == "ok" else f"\n    paced: {e['status']}")
     return text
 
 
