@@ -1,0 +1,424 @@
+"""The client side of a fleet sweep: send each host's plan to the cluster, store results as they arrive.
+
+Dask does the placing: every task asks for resource {"host:<label>": 1} and
+each host's one worker advertises exactly one unit of it, so a host runs one
+point at a time whatever else is queued. The client only writes each result
+into that host's run directory the moment it arrives (as_completed), so a
+killed client loses at most the points in flight, and --resume skips what each
+host's run directory already holds.
+
+When a worker dies mid-point, the scheduler re-runs the task on the host's
+restarted worker (its allowed-failures budget). A task that keeps killing
+workers, or a host whose label is gone for lost_after_s, gets its in-flight
+point recorded as failed with the reason; the host's other points stay
+unmeasured for a later --resume, and the other hosts go on.
+"""
+from __future__ import annotations
+
+import socket
+import sys
+import time
+import uuid
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from speedbench.errors import UserError
+from speedbench.fleet import engine, task
+
+MAX_RESUBMITS = 3     # a point that never started but was caught by a worker death is sent again
+
+
+@dataclass
+class _Host:
+    label: str
+    out: Path
+    setup: dict | None = None
+    plan: object = None
+    rd: object = None
+    state: str = "setup"                          # setup -> running -> done | lost | skipped
+    futures: dict = field(default_factory=dict)   # key -> (future, planned)
+    fps: dict = field(default_factory=dict)       # stream key -> one-stream fps measured on this host
+    resubmits: dict = field(default_factory=dict)
+    last_seen: float = 0.0
+    warned_gone: bool = False
+    counts: dict = field(default_factory=lambda: {"ok": 0, "failed": 0, "skipped_done": 0, "unmeasured": 0})
+
+
+def run_fleet_sweep(profile_path, cluster, out_dir=None, resume: bool = False, hosts=None,
+                    quiet: bool = False, stream=None, lost_after_s: float = 120.0,
+                    poll_s: float = 0.25) -> dict[str, Path]:
+    """Run (or resume) a profile on every host of a Dask cluster; returns {host label: run directory}.
+
+    cluster: scheduler address ("tcp://HOST:8786"), a dask Cluster or Client.
+    hosts: labels to use ("a,b" or a list); default every label the cluster advertises.
+    out_dir: parent of the per-host run directories OUT/<label>/ (default: the
+    profile's run.output with {host} filled in, or run.output/<label>).
+    """
+    engine.require_engine()
+    from speedbench.sweep.plan import expand_plan
+    from speedbench.sweep.profile import load_profile
+
+    profile = load_profile(profile_path)
+    expand_plan(profile)  # profile mistakes stop here, before the cluster is touched
+    wanted = engine.parse_hosts(hosts)
+    client, owned = engine.connect(cluster)
+    try:
+        return _Fleet(client, profile, out_dir, resume, wanted, quiet, stream or sys.stderr,
+                      lost_after_s, poll_s).run()
+    finally:
+        if owned:
+            client.close()
+
+
+def _stream_key(config: dict) -> tuple:
+    # The configuration apart from K: a K > 1 point's baseline is its K = 1 sibling.
+    return tuple(config.get(c) for c in ("model", "weights", "size", "proposals", "backend", "intra_threads",
+                                          "inter_threads", "exec_mode", "opt_level", "affinity"))
+
+
+def same_study(a, b) -> bool:
+    """Two profiles equal in everything but formatting, comments, the file's name and the host default."""
+    skip = {"source", "text", "host"}
+    return all(getattr(a, f) == getattr(b, f) for f in a.__dataclass_fields__ if f not in skip)
+
+
+class _Fleet:
+    def __init__(self, client, profile, out_dir, resume, wanted, quiet, stream, lost_after_s, poll_s):
+        self.client, self.profile, self.resume = client, profile, resume
+        self.out_dir = Path(out_dir) if out_dir else None
+        self.wanted, self.quiet, self.stream = wanted, quiet, stream
+        self.lost_after_s, self.poll_s = lost_after_s, poll_s
+        self.address = client.scheduler.address
+        self.token = uuid.uuid4().hex[:8]
+        self.running: dict[str, str] = {}     # label -> point id whose start event came last
+        self.started: set = set()             # (label, point id) that began at least once
+        self.hosts: dict[str, _Host] = {}
+        self.progress = None
+        self._checked = 0.0                   # when the scheduler was last asked which labels are alive
+
+    # ----------------------------------------------------------------- helpers
+    def say(self, text: str) -> None:
+        if self.progress is not None and self.progress.bar is not None:
+            self.progress.bar.write(text, file=self.stream)
+        else:
+            print(text, file=self.stream, flush=True)
+
+    def out_for(self, label: str) -> Path:
+        if self.out_dir is not None:
+            return self.out_dir / label
+        if "{host}" in self.profile.output:
+            return Path(self.profile.output.format(name=self.profile.name, host=label))
+        return self.profile.output_dir() / label
+
+    def _on_event(self, event) -> None:
+        # Runs on the client's event-loop thread; plain dict/set updates are safe under the GIL.
+        _, msg = event
+        if isinstance(msg, dict) and "label" in msg:
+            self.running[msg["label"]] = msg["point_id"]
+            self.started.add((msg["label"], msg["point_id"]))
+
+    def _resources(self, label: str) -> dict:
+        return {f"{task.LABEL_PREFIX}{label}": 1}
+
+    # ----------------------------------------------------------------- phases
+    def run(self) -> dict[str, Path]:
+        by_label = engine.workers_by_label(self.client)
+        labels = engine.check_labels(by_label, self.address, self.wanted)
+        shared = engine.shared_machines(by_label, labels)
+        for label, others in shared.items():
+            self.say(f"warning: host {label} shares a machine ({by_label[label][0]['ip']}) with "
+                     f"{', '.join(others)}: their points may run at the same time and disturb each other")
+        now = time.monotonic()
+        self.hosts = {lb: _Host(label=lb, out=self.out_for(lb), last_seen=now) for lb in labels}
+        self._note_absent_runs(labels)
+        self.client.subscribe_topic(task.TOPIC, self._on_event)
+        try:
+            self._setup(by_label, shared)
+            self._measure()
+        finally:
+            self._cancel_all()
+            self.client.unsubscribe_topic(task.TOPIC)
+            for h in self.hosts.values():
+                if h.rd is not None:
+                    h.rd.close()
+        return {lb: h.out for lb, h in self.hosts.items() if h.rd is not None}
+
+    def _note_absent_runs(self, labels) -> None:
+        if not (self.resume and self.out_dir and self.out_dir.is_dir()):
+            return
+        for d in sorted(self.out_dir.iterdir()):
+            if (d / "meta.json").exists() and d.name not in labels:
+                self.say(f"host {d.name}: has a run directory but no worker advertises it; not resumed")
+
+    def _setup(self, by_label, shared) -> None:
+        """Fingerprint + plan + dataset check on every host, then open or create each run directory."""
+        p = self.profile
+        futs = {lb: self.client.submit(task.host_setup, p.text, p.source, lb, key=f"speedbench-setup-{lb}-"
+                                       f"{self.token}", resources=self._resources(lb), pure=False)
+                for lb in self.hosts}
+        pending = dict(futs)
+        while pending:
+            for lb, fut in list(pending.items()):
+                if fut.done():
+                    del pending[lb]
+                    h = self.hosts[lb]
+                    if fut.status == "finished":
+                        h.setup = fut.result()
+                    else:
+                        h.state = "skipped"
+                        self.say(f"host {lb}: skipped: set-up failed ({_reason(fut)})")
+            for lb in self._lost(pending):
+                self.client.cancel(pending.pop(lb))
+                self.hosts[lb].state = "skipped"
+                self.say(f"host {lb}: skipped: lost before its set-up finished")
+            if pending:
+                time.sleep(self.poll_s)
+        for h in self.hosts.values():
+            if h.setup and h.setup["error"]:
+                h.state = "skipped"
+                self.say(f"host {h.label}: skipped: {h.setup['error']}")
+        ready = [h for h in self.hosts.values() if h.state == "setup"]
+        for h in ready:            # every directory is checked before any is created
+            self._check_out(h)
+        for h in ready:
+            h.plan = h.setup["plan"]
+            h.rd = self._open(h, by_label, shared)
+            h.state = "running"
+
+    def _check_out(self, h: _Host) -> None:
+        from speedbench.sweep.profile import parse_profile
+        from speedbench.sweep.rundir import RunDir
+
+        is_run = (h.out / "meta.json").exists() or (h.out / "points.sqlite").exists()
+        if is_run and not self.resume:
+            raise UserError(f"{h.out}: already holds a run; resume it (--resume) or choose another output directory")
+        if not is_run:
+            if h.out.exists() and (not h.out.is_dir() or any(h.out.iterdir())):
+                raise UserError(f"{h.out}: exists and is not an empty directory; choose another output directory")
+            return
+        with RunDir.open(h.out) as rd:
+            try:
+                stored = parse_profile(rd.profile_text(), str(h.out / "profile.toml"))
+            except UserError:
+                stored = None
+            env = rd.meta().get("env") or {}
+        if stored is None or not same_study(stored, self.profile):
+            raise UserError(f"{h.out / 'profile.toml'}: the run was started with a different profile than "
+                            f"{self.profile.source}; resume with that file or start a new output directory")
+        new = h.setup["env"]
+        for key in ("cpu_model", "cores_logical"):
+            if env.get(key) != new.get(key):
+                raise UserError(f"{h.out / 'meta.json'}: env.{key}: host {h.label} was {env.get(key)!r} and is now "
+                                f"{new.get(key)!r}; a label must stay on one machine: use another label or directory")
+
+    def _open(self, h: _Host, by_label, shared):
+        from speedbench.sweep.rundir import RunDir, now_iso
+
+        import speedbench
+
+        fleet = {"scheduler": self.address, "worker": by_label[h.label][0]["address"],
+                 "worker_hostname": h.setup["hostname"], "worker_speedbench": h.setup["version"],
+                 "client_hostname": socket.gethostname(), "shares_machine_with": shared.get(h.label, [])}
+        if h.setup["version"] != speedbench.__version__:
+            self.say(f"warning: host {h.label} runs speedbench {h.setup['version']}, "
+                     f"this client {speedbench.__version__}")
+        if (h.out / "meta.json").exists():
+            rd = RunDir.open(h.out)
+            resumed = list(rd.meta().get("fleet_resumed", []))
+            rd.update_meta(fleet_resumed=resumed + [{"at": now_iso(), **fleet, "env": h.setup["env"]}])
+            return rd
+        meta = {"profile_name": self.profile.name, "host": h.label, "profile_source": self.profile.source,
+                "env": h.setup["env"], "fleet": fleet}
+        return RunDir.create(h.out, self.profile.text, meta)
+
+    # ----------------------------------------------------------------- measuring
+    def _measure(self) -> None:
+        from distributed import as_completed
+
+        from speedbench.sweep.progress import Progress
+
+        ac = as_completed(loop=self.client.loop)
+        total = 0
+        for h in self.hosts.values():
+            if h.state != "running":
+                continue
+            done = h.rd.done_ids()
+            todo = h.plan.missing(done)
+            h.counts["skipped_done"] = len(h.plan.points) - len(todo)
+            h.rd.update_meta(plan_points=len(h.plan.points), plan_notes=h.plan.notes)
+            h.fps = {_stream_key(r): r.get("fps") for r in h.rd.rows()
+                     if r.get("concurrency") == 1 and r.get("status") == "ok"}
+            total += len(todo)
+            baselines = {}
+            for planned in todo:          # K = 1 points first: they are the K > 1 points' baselines
+                if planned.config["concurrency"] == 1:
+                    baselines[_stream_key(planned.config)] = self._submit(h, planned, ac)
+            for planned in todo:
+                if planned.config["concurrency"] != 1:
+                    self._submit(h, planned, ac, baselines.get(_stream_key(planned.config)))
+            if not todo:
+                self._finish(h)
+        self.progress = Progress(total, quiet=self.quiet, stream=self.stream)
+        try:
+            while any(h.futures for h in self.hosts.values()):
+                for fut in ac.next_batch(block=False) if ac.has_ready() else []:
+                    self._arrived(fut, ac)
+                for lb in self._lost({lb: h for lb, h in self.hosts.items() if h.futures}):
+                    self._host_lost(self.hosts[lb])
+                if not ac.has_ready():
+                    time.sleep(self.poll_s)
+        finally:
+            self.progress.close()
+            self.progress = None
+        for h in self.hosts.values():
+            if h.rd is not None:
+                self._summary(h)
+
+    def _submit(self, h: _Host, planned, ac, baseline=None):
+        n = h.resubmits.get(planned.point_id, 0)
+        key = f"speedbench-point-{h.label}-{planned.point_id}-{n}-{self.token}"
+        kwargs = {}
+        if baseline is not None and not isinstance(baseline, (int, float)):
+            kwargs["baseline"] = baseline
+        else:
+            kwargs["baseline_fps"] = baseline if baseline is not None else h.fps.get(_stream_key(planned.config))
+        p = self.profile
+        fut = self.client.submit(task.run_point, p.text, p.source, h.label, planned, key=key,
+                                 resources=self._resources(h.label), pure=False, **kwargs)
+        h.futures[key] = (fut, planned)
+        ac.add(fut)
+        return fut
+
+    def _arrived(self, fut, ac) -> None:
+        h = next((h for h in self.hosts.values() if fut.key in h.futures), None)
+        if h is None:
+            return                      # cancelled by us (host lost); nothing to store
+        _, planned = h.futures.pop(fut.key)
+        if fut.status == "finished":
+            got = fut.result()
+            self._store(h, got["row"], got["samples"])
+        elif fut.status == "error" and _killed_worker(fut):
+            if (h.label, planned.point_id) in self.started:
+                reason = f"host {h.label} lost during the point (its worker died while running it: {_reason(fut)})"
+                self._store(h, self._failed_row(h, planned, reason), [])
+            elif h.resubmits.get(planned.point_id, 0) < MAX_RESUBMITS:
+                # Caught in a worker death before it ever started: not a failure of this point.
+                h.resubmits[planned.point_id] = h.resubmits.get(planned.point_id, 0) + 1
+                base = h.fps.get(_stream_key(planned.config))
+                if base is None and planned.config["concurrency"] != 1:
+                    base = next((f for f, pp in h.futures.values() if pp.config["concurrency"] == 1
+                                 and _stream_key(pp.config) == _stream_key(planned.config)), None)
+                self._submit(h, planned, ac, base)
+            else:
+                h.counts["unmeasured"] += 1
+                self.say(f"host {h.label}: {planned.label}: not measured, its host kept losing workers; "
+                         f"--resume to try again")
+        elif fut.status == "error":
+            self._store(h, self._failed_row(h, planned, f"fleet task failed: {_reason(fut)}"), [])
+        else:
+            h.resubmits[planned.point_id] = h.resubmits.get(planned.point_id, 0) + 1
+            self._submit(h, planned, ac)   # cancelled by the scheduler, not by us: send again
+        if not h.futures and h.state == "running":
+            self._finish(h)
+
+    def _store(self, h: _Host, row: dict, samples) -> None:
+        h.rd.write_point(row, samples)
+        status = "ok" if row.get("status") == "ok" else "failed"
+        h.counts[status] += 1
+        if row.get("concurrency") == 1 and status == "ok":
+            h.fps[_stream_key(row)] = row.get("fps")
+        if self.running.get(h.label) == row.get("point_id"):
+            self.running.pop(h.label, None)
+        label = f"{h.label}: {_planned_label(row)}"
+        self.progress.done(label, row)
+
+    def _failed_row(self, h: _Host, planned, reason: str) -> dict:
+        from speedbench.sweep import steps
+
+        row = {**planned.config, "point_id": planned.point_id, "status": "failed", "reason": reason}
+        row.update(steps.merge_columns(planned, steps.GraphInfo(), self.profile))
+        row["host"] = h.label
+        return row
+
+    def _lost(self, candidates: dict) -> list[str]:
+        """Labels among `candidates` that no live worker has advertised for lost_after_s."""
+        if not candidates or time.monotonic() - self._checked < 1.0:
+            return []
+        self._checked = time.monotonic()
+        alive = engine.workers_by_label(self.client)
+        now, out = time.monotonic(), []
+        for lb in candidates:
+            h = self.hosts[lb]
+            if lb in alive:
+                h.last_seen, h.warned_gone = now, False
+            elif now - h.last_seen > self.lost_after_s:
+                out.append(lb)
+            elif not h.warned_gone:
+                h.warned_gone = True
+                self.say(f"host {lb}: no worker advertises it; waiting up to {self.lost_after_s:g} s for it")
+        return out
+
+    def _host_lost(self, h: _Host) -> None:
+        pid = self.running.get(h.label)
+        in_flight = next(((k, pp) for k, (f, pp) in h.futures.items() if pp.point_id == pid), None)
+        if in_flight is not None:
+            h.futures.pop(in_flight[0])
+            reason = f"host {h.label} lost during the point (no worker for {self.lost_after_s:g} s)"
+            self._store(h, self._failed_row(h, in_flight[1], reason), [])
+        h.counts["unmeasured"] += len(h.futures)
+        self.client.cancel([f for f, _ in h.futures.values()])
+        h.futures.clear()
+        h.state = "lost"
+        h.rd.update_meta(fleet_lost=f"no worker for {self.lost_after_s:g} s")
+        self.say(f"host {h.label}: lost; {h.counts['unmeasured']} point(s) not measured: "
+                 f"rerun with --resume when it is back")
+
+    def _finish(self, h: _Host) -> None:
+        h.state = "done"
+        if not h.plan.missing(h.rd.done_ids()):
+            h.rd.finish()
+
+    def _summary(self, h: _Host) -> None:
+        c = h.counts
+        text = f"host {h.label}: {h.out}: {c['ok']} ok, {c['failed']} failed"
+        if c["skipped_done"]:
+            text += f", {c['skipped_done']} already measured"
+        if c["unmeasured"]:
+            text += f", {c['unmeasured']} not measured ({h.state})"
+        self.say(text)
+
+    def _cancel_all(self) -> None:
+        # On an interrupt or error: nothing queued keeps running for a client that is gone.
+        futs = [f for h in self.hosts.values() for f, _ in h.futures.values()]
+        if futs:
+            try:
+                self.client.cancel(futs)
+            except Exception:  # the scheduler may be gone too; the results written are kept either way
+                pass
+
+
+def _killed_worker(fut) -> bool:
+    from distributed.scheduler import KilledWorker
+
+    try:
+        return isinstance(fut.exception(timeout=5), KilledWorker)
+    except Exception:
+        return False
+
+
+def _reason(fut) -> str:
+    try:
+        exc = fut.exception(timeout=5)
+    except Exception as err:  # cancelled futures have no exception to read
+        return type(err).__name__
+    return " ".join(f"{type(exc).__name__}: {exc}".split())[:300]
+
+
+def _planned_label(row: dict) -> str:
+    text = f"{row.get('model')} {row.get('size')}px"
+    if row.get("proposals"):
+        text += f" p{row['proposals']}"
+    text += f" {row.get('backend')} t{row.get('intra_threads')}"
+    if (row.get("concurrency") or 1) > 1:
+        text += f" K{row['concurrency']}"
+    return text
