@@ -82,7 +82,15 @@ class Dataset:
         if n >= len(self.images):
             return self
         pick = np.sort(np.random.default_rng(seed).choice(len(self.images), n, replace=False))
-        images = [self.images[i] for i in pick]
+        return self._only([self.images[i] for i in pick])
+
+    def first(self, n: int) -> "Dataset":
+        """The first n images (file order)."""
+        if not isinstance(n, int) or n < 1:
+            raise UserError(f"image limit must be a whole number >= 1, not {n!r}")
+        return self if n >= len(self.images) else self._only(self.images[:n])
+
+    def _only(self, images: list[ImageRecord]) -> "Dataset":
         keep = {im.id for im in images}
         coco = {
             "images": [im for im in self.coco["images"] if im["id"] in keep],
@@ -90,6 +98,10 @@ class Dataset:
             "categories": self.coco["categories"],
         }
         return Dataset(self.root, coco, self.source, images)
+
+    @property
+    def fingerprint(self) -> str:  # the name the sweep's caches look for
+        return self.digest
 
     @cached_property
     def digest(self) -> str:
