@@ -225,3 +225,18 @@ def test_real_ssdlite_stages_reconcile():
     assert row["stage_backbone_ms"] == res.stages["backbone"] and row["profiled_ms"] == res.profiled_ms
     assert np.isfinite(row["profiling_overhead"])
     assert row["model_file_mib"] == pytest.approx(os.path.getsize(point.graph) / 2**20)
+
+
+def test_eager_stages_via_hooks_cover_the_run():
+    """PyTorch eager: the same stages through forward hooks on the zoo's stage modules."""
+    from speedbench.measure import Point, Policy, measure_point
+
+    point = Point(model="ssdlite320_mobilenet_v3_large", size=128, backend="eager", exec_mode="", opt_level="")
+    res = measure_point(point, scenes(), Policy(warmup_max=3, min_reps=3, max_reps=5, max_seconds=1,
+                                                profile_reps=2), timeout_s=300)
+    assert res.ok, res.reason
+    for stage in ("preprocess", "backbone", "neck", "head", "postprocess"):
+        assert res.stages.get(stage, 0) > 0, stage
+    # exclusive timing: the stages (with top-level glue as unattributed) add up to the profiled run
+    assert sum(res.stages.values()) == pytest.approx(res.profiled_ms, rel=1e-6)
+    assert res.stages["unattributed"] < 0.1 * res.profiled_ms

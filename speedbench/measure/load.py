@@ -54,7 +54,22 @@ import numpy as np
 
 from speedbench.errors import UserError
 
-# Columns a load point adds to the point row (see speedbench/analyse/sizing.py for their use).
+# Columns a load point adds to the point row (see speedbench/analyse/sizing.py for their use):
+#   tput_fps            aggregate frames/s of the K workers over the common window
+#   tput_p50/p90/p99_ms per-request latency under load (paced: from arrival, queueing included)
+#   tput_mean_ms        mean of the same (W of Little's law)
+#   scaling_eff         X(K) / (K X(1)); NaN when X(1) was not measured alongside
+#   littles_L           time-average requests in flight, from the timestamps
+#   littles_XW          X W, to set beside littles_L (Little's law)
+#   cores_used          K x T (K x affinity when pinned); host_cores: cores of the measuring host
+#   tput_window_s       length of the common window; tput_requests: requests completed in it
+#   tput_cpu_util       process CPU time / (span x cores_used); tput_cpu_util_xs: X x CPU per request
+#   tput_cpu_ms         mean process CPU time per request (all threads)
+#   tput_rss_total_mib  sum of the workers' peak resident memory
+#   tput_busy           busy fraction per worker; tput_busy_xs: X x mean service time / K (U = X S)
+#   tput_service_ms     mean service time (equals tput_mean_ms in a closed loop)
+#   load_curve          JSON list of paced points of the largest K: load (offered / capacity),
+#                       util (busy), offered_fps, tput_fps, p50_ms, p99_ms, mean_ms, status
 LOAD_COLUMNS = (
     "tput_fps", "tput_p50_ms", "tput_p90_ms", "tput_p99_ms", "tput_mean_ms", "scaling_eff",
     "littles_L", "littles_XW", "cores_used", "host_cores", "tput_window_s", "tput_requests",
@@ -198,7 +213,8 @@ def measure_load(point, images, k: int | None = None, policy=None, timeout_s: fl
     offered_fps: paced (open-loop) arrivals instead of a closed loop: frames arrive on a fixed
       clock at offered_fps in total, split evenly over the K workers (like cameras); each frame's
       latency runs from its arrival, so it includes queueing. A paced result describes the same
-      configuration at a given utilisation (``tput_busy``); see ``measure_curve``.
+      configuration at a given load (it has the same point id as the closed-loop K point, so it
+      is kept as a curve entry, not a row); see ``measure_curve``.
     timeout_s: for the whole point (start-up, warm-up, window). On timeout or any worker failure
       every worker is killed and the result is status "failed" with the reason; no exception.
     Bad arguments (k < 1, K x T above the host's cores, thread count 0) raise UserError.

@@ -57,6 +57,8 @@ class Runner:
             return self.model([x])
 
     def profile(self, inputs, reps: int, warmup: int = 1) -> dict:
+        from torch import nn
+
         from speedbench.measure.stages import DEFAULT_STAGE_SCOPES
 
         scopes = dict(self.spec.stage_scopes or DEFAULT_STAGE_SCOPES)
@@ -83,8 +85,12 @@ class Runner:
                     continue
                 if module is self.model:
                     continue
-                handles.append(module.register_forward_pre_hook(lambda m, a, s=stage: enter(s)))
-                handles.append(module.register_forward_hook(lambda m, a, o: leave()))
+                # containers are iterated, never called: time their members instead
+                members = list(module.children()) if isinstance(module, (nn.ModuleList, nn.ModuleDict)) \
+                    else [module]
+                for member in members:
+                    handles.append(member.register_forward_pre_hook(lambda m, a, s=stage: enter(s)))
+                    handles.append(member.register_forward_hook(lambda m, a, o: leave()))
         for owner_path, method in POSTPROCESS_METHODS:
             try:
                 owner = self.model.get_submodule(owner_path) if owner_path else self.model
