@@ -301,3 +301,36 @@ def test_larger_set_matches_pycocotools():
     stats, _ = reference(gt, dets)
     ours = coco_evaluate(gt, dets, bootstrap=0)
     np.testing.assert_allclose([ours[k] for k in SUMMARY_KEYS], stats, rtol=0, atol=1e-9)
+
+
+def test_cli_json_and_text(tmp_path, capsys):
+    from speedbench.cli import main
+
+    gt, dets = random_case(5)
+    g, d = write(tmp_path, gt, "gt.json"), write(tmp_path, dets)
+    assert main(["evaluate", str(g), str(d), "--json", "--bootstrap", "50"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    want = coco_evaluate(gt, dets, bootstrap=50)
+    for key in ("map", "map50", "map75", "map_small", "map_medium", "map_large",
+                "mar_1", "mar_10", "mar_100", "per_class", "map_ci95"):
+        assert out[key] == want[key]
+    assert main(["evaluate", str(g), str(d)]) == 0
+    text = capsys.readouterr().out
+    assert f"{want['map']:.3f}" in text and "class5" in text and "bootstrap over the 6 images" in text
+
+
+def test_cli_bad_input_exits_2_with_one_line(tmp_path, capsys):
+    from speedbench.cli import main
+
+    gt, dets = random_case(5)
+    g = write(tmp_path, gt, "gt.json")
+    dets[3]["bbox"] = [1, 2, 3]
+    d = write(tmp_path, dets)
+    assert main(["evaluate", str(g), str(d)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.startswith("speedbench: error:") and "detection [3]" in err and "\n" not in err
+    assert main(["evaluate", str(g)]) == 2
+    assert "either DETS" in capsys.readouterr().err
+    bad_gt = dict(gt, annotations=gt["annotations"] + [dict(gt["annotations"][0], id=9999, category_id=555)])
+    assert main(["evaluate", str(write(tmp_path, bad_gt, "bad.json")), str(d)]) == 2
+    assert "unknown category_id 555" in capsys.readouterr().err

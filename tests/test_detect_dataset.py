@@ -191,3 +191,17 @@ def test_torchvision_export_boxes_match_eager_in_original_frame(tmp_path):
     np.testing.assert_allclose(boxes[:top], eager["boxes"][:top].numpy(), atol=0.05)
     np.testing.assert_allclose(scores[:top], eager["scores"][:top].numpy(), atol=1e-4)
     assert (labels[:top] == eager["labels"][:top].numpy()).all()
+
+
+def test_cli_runs_a_graph(tmp_path, capsys):
+    from speedbench.cli import main
+
+    graph = tiny_graph(tmp_path / "g.onnx")
+    ds = dataset(tmp_path)
+    out = tmp_path / "dets.json"
+    assert main(["evaluate", str(ds.source), "--graph", str(graph), "--classes",
+                 ",".join(MODEL_CLASSES), "--save-dets", str(out), "--json", "--bootstrap", "0"]) == 0
+    assert json.loads(capsys.readouterr().out)["map"] == pytest.approx(1.0)
+    assert len(json.loads(out.read_text())) == 6
+    assert main(["evaluate", str(ds.source), "--graph", str(graph)]) == 2
+    assert "--model or --classes" in capsys.readouterr().err

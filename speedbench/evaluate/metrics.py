@@ -17,7 +17,7 @@ def coco_evaluate(gt, dets, bootstrap: int = 1000, seed: int = 0, confidence: fl
     gt: a COCO dict (images / annotations / categories) or a Dataset (its .coco).
     dets: a COCO results list [{image_id, category_id, bbox [x, y, w, h], score}].
     Returns the summary (SUMMARY_KEYS; -1 where undefined, as the reference),
-    per_class {name: AP}, n_images, n_detections, and map_ci95 = [lo, hi]: a
+    per_class {name: AP}, per_class_gt {name: non-crowd boxes}, n_images, n_detections, and map_ci95 = [lo, hi]: a
     percentile bootstrap over images (`bootstrap` resamples, seeded) at the given
     confidence. It reflects the sampling noise of the held-out set only, not
     annotation error or dataset shift; None when bootstrap=0 or mAP is undefined.
@@ -31,7 +31,9 @@ def coco_evaluate(gt, dets, bootstrap: int = 1000, seed: int = 0, confidence: fl
     matching = Matching(ground, dt)
     precision, recall = accumulate(matching, len(ground.cat_ids))
     out = summarize(precision, recall)
-    out["per_class"] = per_class_ap(precision, _unique_names(ground))
+    names = _unique_names(ground)
+    out["per_class"] = per_class_ap(precision, names)
+    out["per_class_gt"] = {n: int(c) for n, c in zip(names, matching.n_pos[:, 0])}
     out["n_images"] = ground.n_images
     out["n_detections"] = len(dt.score)
     out["map_ci95"] = None
