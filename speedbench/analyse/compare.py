@@ -183,9 +183,26 @@ def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: 
                      "CIs of the medians (conservative)")
     if len(points) and (points["drift"] == "not recorded").all():
         notes.append("detection drift not recorded in these runs")
+    notes += _load_notes(b, n, np_, bp)
     return Comparison(points=points, env_diff=env_diff(b.meta, n.meta), unmatched=unmatched,
                       threshold=threshold, confidence=confidence, base_name=b.name, new_name=n.name,
                       fail_on_drift=fail_on_drift, notes=notes)
+
+
+def _load_notes(b: Run, n: Run, new_pts, base_pts) -> list[str]:
+    """Say when a run was measured on a busy machine or has noisy points: wide intervals follow."""
+    out = []
+    for run, pts in ((b, base_pts), (n, new_pts)):
+        env = run.meta.get("env") or {}
+        load, cores = env.get("load_avg"), env.get("cores_logical")
+        if isinstance(load, (list, tuple)) and load and cores and float(load[0]) > float(cores):
+            out.append(f"{run.name}: load average {float(load[0]):.1f} on {cores} logical cores at the start; "
+                       "the machine was busy, so intervals are wide and fewer verdicts are reached")
+        if "noisy" in pts.columns:
+            k = int(pts["noisy"].fillna(False).astype(bool).sum())
+            if k:
+                out.append(f"{run.name}: {k} point(s) flagged noisy")
+    return out
 
 
 def _samples_by_id(run: Run) -> dict:
@@ -285,12 +302,16 @@ def _stages(rb, rn) -> dict:
     return out
 
 
+# Readings of the moment rather than of the setup: reported as load notes, not as changes.
+VOLATILE_ENV = {"load_avg"}
+
+
 def env_diff(meta_b: dict, meta_n: dict) -> pd.DataFrame:
     """Flattened environment keys whose values differ (packages, CPU, cores, thread env...)."""
     fb = _flatten({"host": meta_b.get("host"), **(meta_b.get("env") or {})})
     fn = _flatten({"host": meta_n.get("host"), **(meta_n.get("env") or {})})
     rows = [(k, _show(fb.get(k)), _show(fn.get(k))) for k in sorted(set(fb) | set(fn))
-            if fb.get(k) != fn.get(k)]
+            if fb.get(k) != fn.get(k) and k not in VOLATILE_ENV]
     return pd.DataFrame(rows, columns=["key", "base", "new"])
 
 

@@ -6,11 +6,13 @@ Everything is plain text here; the renderers escape it.
 """
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 import pandas as pd
 
 from speedbench.analyse import frontier, pick
-from speedbench.analyse.common import latency_col, split_ok
+from speedbench.analyse.common import latency_col, split_ok, with_ids
 from speedbench.analyse.runs import Run, as_run
 from speedbench.report import plots
 
@@ -29,19 +31,26 @@ TIMED = ("What is timed: one call of the exported ONNX graph on one image (onnxr
 
 
 def collect(runs) -> tuple[pd.DataFrame, pd.DataFrame, list[Run]]:
-    """One points table and one samples table from one or several runs (a `host` column tells them apart)."""
+    """One points table and one samples table from one or several runs.
+
+    Each row gets a `host` (from the run's metadata when the row has none). With several
+    runs, labels and point ids carry a tag of their run (the host when hosts differ, else
+    the run's directory name) so that the same configuration from two runs stays apart.
+    """
     runs = [as_run(r) for r in (runs if isinstance(runs, (list, tuple)) else [runs])]
+    hosts = [str(r.meta.get("host") or "") for r in runs]
+    tags = hosts if len(set(hosts)) == len(runs) and all(hosts) else [Path(r.name).name or r.name for r in runs]
     pts, smp = [], []
-    for r in runs:
-        p = r.points.copy()
-        host = r.meta.get("host") or ""
-        if "host" not in p.columns:
-            p["host"] = host
-        else:
-            p["host"] = p["host"].where(p["host"].astype(str) != "", host)
+    for r, host, tag in zip(runs, hosts, tags):
+        p = with_ids(r.points)
+        p["host"] = p["host"].where(p["host"].astype(str) != "", host) if "host" in p.columns else host
+        s = r.samples.copy() if r.samples is not None else pd.DataFrame(columns=["point_id", "i", "ms"])
+        if len(runs) > 1:
+            p["label"] = p["label"] + f" [{tag}]"
+            p["point_id"] = p["point_id"].astype(str) + f"@{tag}"
+            s["point_id"] = s["point_id"].astype(str) + f"@{tag}"
         pts.append(p)
-        if r.samples is not None and len(r.samples):
-            smp.append(r.samples)
+        smp.append(s)
     points = pd.concat(pts, ignore_index=True) if pts else pd.DataFrame()
     samples = pd.concat(smp, ignore_index=True) if smp else pd.DataFrame(columns=["point_id", "i", "ms"])
     return points, samples, runs
@@ -91,10 +100,16 @@ def build(runs, budget_ms=None, latency: str = "p50", title: str | None = None) 
                    "Filled: on the frontier; black edge: beaten only within noise (tied); hollow: dominated."))
     f = frontier(ok, x=col) if len(ok) else pd.DataFrame()
     if len(f):
+        # Status within each thread setting too: a team with a fixed core budget reads that column.
+        per = frontier(ok, x=col, by=["host", "intra_threads", "inter_threads"])
+        within = dict(zip(per["point_id"], per["frontier_status"]))
         keep = f[f["frontier_status"] != "dominated"]
-        blocks.append(("table", ["status", "configuration", f"{stat} ms [CI]", "mAP [CI]", "peak MiB", "tied with"],
-                       [[r["frontier_status"], r["label"], _ms_ci(r, col), _map_ci(r), _num(r.get("rss_peak_mib"), 0),
-                         r["tied_with"]] for _, r in keep.iterrows()]))
+        blocks.append(("table", ["status", "in its thread setting", "configuration", f"{stat} ms [CI]", "mAP [CI]",
+                                 "peak MiB", "tied with"],
+                       [[r["frontier_status"], within.get(r["point_id"], ""), r["label"], _ms_ci(r, col), _map_ci(r),
+                         _num(r.get("rss_peak_mib"), 0), r["tied_with"]] for _, r in keep.iterrows()]))
+        blocks.append(("p", f"{int((f['frontier_status'] == 'dominated').sum())} dominated configuration(s) "
+                            "are not listed here; they appear in the table of all points."))
     if len(ok) and "rss_peak_mib" in ok.columns and ok["rss_peak_mib"].notna().any():
         blocks.append(("figure", "frontier_memory", plots.plot_frontier(ok, x="rss_peak_mib"),
                        "Frontier on peak memory."))

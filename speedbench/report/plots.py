@@ -67,11 +67,8 @@ def plot_frontier(df: pd.DataFrame, path=None, x: str = "lat_p50_ms", y: str = "
     if not len(f):
         return _empty("no successful points to plot", path, svg)
     with_acc = f[f["accuracy_available"]]
-    note = ""
     if not len(with_acc):
-        note = "accuracy unavailable (untrained weights): points ranked by latency only"
-        f = f.assign(**{y: 0.0})
-        with_acc = f
+        return _ranking(f, x, minimize_x, title, path, svg)
     fig = Figure(figsize=(9, 6))
     ax = fig.add_subplot()
     xv, xlo, xhi = bounds(with_acc, x)
@@ -97,11 +94,31 @@ def plot_frontier(df: pd.DataFrame, path=None, x: str = "lat_p50_ms", y: str = "
                 Line2D([], [], marker="o", color="grey", mfc="white", ls="", label="dominated (hollow)")]
     ax.legend(handles=handles, fontsize=8, loc="best")
     ax.set_xlabel(axis_name(x))
-    ax.set_ylabel(axis_name(y) if not note else "(no accuracy)")
+    ax.set_ylabel(axis_name(y))
     ax.grid(alpha=0.3)
     ax.set_title(_text(title or f"Frontier: {axis_name(y)} vs {axis_name(x)}"), fontsize=11)
-    if note:
-        ax.text(0.5, 0.95, _text(note), transform=ax.transAxes, ha="center", va="top", fontsize=9, color="#a00")
+    return _done(fig, path, svg)
+
+
+def _ranking(f, x, minimize_x, title, path, svg) -> Figure:
+    """Without accuracy there is no 2-D frontier: rank the configurations on x, with CIs."""
+    f = f.sort_values(x, ascending=minimize_x)
+    fig = Figure(figsize=(9, _height(len(f))))
+    ax = fig.add_subplot()
+    xv, xlo, xhi = bounds(f, x)
+    for k, (_, r) in enumerate(f.iterrows()):
+        marker, colour = FAMILY_STYLE.get(r.get("family"), OTHER_STYLE)
+        st = r["frontier_status"]
+        ax.errorbar(xv[k], k, xerr=[[xv[k] - xlo[k]], [xhi[k] - xv[k]]], fmt=marker, color=colour,
+                    mfc=colour if st != "dominated" else "white", mec=colour if st != "tied" else "black",
+                    capsize=2, ms=7)
+    ax.set_yticks(np.arange(len(f)), [_text(s) for s in f["label"]], fontsize=8)
+    ax.invert_yaxis()
+    ax.set_xlabel(axis_name(x))
+    ax.grid(axis="x", alpha=0.3)
+    ax.set_title(_text(title or f"Ranking on {axis_name(x)} (no accuracy)"), fontsize=11, pad=18)
+    ax.text(0.5, 1.0, "accuracy unavailable (untrained weights): ranked by this axis only",
+            transform=ax.transAxes, ha="center", va="bottom", fontsize=9, color="#a00")
     return _done(fig, path, svg)
 
 
