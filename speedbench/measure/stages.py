@@ -109,9 +109,17 @@ class Attributor:
         return self._memo[name]
 
     def _resolve(self, name: str):
+        if name in self.orig.nodes and scope_of_name(name) is not None:
+            return name, "name"
         if scope_of_name(name) is not None:
-            # in the exported graph, or a name ORT derived from an original tensor ("..._nchwc")
-            return name, "name" if name in self.orig.nodes else "fused-name"
+            # ORT derived the name from an original node or tensor: "<node>/GatherSliceToSplitFusion",
+            # "<tensor>_nchwc"; prefer the original node it names, if any
+            head = name
+            while "/" in head.strip("/"):
+                head = head.rsplit("/", 1)[0]
+                if head in self.orig.nodes and scope_of_name(head) is not None:
+                    return head, "fused-name"
+            return name, "fused-name"
         scope = self._ancestry(name)
         if scope is not None:
             return scope, "ancestry"

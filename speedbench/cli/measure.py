@@ -1,0 +1,145 @@
+"""`speedbench measure`: time one configuration in its own worker process."""
+from __future__ import annotations
+
+
+def add_parser(subparsers):
+    p = subparsers.add_parser(
+        "measure", help="measure one configuration: latency distribution, stages, memory",
+        description="Run one point (model, size, proposals, backend, threads) in a fresh worker process: "
+                    "warm-up, adaptive repetitions until the median's CI is tight, a profiled pass for "
+                    "per-stage times, and memory. Prints a summary; --json prints the flat row.")
+    p.add_argument("graph", nargs="?", help="ONNX file (backend ort); omitted: exported with speedbench.export")
+    p.add_argument("--model", help="zoo id (default: the graph's file name)")
+    p.add_argument("--weights", default="none", help="none | torchvision | demo | file:PATH (default none)")
+    p.add_argument("--size", type=int, default=0, help="input size the model resizes to (0 = its default)")
+    p.add_argument("--proposals", type=int, default=0, help="proposal / candidate budget (0 = default)")
+    p.add_argument("--backend", choices=("ort", "eager", "synthetic"), default="ort")
+    p.add_argument("--threads", type=int, default=1, help="intra-op threads (0 = library default)")
+    p.add_argument("--inter-threads", type=int, default=1, help="inter-op threads (default 1)")
+    p.add_argument("--mode", choices=("sequential", "parallel"), default="sequential", help="ORT execution mode")
+    p.add_argument("--opt", choices=("disable", "basic", "extended", "all"), default="all",
+                   help="ORT graph optimisation level (default all)")
+    p.add_argument("--affinity", type=int, default=0, help="pin the worker to N cores (0 = no pinning)")
+    src = p.add_mutually_exclusive_group()
+    src.add_argument("--images", nargs="+", metavar="PATH", help="image files or folders to time on")
+    src.add_argument("--dataset", help="COCO JSON / VOC folder; its images are used")
+    src.add_argument("--scenes", type=int, default=8, help="generated scenes to time on (default 8)")
+    p.add_argument("--max-images", type=int, default=16, help="use at most this many images (default 16)")
+    p.add_argument("--min-reps", type=int, default=20)
+    p.add_argument("--max-reps", type=int, default=1000)
+    p.add_argument("--max-seconds", type=float, default=30.0, help="timing budget per point (default 30)")
+    p.add_argument("--rel-ci", type=float, default=0.02, help="stop when the median's 95%% CI half-width "
+                   "is within this fraction of the median (default 0.02)")
+    p.add_argument("--no-stages", action="store_true", help="skip the profiled per-stage pass")
+    p.add_argument("--timeout", type=float, default=600, help="kill the worker after this many seconds")
+    p.add_argument("--json", action="store_true", help="print the flat result row as JSON")
+    p.add_argument("-o", "--out", help="write the full result (every sample) as JSON to this file")
+    p.set_defaults(run=run)
+
+
+def _images(args):
+    from pathlib import Path
+
+    from speedbench.errors import UserError
+
+    if args.images:
+        exts = {".png", ".jpg", ".jpeg", ".bmp", ".ppm", ".tif", ".tiff", ".webp"}
+        files = []
+        for item in args.images:
+            path = Path(item)
+            if path.is_dir():
+                files += sorted(f for f in path.iterdir() if f.suffix.lower() in exts)
+            elif path.exists():
+                files.append(path)
+            else:
+                raise UserError(f"{path}: image file or folder not found")
+        if not files:
+            raise UserError(f"{args.images[0]}: no image files found")
+        return files[: args.max_images]
+    if args.dataset:
+        from speedbench.data import load_dataset
+
+        ds = load_dataset(args.dataset)
+        return [ds.read(rec["id"] if isinstance(rec, dict) else rec.id) for rec in ds.images[: args.max_images]]
+    from speedbench.data.scenes import render_scene, scene_rng
+
+    if args.scenes < 1:
+        raise UserError("--scenes: need at least 1 image")
+    return [render_scene(scene_rng(0, "heldout", i))[0] for i in range(min(args.scenes, args.max_images))]
+
+
+def _graph(args, model):
+    from speedbench.errors import UserError
+
+    if args.graph:
+        return args.graph
+    try:
+        from speedbench.export import export_onnx
+    except ImportError:
+        raise UserError("give the ONNX file to measure (speedbench.export is not available)") from None
+    rec = export_onnx(model, size=args.size or None, proposals=args.proposals or None, weights=args.weights)
+    if not rec.ok:
+        raise UserError(f"export of {model} failed: {rec.reason}")
+    return str(rec.path)
+
+
+def run(args) -> int:
+    import json
+    import math
+    import sys
+    from pathlib import Path
+
+    from speedbench.errors import UserError
+    from speedbench.measure import Point, Policy, measure_point
+
+    model = args.model or (Path(args.graph).stem if args.graph else None)
+    if not model:
+        raise UserError("--model: give a zoo id (or an ONNX file)")
+    ort = args.backend == "ort"
+    point = Point(model=model, weights=args.weights, size=args.size, proposals=args.proposals,
+                  backend=args.backend, intra_threads=args.threads, inter_threads=args.inter_threads,
+                  exec_mode=args.mode if ort else "", opt_level=args.opt if ort else "",
+                  affinity=args.affinity, graph=_graph(args, model) if ort else None)
+    policy = Policy(min_reps=args.min_reps, max_reps=args.max_reps, max_seconds=args.max_seconds,
+                    rel_ci=args.rel_ci, profile_stages=not args.no_stages)
+    res = measure_point(point, _images(args), policy, timeout_s=args.timeout)
+    if args.out:
+        Path(args.out).write_text(json.dumps(res.to_dict(), indent=1))
+    if args.json:
+        row = res.to_row()
+        print(json.dumps({k: (None if isinstance(v, float) and math.isnan(v) else v) for k, v in row.items()}))
+    else:
+        _print_summary(res)
+    if not res.ok:
+        print(f"speedbench: point failed: {res.reason}", file=sys.stderr)
+        return 1
+    return 0
+
+
+def _print_summary(res) -> None:
+    p = res.point
+    print(f"{p.model} size={p.size or 'default'} proposals={p.proposals or 'default'} backend={p.backend} "
+          f"threads={p.intra_threads}/{p.inter_threads}" + (f" affinity={p.affinity}" if p.affinity else ""))
+    if not res.ok:
+        print(f"  failed: {res.reason}")
+        return
+    m = res.measurement
+    lo, hi = m.ci(50)
+    print(f"  latency ms: p50 {m.median:.2f} (95% CI {lo:.2f}-{hi:.2f})  p90 {m.percentile(90):.2f}  "
+          f"p99 {m.percentile(99):.2f}  min {m.min:.2f}  mean {m.mean:.2f}  CoV {m.cov:.3f}  n {m.n} "
+          f"({res.extra.get('stop')}) on {res.extra.get('n_images')} images")
+    if m.noisy:
+        print("  NOISY: the spread is high or the CI target was not reached; do not rank on this point alone")
+    if res.stages:
+        total = sum(res.stages.values())
+        print(f"  stages (profiled run {res.profiled_ms:.2f} ms, profiling overhead "
+              f"{res.profiling_overhead * 100:+.0f}%):")
+        for stage, ms in sorted(res.stages.items(), key=lambda kv: -kv[1]):
+            print(f"    {stage:<13} {ms:9.2f} ms  {ms / total * 100:5.1f}%")
+    mem = res.memory
+    print(f"  memory MiB: after imports {mem.get('rss_imports_mib', 0):.0f}, loaded {mem.get('rss_loaded_mib', 0):.0f}, "
+          f"peak {mem.get('rss_peak_mib', 0):.0f} ({mem.get('peak_scope')}); model file {mem.get('model_file_mib', 0):.1f}")
+    print(f"  timed region: {res.extra.get('timed_region')}")
+    if p.weights in ("none", "untrained") and p.backend != "synthetic":
+        print("  WARNING: untrained weights - their scores flood NMS, so postprocess time (and the total) is not "
+              "what a trained model costs. Do not size a deployment on it.")
