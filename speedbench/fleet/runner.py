@@ -46,7 +46,7 @@ class _Host:
 
 def run_fleet_sweep(profile_path, cluster, out_dir=None, resume: bool = False, hosts=None,
                     quiet: bool = False, stream=None, lost_after_s: float = 120.0,
-                    poll_s: float = 0.25) -> dict[str, Path]:
+                    poll_s: float = 0.25, connect_timeout_s: float = 20.0) -> dict[str, Path]:
     """Run (or resume) a profile on every host of a Dask cluster; returns {host label: run directory}.
 
     cluster: scheduler address ("tcp://HOST:8786"), a dask Cluster or Client.
@@ -61,7 +61,7 @@ def run_fleet_sweep(profile_path, cluster, out_dir=None, resume: bool = False, h
     profile = load_profile(profile_path)
     expand_plan(profile)  # profile mistakes stop here, before the cluster is touched
     wanted = engine.parse_hosts(hosts)
-    client, owned = engine.connect(cluster)
+    client, owned = engine.connect(cluster, timeout_s=connect_timeout_s)
     try:
         return _Fleet(client, profile, out_dir, resume, wanted, quiet, stream or sys.stderr,
                       lost_after_s, poll_s).run()
@@ -256,6 +256,7 @@ class _Fleet:
             for planned in todo:
                 if planned.config["concurrency"] != 1:
                     self._submit(h, planned, ac, baselines.get(_stream_key(planned.config)))
+            del baselines      # the dependents hold them now; a stored result must not be kept alive
             if not todo:
                 self._finish(h)
         self.progress = Progress(total, quiet=self.quiet, stream=self.stream)
@@ -263,6 +264,10 @@ class _Fleet:
             while any(h.futures for h in self.hosts.values()):
                 for fut in ac.next_batch(block=False) if ac.has_ready() else []:
                     self._arrived(fut, ac)
+                    # Drop our reference at once: a stored point whose result the scheduler still
+                    # tracks would be measured again if its worker died later.
+                    fut.release()
+                fut = None
                 for lb in self._lost({lb: h for lb, h in self.hosts.items() if h.futures}):
                     self._host_lost(self.hosts[lb])
                 if not ac.has_ready():

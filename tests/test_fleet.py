@@ -1,0 +1,313 @@
+"""Fleet sweeps on a real Dask cluster started here (no mocks of the engine).
+
+The cluster: a scheduler and two Nanny-managed worker processes with host labels
+"a" and "b" (dask's SpecCluster, the base of its LocalCluster), plus, for the
+lost-host test, a worker started with dask's own `dask worker` command line.
+Points use the measure package's synthetic backend (a known sleep; no model).
+What is checked against the outside: the plan each host ran equals the plan a
+local sweep expands, point for point; Dask's worker resources keep one point at
+a time per host; a killed worker is survived.
+"""
+import json
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+import threading
+import time
+
+import pytest
+
+from speedbench.errors import UserError
+from speedbench.sweep import expand_plan, load_meta, load_profile, load_run
+from speedbench.schema import CONFIG_COLUMNS
+
+import psutil
+
+PROFILE = """
+[run]
+name = "fleet-syn"
+timeout_s = 30
+cache = "{cache}"
+
+[dataset]
+scenes = {{count = 1}}
+accuracy = false
+
+[sweep]
+sizes = {sizes}
+proposals = {proposals}
+backends = ["synthetic"]
+
+[[models]]
+id = "synthetic"
+
+[[threads]]
+intra = 1
+
+[repetitions]
+warmup_min = 1
+warmup_max = 2
+min_reps = 3
+max_reps = 5
+max_seconds = 0.3
+stages = false
+
+[synthetic]
+work_ms = 60.0
+mode = "sleep"
+"""
+
+
+def write_profile(tmp_path, sizes="[64, 96]", proposals="[10, 20]"):
+    path = tmp_path / "fleet.toml"
+    path.write_text(PROFILE.format(cache=tmp_path / "cache", sizes=sizes, proposals=proposals))
+    return path
+
+
+@pytest.fixture(scope="module")
+def cluster():
+    # The engine is an optional extra (pip install 'speedbench[fleet]'): without it the
+    # cluster tests cannot run; the label checks and the no-engine test below still do.
+    pytest.importorskip("distributed", reason="fleet cluster tests need dask[distributed]")
+    from distributed import Client, Nanny, Scheduler, SpecCluster
+
+    def worker(label, env):
+        return {"cls": Nanny, "options": {"nthreads": 1, "resources": {f"host:{label}": 1},
+                                          "memory_limit": 0, "env": env}}
+
+    # b gets a thread variable a does not have: the fingerprint in each host's
+    # meta.json shows it was taken on that host's worker, not on the client.
+    spec = {"a": worker("a", {}), "b": worker("b", {"OMP_WAIT_POLICY": "PASSIVE"})}
+    with SpecCluster(workers=spec, scheduler={"cls": Scheduler, "options": {"dashboard_address": None}},
+                     silence_logs=50) as cl, Client(cl, set_as_default=False) as client:
+        client.wait_for_workers(2, timeout=60)
+        yield cl, client
+
+
+def _rows(db):
+    try:
+        con = sqlite3.connect(db, timeout=5)
+        try:
+            return con.execute("SELECT COUNT(*) FROM points").fetchone()[0]
+        finally:
+            con.close()
+    except sqlite3.OperationalError:
+        return 0
+
+
+def _worker_pid(client, label):
+    from speedbench.fleet.engine import workers_by_label
+
+    addr = workers_by_label(client)[label][0]["address"]
+    return client.run(os.getpid, workers=[addr])[addr]
+
+
+def _measuring_child(pid):
+    """The point's measurement subprocess under a worker process, or None."""
+    try:
+        for child in psutil.Process(pid).children(recursive=True):
+            if "speedbench.measure.worker" in " ".join(child.cmdline()):
+                return child
+    except psutil.Error:
+        return None
+    return None
+
+
+def _kill_mid_point(client, label, run_dir, pid=None, deadline_s=90):
+    """Wait until `label` stored one point and is measuring the next, then SIGKILL its worker.
+
+    Returns (killed pid, point id of the point in flight, points stored before the kill)."""
+    pid = pid or _worker_pid(client, label)
+    deadline = time.monotonic() + deadline_s
+    while True:
+        assert time.monotonic() < deadline, f"host {label} made no progress"
+        stored = _rows(run_dir / "points.sqlite")
+        child = _measuring_child(pid) if stored >= 1 else None
+        if child is not None:
+            try:
+                spec = json.loads(open(child.cmdline()[-1]).read())
+            except (OSError, ValueError, psutil.Error):
+                time.sleep(0.02)
+                continue
+            os.kill(pid, signal.SIGKILL)
+            from speedbench.schema import point_id
+
+            return pid, point_id(spec["point"]), stored
+        time.sleep(0.02)
+
+
+def _assert_plan_equal(run_dir, profile_path):
+    """The host ran exactly the plan a local sweep of the same profile expands, point for point."""
+    plan = expand_plan(load_profile(profile_path))
+    df = load_run(run_dir).set_index("point_id")
+    assert sorted(df.index) == sorted(p.point_id for p in plan.points)
+    for p in plan.points:
+        got = {c: df.loc[p.point_id, c] for c in CONFIG_COLUMNS}
+        assert got == p.config, p.point_id
+    return df
+
+
+def test_fleet_runs_each_host_plan_and_survives_a_killed_worker(cluster, tmp_path):
+    cl, client = cluster
+    prof = write_profile(tmp_path)
+    out = tmp_path / "fleet"
+    from speedbench.fleet import run_fleet_sweep
+
+    result, errors = {}, []
+
+    def go():
+        try:
+            result.update(run_fleet_sweep(prof, cl.scheduler_address, out_dir=out, quiet=True,
+                                          stream=open(os.devnull, "w")))
+        except BaseException as exc:  # surfaced by the assertion below
+            errors.append(exc)
+
+    thread = threading.Thread(target=go)
+    thread.start()
+    killed_pid, in_flight, _ = _kill_mid_point(client, "b", out / "b")
+    kill_time = time.time()
+    thread.join(150)
+    assert not thread.is_alive() and not errors, errors
+    assert result == {"a": out / "a", "b": out / "b"}
+
+    for label in ("a", "b"):
+        df = _assert_plan_equal(out / label, prof)
+        assert (df["status"] == "ok").all(), df["reason"].tolist()
+        assert (df["host"] == label).all()
+        # Dask resources: one point at a time per host, so a host's intervals never overlap.
+        spans = sorted(zip(df["started_unix"], df["finished_unix"]))
+        assert all(end <= nxt for (_, end), (nxt, _) in zip(spans, spans[1:])), spans
+        meta = load_meta(out / label)
+        assert meta["host"] == label and meta["finished"]
+        assert meta["fleet"]["shares_machine_with"] == ["b" if label == "a" else "a"]
+    # The point in flight when b's worker died was run again on the restarted worker.
+    b = load_run(out / "b").set_index("point_id")
+    assert b.loc[in_flight, "started_unix"] > kill_time - 1.0
+    assert _worker_pid(client, "b") != killed_pid
+    # Fingerprints were taken on the workers: only b's has the variable b was started with.
+    assert load_meta(out / "b")["env"]["thread_env"].get("OMP_WAIT_POLICY") == "PASSIVE"
+    assert "OMP_WAIT_POLICY" not in load_meta(out / "a")["env"]["thread_env"]
+
+
+def _start_cli_worker(address, label):
+    """A worker as it is started on a real host: dask's own command line, no nanny (nothing restarts it)."""
+    cmd = [sys.executable, "-m", "distributed.cli.dask_worker", address, "--nthreads", "1",
+           "--resources", f"host:{label}=1", "--no-nanny", "--memory-limit", "0", "--name", label]
+    return subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+
+
+def _wait_label(client, label, present=True, timeout=60):
+    from speedbench.fleet.engine import workers_by_label
+
+    deadline = time.monotonic() + timeout
+    while (label in workers_by_label(client)) != present:
+        assert time.monotonic() < deadline, f"worker {label} did not {'join' if present else 'leave'}"
+        time.sleep(0.1)
+
+
+def _fleet_cli(*args):
+    return subprocess.run([sys.executable, "-m", "speedbench.fleet", *map(str, args)],
+                          capture_output=True, text=True, timeout=240)
+
+
+def test_lost_host_records_its_point_in_flight_and_resume_completes_it(cluster, tmp_path):
+    cl, client = cluster
+    prof = write_profile(tmp_path, sizes="[64, 96, 128]", proposals="[10]")
+    out = tmp_path / "fleet"
+    addr = cl.scheduler_address
+    worker = _start_cli_worker(addr, "c")
+    try:
+        _wait_label(client, "c")
+        cmd = [sys.executable, "-m", "speedbench.fleet", str(prof), "--cluster", addr, "-o", str(out),
+               "--hosts", "a,c", "--lost-after", "3", "-q"]
+        sweep = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        _, in_flight, stored = _kill_mid_point(client, "c", out / "c", pid=worker.pid)
+        worker.wait(10)
+        stdout, stderr = sweep.communicate(timeout=180)
+        assert sweep.returncode == 0, stderr
+        assert "host c: lost" in stderr
+    finally:
+        if worker.poll() is None:
+            worker.kill()
+            worker.wait()
+    _wait_label(client, "c", present=False)
+
+    # The other host finished everything; c kept what it measured, its point in
+    # flight is a failed row saying why, the rest is left for --resume.
+    a = _assert_plan_equal(out / "a", prof)
+    assert (a["status"] == "ok").all()
+    c = load_run(out / "c").set_index("point_id")
+    assert c.loc[in_flight, "status"] == "failed"
+    assert "host c lost during the point" in c.loc[in_flight, "reason"]
+    assert (c.drop(index=in_flight)["status"] == "ok").all()
+    assert len(c) == stored + 1
+    assert load_meta(out / "c")["finished"] is None
+
+    # Without --resume the existing run directories are refused, nothing is touched.
+    seq_a = sqlite3.connect(out / "a" / "points.sqlite").execute("SELECT point_id, seq FROM points").fetchall()
+    got = _fleet_cli(prof, "--cluster", addr, "-o", out, "--hosts", "a")
+    assert got.returncode == 2 and "already holds a run" in got.stderr and "Traceback" not in got.stderr
+
+    worker = _start_cli_worker(addr, "c")
+    try:
+        _wait_label(client, "c")
+        got = _fleet_cli(prof, "--cluster", addr, "-o", out, "--hosts", "a,c", "--resume", "-q")
+        assert got.returncode == 0, got.stderr
+        assert f"c: {out / 'c'}" in got.stdout
+    finally:
+        worker.kill()
+        worker.wait()
+    c = _assert_plan_equal(out / "c", prof)
+    assert (c["status"] == "failed").sum() == 1 and c.loc[in_flight, "status"] == "failed"
+    assert load_meta(out / "c")["finished"]
+    after_a = sqlite3.connect(out / "a" / "points.sqlite").execute("SELECT point_id, seq FROM points").fetchall()
+    assert sorted(after_a) == sorted(seq_a)   # a had everything: nothing re-measured
+
+
+def test_bad_input_is_a_one_line_error(cluster, tmp_path):
+    cl, _ = cluster
+    from speedbench.fleet import run_fleet_sweep
+
+    prof = write_profile(tmp_path)
+    with pytest.raises(UserError, match=r"--hosts: no worker advertises host label 'zz' \(the cluster has: a, b\)"):
+        run_fleet_sweep(prof, cl.scheduler_address, out_dir=tmp_path / "o", hosts="a,zz")
+    with pytest.raises(UserError, match="--hosts: .* empty host label"):
+        run_fleet_sweep(prof, cl.scheduler_address, out_dir=tmp_path / "o", hosts="a,,b")
+    with pytest.raises(UserError, match=r"--cluster tcp://127.0.0.1:9: cannot reach the scheduler"):
+        run_fleet_sweep(prof, "tcp://127.0.0.1:9", out_dir=tmp_path / "o", connect_timeout_s=1)
+    bad = tmp_path / "bad.toml"
+    bad.write_text(prof.read_text().replace('backends = ["synthetic"]', 'backends = ["gpu"]'))
+    with pytest.raises(UserError, match=r"bad.toml: sweep.backends\[0\]"):
+        run_fleet_sweep(bad, cl.scheduler_address, out_dir=tmp_path / "o")
+    assert not (tmp_path / "o").exists()   # no error left a directory behind
+
+
+def test_labels_that_would_mix_or_disturb_measurements_are_refused():
+    from speedbench.fleet.engine import check_labels, shared_machines
+
+    one = {"address": "tcp://10.0.0.1:1", "ip": "10.0.0.1", "name": "x", "nthreads": 1}
+    two = {"address": "tcp://10.0.0.2:1", "ip": "10.0.0.2", "name": "y", "nthreads": 1}
+    with pytest.raises(UserError, match="2 workers advertise host label 'a'.*exactly one worker per host label"):
+        check_labels({"a": [one, two]}, "tcp://s:8786")
+    with pytest.raises(UserError, match="host label '../x'"):
+        check_labels({"../x": [one]}, "tcp://s:8786")
+    with pytest.raises(UserError, match="no worker advertises a host label"):
+        check_labels({}, "tcp://s:8786")
+    assert check_labels({"b": [two], "a": [one]}, "s") == ["a", "b"]
+    assert shared_machines({"a": [one], "b": [one], "c": [two]}, ["a", "b", "c"]) == {"a": ["b"], "b": ["a"]}
+
+
+def test_without_the_engine_cluster_says_what_to_install(monkeypatch, tmp_path, capsys):
+    # Simulates the extra not being installed: importing `distributed` fails.
+    monkeypatch.setitem(sys.modules, "distributed", None)
+    from speedbench.fleet import INSTALL_HINT, run_fleet_sweep
+    from speedbench.fleet.__main__ import main
+
+    prof = write_profile(tmp_path)
+    with pytest.raises(UserError) as err:
+        run_fleet_sweep(prof, "tcp://127.0.0.1:8786")
+    assert str(err.value) == "fleet sweeps need the optional engine: pip install 'speedbench[fleet]'" == INSTALL_HINT
+    assert main([str(prof), "--cluster", "tcp://127.0.0.1:8786"]) == 2
+    assert capsys.readouterr().err.strip() == f"speedbench: error: {INSTALL_HINT}"
