@@ -75,6 +75,7 @@ def test_sections_of_a_design_review(html_report):
                     "Latency distributions", "Accuracy", "Memory", "All points", "Caveats"):
         assert f"<h2>{heading}" in text, heading
     assert "What is timed" in text and "Repetitions per point: 60 to 60" in text
+    assert "Timed region, backend ort: onnxruntime InferenceSession.run" in text  # measure's own statement
     assert "0.240 [0.210, 0.270]" in text                      # two-stage at 256 px: 0.3 * 256 / 320, CI +-0.03
     assert "no guarantee" in text and "safety-relevant deployment" in text
     assert "No extrapolation" in text and "One host" in text

@@ -81,6 +81,9 @@ def build(runs, budget_ms=None, latency: str = "p50", title: str | None = None) 
 
     blocks.append(("h2", "Method"))
     blocks.append(("p", TIMED))
+    regions = _timed_regions(ok)
+    if regions:
+        blocks.append(("list", regions))
     blocks.append(("list", _noise_lines(ok)))
     for r in runs:
         if r.path:
@@ -202,6 +205,21 @@ def _env_rows(run: Run) -> list[list[str]]:
     return [[str(a), str(b)] for a, b in rows]
 
 
+def _timed_regions(ok) -> list[str]:
+    """The measure package's own statement of each backend's timed region."""
+    import importlib
+
+    out = []
+    backends = sorted({str(b) for b in ok.get("backend", pd.Series(dtype=str)) if str(b)}) if len(ok) else []
+    for b in backends:
+        try:
+            region = importlib.import_module(f"speedbench.measure.backends.{b}").TIMED_REGION
+        except (ImportError, AttributeError):
+            continue
+        out.append(f"Timed region, backend {b}: {region}")
+    return out
+
+
 def _noise_lines(ok) -> list[str]:
     if not len(ok):
         return ["No successful points."]
@@ -233,6 +251,9 @@ def _caveats(ok, trained, hosts) -> list[str]:
         out.append("Untrained weights: accuracy is unavailable for those points, and their latency may not "
                    "match a trained model's, because NMS and second-stage cost depend on how many boxes "
                    "the model proposes.")
+    if len(ok) and "backend" in ok.columns and (ok["backend"] == "synthetic").any():
+        out.append("Some points use the synthetic harness test backend: no detector ran for them; their "
+                   "figures exercise the tool, not a model.")
     if trained:
         out.append("Accuracy comes from a small held-out set: mind the confidence intervals; differences "
                    "inside them are not evidence. Images from another domain can change the ranking.")
