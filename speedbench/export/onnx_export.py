@@ -234,6 +234,7 @@ def _verify_into(record, model, spec, onnx_path, opset, size, proposals) -> None
     from speedbench.zoo import configure
 
     images = parity.verification_images()
+    original_thresh = _score_thresh(model)
     try:
         result = parity.check(model, ort_session(onnx_path), images,
                               spec.detections_per_img, _score_thresh(model))
@@ -247,7 +248,7 @@ def _verify_into(record, model, spec, onnx_path, opset, size, proposals) -> None
                 copy = Path(tmp) / "thresh0.onnx"
                 _torch_export(model, copy, opset, size)
                 low = parity.check(model, ort_session(copy), images, spec.detections_per_img, 0.0)
-            configure(model, size, proposals or None, score_thresh=spec_thresh(spec))
+            configure(model, size, proposals or None, score_thresh=original_thresh)
             low["graph"] = "copy with score_thresh=0 (too few detections in the exported graph)"
             low["exported_graph"] = {k: v for k, v in result.items() if k != "per_image"}
             result = low
@@ -269,6 +270,3 @@ def _verify_into(record, model, spec, onnx_path, opset, size, proposals) -> None
 def _score_thresh(model) -> float:
     return float(model.roi_heads.score_thresh if hasattr(model, "roi_heads") else model.score_thresh)
 
-
-def spec_thresh(spec) -> float:
-    return float(spec.score_thresh)

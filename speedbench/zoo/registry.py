@@ -52,7 +52,7 @@ TORCHVISION_SPECS = (
     _tv("fasterrcnn_resnet50_fpn_v2", "FasterRCNN_ResNet50_FPN_V2_Weights", "two-stage", 800, 100, 0.05, 1000,
         _RCNN, "FasterRCNN"),
     _tv("fasterrcnn_mobilenet_v3_large_fpn", "FasterRCNN_MobileNet_V3_Large_FPN_Weights", "two-stage", 800,
-        100, 0.05, 150, _RCNN, "FasterRCNN"),
+        100, 0.05, 1000, _RCNN, "FasterRCNN"),
     _tv("fasterrcnn_mobilenet_v3_large_320_fpn", "FasterRCNN_MobileNet_V3_Large_320_FPN_Weights", "two-stage",
         320, 100, 0.05, 150, _RCNN, "FasterRCNN"),
     _tv("maskrcnn_resnet50_fpn", "MaskRCNN_ResNet50_FPN_Weights", "two-stage", 800, 100, 0.05, 1000,

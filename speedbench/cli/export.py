@@ -1,0 +1,69 @@
+"""`speedbench export MODEL`: export one configuration to ONNX and verify it against torch eager."""
+from __future__ import annotations
+
+
+def add_parser(subparsers):
+    p = subparsers.add_parser(
+        "export", help="export a detector to ONNX and check it against torch",
+        description="Export one (model, weights, size, proposals, opset) to ONNX, cached by content hash; "
+                    "the graph is run on structured images in torch and ONNX Runtime and the detections "
+                    "compared. Exits 1 if the export fails or diverges.")
+    p.add_argument("model", help="zoo model id (speedbench models)")
+    p.add_argument("--size", type=int, default=None, help="input size the model's transform resizes to (px); "
+                   "default: the model's native size")
+    p.add_argument("--proposals", type=int, default=None, help="proposal / candidate budget; default: the model's")
+    p.add_argument("--weights", default=None, help="none | torchvision | demo | file:PATH (default: the model's)")
+    p.add_argument("--num-classes", type=int, default=None, help=argparse_suppress())
+    p.add_argument("--opset", type=int, default=17, help="ONNX opset (default 17)")
+    p.add_argument("-o", "--out", default=None, help="also copy the verified graph here (record next to it)")
+    p.add_argument("--cache-dir", default=None, help="export cache (default $SPEEDBENCH_CACHE or "
+                   "~/.cache/speedbench/exports)")
+    p.add_argument("--no-verify", action="store_true", help="skip the torch-vs-ONNX Runtime comparison")
+    p.add_argument("--force", action="store_true", help="export again even if the cache has this graph")
+    p.add_argument("--json", action="store_true", help="print the export record as JSON")
+    p.set_defaults(run=run)
+    return p
+
+
+def argparse_suppress():
+    import argparse
+
+    return argparse.SUPPRESS
+
+
+def run(args) -> int:
+    import json
+
+    from speedbench.export import export_onnx
+    from speedbench.zoo import get_spec
+
+    spec = get_spec(args.model)
+    weights = args.weights or spec.default_weights
+    record = export_onnx(args.model, size=args.size, proposals=args.proposals, weights=weights,
+                         opset=args.opset, cache_dir=args.cache_dir, verify=not args.no_verify,
+                         out=args.out, force=args.force)
+    if args.json:
+        print(json.dumps(record.to_dict(), indent=2, default=str))
+    else:
+        _print(record)
+    return 0 if record.ok else 1
+
+
+def _print(record) -> None:
+    facts, par = record.facts, record.parity
+    print(f"{record.model_id} size={record.size} proposals={record.proposals} weights={record.weights} "
+          f"opset={record.opset}")
+    if facts:
+        stages = ", ".join(f"{k} {v:.3f}" for k, v in facts.get("gmacs_per_stage", {}).items())
+        print(f"  params {facts['params']:,}   GMACs {facts['gmacs']:.3f} ({stages})   "
+              f"ONNX {facts.get('onnx_mib', 0):.1f} MiB")
+    if par:
+        print(f"  parity vs torch eager ({par.get('graph', '')}): matched {par.get('matched')} detections, "
+              f"box diff {par.get('box_max_abs_diff_px', 0):.3g} px, score diff {par.get('score_max_abs_diff', 0):.3g}"
+              f" (tolerances {par.get('tolerances', {})})")
+    for note in record.notes:
+        print(f"  note: {note}")
+    if record.ok:
+        print(f"  ok: {record.path}")
+    else:
+        print(f"  NOT USABLE: {record.reason}")
