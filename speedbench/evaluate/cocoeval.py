@@ -197,11 +197,12 @@ def accumulate(m: Matching, n_cat: int):
         idx = order[starts[k]:starts[k + 1]]
         for mi, max_det in enumerate(MAX_DETS):
             sel = idx[m.rank[idx] < max_det]
+            tp, fp = m.tp[sel].transpose(2, 1, 0), m.fp[sel].transpose(2, 1, 0)  # [A, T, N]
             for a in range(A):
                 npig = m.n_pos[k, a]
                 if npig == 0:
                     continue
-                q, rc_last = _precision_at_recalls(m.tp[sel, :, a].T, m.fp[sel, :, a].T, npig)
+                q, rc_last = _precision_at_recalls(tp[a], fp[a], npig)
                 precision[:, :, k, a, mi] = q
                 recall[:, k, a, mi] = rc_last
     return precision, recall

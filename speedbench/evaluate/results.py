@@ -6,6 +6,7 @@ when something is wrong do we walk the entries to name the first bad one.
 from __future__ import annotations
 
 import json
+from itertools import chain
 from numbers import Real
 from pathlib import Path
 
@@ -41,12 +42,15 @@ def parse_detections(dets, gt: GroundTruth, source: str = "detections") -> Detec
         cat = [d["category_id"] for d in dets]
         score = [d["score"] for d in dets]
         boxes = [d["bbox"] for d in dets]
-        flat = [v for b in boxes for v in b]
-        types_ok = all(issubclass(t, _NUMBER_TYPES) and t is not bool
-                       for t in {type(v) for v in (*img, *cat, *score, *flat)})
-        if not types_ok or any(len(b) != 4 for b in boxes):
+        # map(type, ...) runs in C; numpy alone would quietly accept strings and bools.
+        types = set(map(type, chain(img, cat, score, chain.from_iterable(boxes))))
+        if not all(issubclass(t, _NUMBER_TYPES) and t is not bool for t in types):
             raise ValueError
-        box = np.array(flat, dtype=np.float64).reshape(-1, 4)
+        box = np.array(boxes, dtype=np.float64)  # ragged or non-list boxes raise here
+        if box.ndim != 2 or box.shape[1] != 4:
+            if len(dets):
+                raise ValueError
+            box = box.reshape(0, 4)
     except (KeyError, TypeError, ValueError):
         _raise_first_bad(dets, source)
         raise  # pragma: no cover - _raise_first_bad always raises
