@@ -28,8 +28,12 @@ def _df():
 
 
 def _data_markers(ax):
-    return [(ln.get_marker(), tuple(ln.get_xdata()), tuple(ln.get_ydata())) for ln in ax.get_lines()
-            if ln.get_marker() in ("o", "s", "^") and len(ln.get_xdata()) == 1]  # not the error-bar caps
+    """(marker, x, y) of every plotted data point (error-bar caps excluded)."""
+    out = []
+    for ln in ax.get_lines():
+        if ln.get_marker() in ("o", "s", "^") and ln.get_linestyle() in ("None", "none", ""):
+            out += [(ln.get_marker(), (x,), (y,)) for x, y in zip(ln.get_xdata(), ln.get_ydata())]
+    return out
 
 
 def test_frontier_plot_markers_line_and_labels(tmp_path):
@@ -89,7 +93,7 @@ def test_accuracy_and_memory_plots(tmp_path):
     df = _df()
     fig = plot_accuracy_vs(df, "size", tmp_path / "acc.svg")
     assert (tmp_path / "acc.svg").exists()
-    lines = [ln for ln in fig.axes[0].get_lines() if ln.get_marker() in ("o", "s")]  # not the caps
+    lines = [ln for ln in fig.axes[0].get_lines() if ln.get_marker() in ("o", "s") and len(ln.get_xdata()) > 1]
     assert len(lines) == 2 and all(list(ln.get_xdata()) == [256, 320] for ln in lines)
     fig = plot_memory(df)
     ax = fig.axes[0]
