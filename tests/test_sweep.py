@@ -140,3 +140,101 @@ def test_resume_after_sigkill_of_parent_gives_full_set_without_duplicates(tmp_pa
 
     csv = pd.read_csv(run / "points.csv")
     assert len(csv) == 8 and csv.point_id.is_unique
+
+
+# ---------------------------------------------------------------- real graphs (ONNX Runtime)
+ORT_PROFILE = """
+[run]
+name = "ort"
+cache = "{cache}"
+timeout_s = 180
+
+[dataset]
+scenes = {{count = 4, seed = 1}}
+timing_images = 2
+
+[sweep]
+sizes = [128]
+
+[[models]]
+id = "demo_ssdlite"
+weights = "file:{weights}"
+{threads}
+[repetitions]
+warmup_min = 1
+warmup_max = 3
+min_reps = 3
+max_reps = 10
+max_seconds = 1.0
+stages = false
+"""
+
+
+def test_ort_sweep_exports_and_evaluates_once_then_reuses_the_cache(tmp_path, monkeypatch):
+    import torch
+
+    from speedbench.sweep import RunDir, steps
+    from speedbench.zoo import build_model
+
+    weights = tmp_path / "ssd.pt"
+    # A checkpoint file counts as trained to the sweep, so the accuracy path runs for real
+    # (a random-init model: mAP near 0, but computed by the COCO protocol end to end).
+    torch.save(build_model("demo_ssdlite", weights="none").state_dict(), weights)
+    cache = tmp_path / "cache"
+    prof = tmp_path / "ort.toml"
+    prof.write_text(ORT_PROFILE.format(cache=cache, weights=weights, threads="[[threads]]\nintra = 1\n"))
+    first = load_run(run_sweep(prof, out_dir=tmp_path / "run1", quiet=True, stream=open(os.devnull, "w")))
+    assert len(first) == 1 and first.status[0] == "ok", first[["status", "reason"]]
+    row = first.iloc[0]
+    assert 0 <= row["map"] <= 1 and 0 <= row["map50"] <= 1               # accuracy measured
+    assert row["params"] > 0 and row["gmacs"] > 0 and row["model_file_mib"] > 0
+    assert row["lat_p50_ms"] > 0 and row["n_samples"] >= 3
+    assert not row["untrained"] and row["parity_passed"]
+    assert len(list((tmp_path / "run1" / "exports").glob("*.onnx"))) == 1   # graph kept with the run
+    assert len(list((cache / "exports").glob("*.json"))) == 1
+    assert len(list((cache / "accuracy").glob("*.json"))) == 1
+
+    # Preparing the same graph for another run directory: neither export nor evaluation runs again.
+    import speedbench.evaluate.run as ev
+    import speedbench.export.onnx_export as ex
+
+    def refuse(*a, **k):
+        raise AssertionError("cache miss: this step should not run again")
+
+    monkeypatch.setattr(ex, "_export_into", refuse)
+    monkeypatch.setattr(ev, "evaluate_graph", refuse)
+    profile = load_profile(prof)
+    planned = expand_plan(profile).points[0]
+    rd = RunDir.create(tmp_path / "run2", profile.text, {"env": {}})
+    info = steps.prepare_graph(planned, profile, steps.prepare_dataset(profile, cache), rd, cache,
+                               type("Quiet", (), {"status": lambda self, text: None})())
+    rd.close()
+    assert info.ok and info.accuracy["map"] == row["map"] and info.facts["params"] == row["params"]
+    assert planned.point_id == row["point_id"]   # same configuration, same id in every run
+
+
+def test_failed_export_becomes_failed_rows_and_the_sweep_goes_on(tmp_path, monkeypatch):
+    import speedbench.export as export
+
+    calls = []
+
+    def broken(model_id, **kw):
+        calls.append(model_id)
+        raise RuntimeError("exporter exploded\nwith a second line")
+
+    monkeypatch.setattr(export, "export_onnx", broken)
+    prof = tmp_path / "p.toml"
+    prof.write_text(PROFILE.format(sizes="[64]", extra_model="", work_ms=1.0).replace(
+        'backends = ["synthetic"]', 'backends = ["ort", "synthetic"]'))
+    text = prof.read_text().replace('[[models]]\nid = "synthetic"',
+                                    '[[models]]\nid = "synthetic"\n[[models]]\nid = "demo_fcos"')
+    prof.write_text(text)
+    df = load_run(run_sweep(prof, out_dir=tmp_path / "run", quiet=True, stream=open(os.devnull, "w")))
+    # proposals [10, 20] x {ort, synthetic} for each model; the synthetic model runs on synthetic only
+    fcos_ort = df[(df.model == "demo_fcos") & (df.backend == "ort")]
+    assert sorted(calls) == ["demo_fcos", "demo_fcos"]    # one export attempt per distinct graph
+    assert len(fcos_ort) == 2 and (fcos_ort.status == "failed").all()
+    assert (fcos_ort.reason == "export: RuntimeError: exporter exploded with a second line").all()
+    # the synthetic backend needs no graph: the same model's synthetic points are measured
+    rest = df[df.backend == "synthetic"]
+    assert len(rest) == 4 and (rest.status == "ok").all() and len(df) == 6

@@ -334,8 +334,6 @@ def _weights(c: _Checker, value, keypath: str) -> str:
     c.str_(value, keypath, allow_empty=False)
     if value in ("none", "torchvision", "demo"):
         return value
-    if value.startswith("demo:") and len(value) > len("demo:"):
-        return value
     if value.startswith("file:") and len(value) > len("file:"):
         return value
-    c.fail(keypath, f"{value!r} is not one of none, torchvision, demo, demo:ID, file:PATH")
+    c.fail(keypath, f"{value!r} is not one of none, torchvision, demo, file:PATH")

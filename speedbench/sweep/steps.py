@@ -89,7 +89,8 @@ def prepare_graph(point, profile, dataset, rd, cache: Path, progress) -> GraphIn
     try:
         from speedbench.export import export_onnx
 
-        record = export_onnx(model, weights=weights, size=size, proposals=proposals,
+        # proposals 0 means "no such knob": the exporter keeps the model's own setting.
+        record = export_onnx(model, weights=weights, size=size, proposals=proposals or None,
                              cache_dir=Path(cache) / "exports")
     except UserError as exc:
         return GraphInfo(ok=False, reason=f"export: {exc}")
@@ -99,6 +100,7 @@ def prepare_graph(point, profile, dataset, rd, cache: Path, progress) -> GraphIn
         return GraphInfo(ok=False, reason=f"export: {record.reason}")
     info.path = str(_link_into_run(Path(record.path), rd.exports))
     info.facts = _facts(record)
+    info.notes.extend(record.notes or [])
     if weights == "none" or not profile.accuracy or dataset is None:
         return info
     progress.status(f"accuracy {model} {size}px")
@@ -107,13 +109,14 @@ def prepare_graph(point, profile, dataset, rd, cache: Path, progress) -> GraphIn
 
 
 def _facts(record) -> dict:
-    facts = dict(getattr(record, "facts", None) or {})
-    out = {k: facts[k] for k in ("params", "gmacs") if k in facts}
-    path = Path(record.path)
-    out["model_file_mib"] = float(facts.get("model_file_mib", path.stat().st_size / 2**20))
-    for key in ("opset", "graph_sha"):
-        if key in facts:
-            out[f"graph_{key}" if key == "opset" else key] = facts[key]
+    """Export facts as row columns: params, gmacs, file size, opset, parity with torch eager."""
+    facts = dict(record.facts or {})
+    out = {k: facts[k] for k in ("params", "gmacs") if facts.get(k) is not None}
+    out["model_file_mib"] = round(Path(record.path).stat().st_size / 2**20, 3)
+    out["opset"] = record.opset
+    parity = record.parity or {}
+    if "passed" in parity:
+        out["parity_passed"] = bool(parity["passed"])
     return out
 
 
@@ -150,22 +153,46 @@ def _accuracy(graph: Path, point, profile, dataset, cache: Path, info: GraphInfo
             return json.loads(path.read_text())
         except (OSError, json.JSONDecodeError):
             pass  # a damaged cache entry is recomputed
+    check_threads = len({t.intra for t in profile.threads}) > 1
     try:
         from speedbench.evaluate import evaluate_graph
 
-        result = evaluate_graph(graph, dataset, model=point.graph_key[0], limit=profile.limit or None)
+        result = evaluate_graph(graph, dataset, model=point.graph_key[0], limit=profile.limit or None,
+                                intra_threads=_cores(), cache_dir=Path(cache) / "detections",
+                                check_threads=check_threads)
     except UserError as exc:
         info.notes.append(f"accuracy not measured: {exc}")
         return {}
     except Exception as exc:
         info.notes.append(f"accuracy failed: {type(exc).__name__}: {_one_line(exc)}")
         return {}
-    acc = {k: float(result.get(k, NAN)) for k in ACCURACY_COLUMNS}
+    acc = {k: _metric(result.get(k)) for k in ACCURACY_COLUMNS}
+    inv = result.get("thread_invariance")
+    if inv:
+        # Do detections change with the thread count? (floating-point reduction order can.)
+        acc["outputs_thread_identical"] = bool(inv["identical"])
+        acc["outputs_thread_max_box_diff"] = float(inv["max_box_diff"])
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_suffix(f".{os.getpid()}.tmp")
-    tmp.write_text(json.dumps({k: (None if math.isnan(v) else v) for k, v in acc.items()}))
+    tmp.write_text(json.dumps({k: (None if isinstance(v, float) and not math.isfinite(v) else v)
+                               for k, v in acc.items()}))
     os.replace(tmp, path)
     return acc
+
+
+def _metric(value) -> float:
+    # COCO evaluation reports -1 for "undefined" (no ground truth in that area range).
+    if value is None:
+        return NAN
+    value = float(value)
+    return NAN if value < 0 else value
+
+
+def _cores() -> int:
+    try:
+        return len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        return os.cpu_count() or 1
 
 
 def dataset_fingerprint(dataset) -> str:
@@ -239,10 +266,13 @@ def merge_columns(planned, info: GraphInfo, profile) -> dict:
         out[k] = v
     for k in ACCURACY_COLUMNS:
         out[k] = NAN if untrained else info.accuracy.get(k, NAN)
+    for k, v in info.accuracy.items():
+        if k not in ACCURACY_COLUMNS and not untrained:
+            out[k] = v
     notes = list(planned.notes) + list(info.notes)
     if not info.ok and c["backend"] == "eager":
         notes.append(f"accuracy not measured ({info.reason})")
-    if untrained:
+    if untrained and not any(n.startswith("untrained") for n in notes):
         notes.append("untrained weights: latency only, accuracy not meaningful")
     out["note"] = "; ".join(notes)
     return out
