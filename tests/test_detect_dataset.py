@@ -191,6 +191,28 @@ def test_torchvision_export_boxes_match_eager_in_original_frame(tmp_path):
     np.testing.assert_allclose(boxes[:top], eager["boxes"][:top].numpy(), atol=0.05)
     np.testing.assert_allclose(scores[:top], eager["scores"][:top].numpy(), atol=1e-4)
     assert (labels[:top] == eager["labels"][:top].numpy()).all()
+    # The detection cache assumes thread settings do not change a graph's outputs; on a
+    # real detector ORT gives bit-identical outputs under 1 and 2 intra-op threads.
+    root = tmp_path / "set"
+    (root / "images").mkdir(parents=True)
+    Image.fromarray(img).save(root / "images" / "a.png")
+    Image.fromarray(img[:100, :180].copy()).save(root / "images" / "b.png")
+    coco = {"images": [{"id": 1, "file_name": "images/a.png", "width": 260, "height": 150},
+                       {"id": 2, "file_name": "images/b.png", "width": 180, "height": 100}],
+            "annotations": [], "categories": [{"id": 1, "name": "thing"}]}
+    (root / "annotations.json").write_text(json.dumps(coco))
+    inv = check_thread_invariance(graph, load_dataset(root), threads=(1, 2), n_images=2)
+    assert inv["identical"] and inv["max_box_diff"] == 0.0 and min(inv["n_detections"]) > 0
+
+
+def test_classes_of_zoo_models():
+    # source: torchvision's COCO weights metadata (91 names, index == COCO id) for
+    # torchvision architectures; the demo zoo's own class tuple otherwise.
+    from speedbench.evaluate.run import classes_of
+
+    assert classes_of("ssdlite320_mobilenet_v3_large")[1] == "person"
+    assert len(classes_of("ssdlite320_mobilenet_v3_large")) == 91
+    assert classes_of("demo_ssdlite") == ["__background__", "crate", "drum", "pylon"]
 
 
 def test_cli_runs_a_graph(tmp_path, capsys):
