@@ -221,6 +221,10 @@ def plot_accuracy_vs(df: pd.DataFrame, knob: str = "size", path=None, svg: bool 
         return _empty("accuracy unavailable (untrained weights)", path, svg)
     other = "proposals" if knob == "size" else "size"
     ok = ok[pd.to_numeric(ok["map"], errors="coerce").notna()]
+    if knob == "proposals":
+        ok = ok[pd.to_numeric(ok["proposals"], errors="coerce").fillna(0) > 0]  # models without the knob
+        if not len(ok):
+            return _empty("no model with a proposal-count knob", path, svg)
     # Accuracy depends on the graph, not on the thread setting: one value per graph.
     cols = [c for c in ("map", "map_ci_lo", "map_ci_hi") if c in ok.columns]
     graph = ok.groupby(["model", "family", other, knob], dropna=False)[cols].mean().reset_index()
