@@ -64,6 +64,9 @@ def test_create_write_reopen_and_replace(tmp_path):
 
     csv = pd.read_csv(tmp_path / "run" / "points.csv")
     assert sorted(csv["point_id"]) == ["a", "b"]
+    pytest.importorskip("pyarrow")
+    pq = pd.read_parquet(tmp_path / "run" / "points.parquet")
+    assert sorted(pq["point_id"]) == ["a", "b"] and list(pq.columns) == list(df.columns)
     assert (tmp_path / "run" / "profile.toml").read_text().startswith("[run]")
 
 

@@ -238,3 +238,22 @@ def test_failed_export_becomes_failed_rows_and_the_sweep_goes_on(tmp_path, monke
     # the synthetic backend needs no graph: the same model's synthetic points are measured
     rest = df[df.backend == "synthetic"]
     assert len(rest) == 4 and (rest.status == "ok").all() and len(df) == 6
+
+
+def test_cli_progress_bar_and_quiet_lines(tmp_path, capsys):
+    from speedbench.cli import main
+
+    prof = write_profile(tmp_path, sizes="[64]")
+    assert main(["sweep", str(prof), "-o", str(tmp_path / "bar")]) == 0
+    cap = capsys.readouterr()
+    assert "2/2 points" in cap.err and "measuring synthetic 64px" in cap.err   # tqdm bar on stderr
+    assert "2 point(s), 2 ok, 0 failed" in cap.out
+    assert main(["sweep", str(prof), "-o", str(tmp_path / "quiet"), "--quiet"]) == 0
+    lines = [l for l in capsys.readouterr().err.splitlines() if l.startswith("[")]
+    assert len(lines) == 2 and lines[-1].startswith("[2/2] synthetic 64px p20 synthetic t1: ok p50 ")
+    meta_resumed = main(["sweep", str(prof), "-o", str(tmp_path / "quiet"), "--resume", "-q"])
+    assert meta_resumed == 0
+    from speedbench.sweep import load_meta
+
+    meta = load_meta(tmp_path / "quiet")
+    assert len(meta["resumed"]) == 1 and meta["finished"] and meta["plan_points"] == 2

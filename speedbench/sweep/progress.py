@@ -15,7 +15,7 @@ class Progress:
             from tqdm import tqdm
 
             self.bar = tqdm(total=total, file=stream, unit="pt", dynamic_ncols=True,
-                            bar_format="{l_bar}{bar}| {n_fmt}/{total_fmt} [{elapsed}<{remaining}] {postfix}")
+                            bar_format="{l_bar}{bar}| {n_fmt}/{total_fmt} points [{elapsed}<{remaining}]{postfix}")
 
     def status(self, text: str) -> None:
         if self.bar is not None:

@@ -55,6 +55,9 @@ def _open_run(profile: Profile, out: Path, resume: bool) -> RunDir:
             rd.close()
             raise UserError(f"{out / 'profile.toml'}: the run was started with a different profile than "
                             f"{profile.source}; resume with that file or start a new run directory")
+        from speedbench.sweep.rundir import now_iso
+
+        rd.update_meta(resumed=list(rd.meta().get("resumed") or []) + [now_iso()], finished=None)
         return rd
     if out.exists() and any(out.iterdir()) and not (out / "meta.json").exists():
         raise UserError(f"{out}: exists and is not empty; choose another output directory")
