@@ -159,6 +159,8 @@ def test_bad_graph_files(tmp_path):
     onnx.save(m, tmp_path / "other.onnx")
     with pytest.raises(UserError, match="expected input 'image' and outputs boxes, scores, labels"):
         detect_dataset(tmp_path / "other.onnx", ds, {1: 1})
+    with pytest.raises(UserError, match="intra-op threads must be a whole number >= 1"):
+        detect_dataset(tiny_graph(tmp_path / "g.onnx"), ds, {1: 1}, intra_threads=0)
     with pytest.raises(UserError, match="needs label_map"):
         evaluate_graph(tmp_path / "junk.onnx", ds)
 

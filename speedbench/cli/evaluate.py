@@ -58,8 +58,11 @@ def _run_graph(args, dataset):
     classes = classes_of(args.model) if args.model else [c.strip() for c in args.classes.split(",")]
     dets = detect_dataset(args.graph, dataset, category_map(dataset, classes), intra_threads=args.threads)
     if args.save_dets:
-        with open(args.save_dets, "w") as fh:
-            json.dump(dets, fh)
+        try:
+            with open(args.save_dets, "w") as fh:
+                json.dump(dets, fh)
+        except OSError as exc:
+            raise UserError(f"{args.save_dets}: cannot write detections ({exc.strerror})") from None
     return dets
 
 

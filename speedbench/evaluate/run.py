@@ -143,6 +143,8 @@ def _graph(path) -> Path:
 def _session(graph_path: Path, intra_threads: int):
     import onnxruntime as ort
 
+    if not isinstance(intra_threads, int) or isinstance(intra_threads, bool) or intra_threads < 1:
+        raise UserError(f"intra-op threads must be a whole number >= 1, not {intra_threads!r}")
     opts = ort.SessionOptions()
     opts.intra_op_num_threads = int(intra_threads)
     opts.inter_op_num_threads = 1
