@@ -257,3 +257,20 @@ def test_cli_progress_bar_and_quiet_lines(tmp_path, capsys):
 
     meta = load_meta(tmp_path / "quiet")
     assert len(meta["resumed"]) == 1 and meta["finished"] and meta["plan_points"] == 2
+
+
+def test_missing_checkpoint_or_dataset_fails_before_any_run_directory(tmp_path, capsys):
+    from speedbench.cli import main
+
+    prof = write_profile(tmp_path, sizes="[64]").read_text()
+    bad_weights = tmp_path / "w.toml"
+    bad_weights.write_text(prof.replace('id = "synthetic"', 'id = "synthetic"\nweights = "file:nope.pt"'))
+    assert main(["sweep", str(bad_weights), "-o", str(tmp_path / "r1")]) == 2
+    assert "models[0].weights: nope.pt: checkpoint file not found" in capsys.readouterr().err
+    bad_data = tmp_path / "d.toml"
+    bad_data.write_text(prof.replace('scenes = {count = 1}', 'path = "no/such/set.json"')
+                        .replace('backends = ["synthetic"]', 'backends = ["ort"]')
+                        .replace('id = "synthetic"', 'id = "demo_ssdlite"'))
+    assert main(["sweep", str(bad_data), "-o", str(tmp_path / "r2")]) == 2
+    assert "no/such/set.json: dataset not found" in capsys.readouterr().err
+    assert not (tmp_path / "r1").exists() and not (tmp_path / "r2").exists()

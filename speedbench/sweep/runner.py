@@ -25,6 +25,9 @@ def run_sweep(profile_path, out_dir=None, resume: bool = False, quiet: bool = Fa
     profile = load_profile(profile_path)
     plan = expand_plan(profile)
     out = Path(out_dir) if out_dir else profile.output_dir()
+    for i, entry in enumerate(profile.models):
+        if entry.weights.startswith("file:") and not Path(entry.weights[5:]).is_file():
+            raise UserError(f"{profile.source}: models[{i}].weights: {entry.weights[5:]}: checkpoint file not found")
     # Check the dataset before a run directory exists, so a bad path leaves nothing behind.
     needs_data = any(p.config["backend"] != "synthetic" for p in plan.points)
     dataset = steps.prepare_dataset(profile, Path(profile.cache)) if needs_data else None
