@@ -16,6 +16,7 @@ from speedbench.errors import UserError
 SOURCES = ("none", "torchvision", "demo", "file:PATH")
 _WRAPPER_KEYS = ("state_dict", "model", "model_state_dict", "weights")
 _SHA_CACHE: dict[tuple, str] = {}
+DEMO_ROOT = Path(__file__).parent / "weights"   # committed demo weights + manifest.json
 
 
 def parse_weights(weights) -> tuple[str, str]:
@@ -113,7 +114,7 @@ def load_torchvision_cached(url: str, model_id: str) -> dict:
 
 
 def demo_manifest() -> tuple[Path, dict]:
-    root = Path(__file__).parent / "weights"
+    root = Path(DEMO_ROOT)
     path = root / "manifest.json"
     if not path.is_file():
         raise UserError(f"{path}: demo weights manifest not found (the demo zoo is not installed)")
