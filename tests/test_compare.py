@@ -92,22 +92,23 @@ def test_shifted_samples_are_slower_and_stage_named():
     assert compare(new, base).points.iloc[0]["verdict"] == "faster"
 
 
-def test_injected_delay_through_real_measurement(tmp_path):
-    # The harness test backend of speedbench.measure busy-waits a configured time per run:
-    # base 2 ms, new 4 ms (a 100 % slowdown) on the same configuration.
+def test_injected_delay_through_real_measurement():
+    # The harness test backend of speedbench.measure waits a configured time per run. Sleeping
+    # (not spinning) keeps the figures stable on a loaded shared machine: base 5 ms, new 15 ms,
+    # a 3x slowdown on the same configuration, far beyond any scheduling jitter.
     from speedbench.measure import Point, Policy, measure_point
 
-    policy = Policy(warmup_min=2, warmup_max=5, min_reps=25, max_reps=60, max_seconds=1.0, profile_stages=False)
+    policy = Policy(warmup_min=2, warmup_max=5, min_reps=20, max_reps=50, max_seconds=1.0, profile_stages=False)
     img = [np.zeros((16, 16, 3), np.uint8)]
     runs = []
-    for work in (2.0, 4.0):
-        res = measure_point(Point("synthetic", backend="synthetic", size=320, options={"work_ms": work}),
-                            img, policy, timeout_s=60)
+    for work in (5.0, 15.0):
+        point = Point("synthetic", backend="synthetic", size=320, options={"work_ms": work, "mode": "sleep"})
+        res = measure_point(point, img, policy, timeout_s=60)
         assert res.status == "ok", res.reason
-        row = res.to_row()
-        runs.append(_run([row], [res.measurement.samples_ms.tolist()]))
+        runs.append(_run([res.to_row()], [res.measurement.samples_ms.tolist()]))
     c = compare(*runs)
     assert c.points.iloc[0]["verdict"] == "slower" and c.regressed
+    assert c.points.iloc[0]["method"] == "bootstrap"
 
 
 def test_unmatched_failed_and_env_diff():
