@@ -115,8 +115,8 @@ def _measuring_child(pid):
     return None
 
 
-def _kill_mid_point(client, label, run_dir, pid=None, deadline_s=90):
-    """Wait until `label` stored one point and is measuring the next, then SIGKILL its worker.
+def _kill_mid_point(client, label, run_dir, pid=None, deadline_s=90, min_stored=1):
+    """Wait until `label` stored min_stored point(s) and is measuring the next, then SIGKILL its worker.
 
     Returns (killed pid, point id of the point in flight, points stored before the kill)."""
     pid = pid or _worker_pid(client, label)
@@ -124,7 +124,7 @@ def _kill_mid_point(client, label, run_dir, pid=None, deadline_s=90):
     while True:
         assert time.monotonic() < deadline, f"host {label} made no progress"
         stored = _rows(run_dir / "points.sqlite")
-        child = _measuring_child(pid) if stored >= 1 else None
+        child = _measuring_child(pid) if stored >= min_stored else None
         if child is not None:
             try:
                 spec = json.loads(open(child.cmdline()[-1]).read())
@@ -207,11 +207,6 @@ def _wait_label(client, label, present=True, timeout=60):
         time.sleep(0.1)
 
 
-def _fleet_cli(*args):
-    return subprocess.run([sys.executable, "-m", "speedbench.fleet", *map(str, args)],
-                          capture_output=True, text=True, timeout=240)
-
-
 def test_lost_host_records_its_point_in_flight_and_resume_completes_it(cluster, tmp_path):
     cl, client = cluster
     prof = write_profile(tmp_path, sizes="[64, 96, 128]", proposals="[10]")
@@ -247,15 +242,17 @@ def test_lost_host_records_its_point_in_flight_and_resume_completes_it(cluster, 
 
     # Without --resume the existing run directories are refused, nothing is touched.
     seq_a = sqlite3.connect(out / "a" / "points.sqlite").execute("SELECT point_id, seq FROM points").fetchall()
-    got = _fleet_cli(prof, "--cluster", addr, "-o", out, "--hosts", "a")
-    assert got.returncode == 2 and "already holds a run" in got.stderr and "Traceback" not in got.stderr
+    from speedbench.fleet import run_fleet_sweep
+
+    with pytest.raises(UserError, match="already holds a run; resume it"):
+        run_fleet_sweep(prof, addr, out_dir=out, hosts="a")
 
     worker = _start_cli_worker(addr, "c")
     try:
         _wait_label(client, "c")
-        got = _fleet_cli(prof, "--cluster", addr, "-o", out, "--hosts", "a,c", "--resume", "-q")
-        assert got.returncode == 0, got.stderr
-        assert f"c: {out / 'c'}" in got.stdout
+        got = run_fleet_sweep(prof, addr, out_dir=out, hosts="a,c", resume=True, quiet=True,
+                              stream=open(os.devnull, "w"))
+        assert got == {"a": out / "a", "c": out / "c"}
     finally:
         worker.kill()
         worker.wait()
@@ -281,7 +278,52 @@ def test_bad_input_is_a_one_line_error(cluster, tmp_path):
     bad.write_text(prof.read_text().replace('backends = ["synthetic"]', 'backends = ["gpu"]'))
     with pytest.raises(UserError, match=r"bad.toml: sweep.backends\[0\]"):
         run_fleet_sweep(bad, cl.scheduler_address, out_dir=tmp_path / "o")
+    # A dataset the hosts do not have: every host is skipped with the reason, no run directory is made.
+    nodata = tmp_path / "nodata.toml"
+    nodata.write_text(prof.read_text().replace("scenes = {count = 1}", f'path = "{tmp_path}/missing.json"')
+                      .replace('backends = ["synthetic"]', 'backends = ["ort"]')
+                      .replace('id = "synthetic"', 'id = "ssdlite320_mobilenet_v3_large"'))
+    with pytest.raises(UserError, match=r"no host could run .*host a: .*missing.json"):
+        run_fleet_sweep(nodata, cl.scheduler_address, out_dir=tmp_path / "o", stream=open(os.devnull, "w"))
     assert not (tmp_path / "o").exists()   # no error left a directory behind
+
+
+def test_a_point_that_keeps_killing_its_worker_is_recorded_failed(cluster, tmp_path):
+    """Past the scheduler's allowed-failures the point in flight is a failed row; the points
+    queued behind it (caught in the same worker death, never started) are sent again."""
+    cl, client = cluster
+
+    def set_allowed(dask_scheduler, n):
+        old, dask_scheduler.allowed_failures = dask_scheduler.allowed_failures, n
+        return old
+
+    prof = write_profile(tmp_path, sizes="[64]", proposals="[10, 20, 30]")
+    out = tmp_path / "fleet"
+    from speedbench.fleet import run_fleet_sweep
+
+    old = client.run_on_scheduler(set_allowed, n=0)   # the first worker death is already one too many
+    errors = []
+    try:
+        thread = threading.Thread(target=lambda: _catch(errors, run_fleet_sweep, prof, cl.scheduler_address,
+                                                        out_dir=out, hosts="b", quiet=True,
+                                                        stream=open(os.devnull, "w")))
+        thread.start()
+        _, in_flight, _ = _kill_mid_point(client, "b", out / "b", min_stored=0)
+        thread.join(150)
+    finally:
+        client.run_on_scheduler(set_allowed, n=old)
+    assert not thread.is_alive() and not errors, errors
+    df = _assert_plan_equal(out / "b", prof)
+    assert df.loc[in_flight, "status"] == "failed"
+    assert "host b lost during the point (its worker died while running it" in df.loc[in_flight, "reason"]
+    assert (df.drop(index=in_flight)["status"] == "ok").all()
+
+
+def _catch(errors, fn, *args, **kwargs):
+    try:
+        fn(*args, **kwargs)
+    except BaseException as exc:  # surfaced by the test's assertion
+        errors.append(exc)
 
 
 def test_labels_that_would_mix_or_disturb_measurements_are_refused():

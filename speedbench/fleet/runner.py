@@ -178,6 +178,10 @@ class _Fleet:
                 h.state = "skipped"
                 self.say(f"host {h.label}: skipped: {h.setup['error']}")
         ready = [h for h in self.hosts.values() if h.state == "setup"]
+        if not ready:
+            why = "; ".join(f"host {h.label}: {h.setup['error'] if h.setup else 'set-up failed or host lost'}"
+                            for h in self.hosts.values())
+            raise UserError(f"no host could run {self.profile.source}: {why}")
         for h in ready:            # every directory is checked before any is created
             self._check_out(h)
         for h in ready:
@@ -350,7 +354,11 @@ class _Fleet:
         if not candidates or time.monotonic() - self._checked < 1.0:
             return []
         self._checked = time.monotonic()
-        alive = engine.workers_by_label(self.client)
+        try:
+            alive = engine.workers_by_label(self.client)
+        except (OSError, TimeoutError) as exc:   # distributed's CommClosedError is an OSError
+            raise UserError(f"--cluster {self.address}: lost the scheduler ({type(exc).__name__}); the points "
+                            f"written so far are kept: rerun with --resume") from None
         now, out = time.monotonic(), []
         for lb in candidates:
             h = self.hosts[lb]

@@ -123,8 +123,8 @@ def run_point(text: str, source: str, label: str, planned, baseline=None, baseli
         notes.append(f"{busy} other measurement worker(s) were running on this host when the point started")
     if baseline_fps is None and baseline and baseline["row"].get("status") == "ok":
         baseline_fps = baseline["row"].get("fps")
+    needs_data, info = planned.config["backend"] != "synthetic", None
     try:
-        needs_data = planned.config["backend"] != "synthetic"
         dataset = _dataset(profile) if needs_data else None
         images = steps.timing_images(dataset, profile.timing_images)
         policy = steps.make_policy(profile.repetitions)
@@ -135,6 +135,8 @@ def run_point(text: str, source: str, label: str, planned, baseline=None, baseli
     except Exception as exc:  # a harness bug on one point must not cost the others
         row, samples = _failed(planned, profile, f"{type(exc).__name__}: {' '.join(str(exc).split())[:300]}"), []
     finished = time.time()
+    if needs_data and info.path:
+        row["host_graph"] = info.path   # the graph stays on the host (its export cache)
     row["host"] = label
     row["wall_s"] = round(finished - started, 3)
     row["started_unix"], row["finished_unix"] = round(started, 3), round(finished, 3)
