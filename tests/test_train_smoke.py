@@ -20,8 +20,8 @@ def test_few_iterations_lower_the_loss():
 
 def test_training_is_reproducible():
     torch.set_num_threads(2)
-    _, a = train_model("demo_ssdlite", steps=2, batch=1, seed=3)
-    _, b = train_model("demo_ssdlite", steps=2, batch=1, seed=3)
+    _, a = train_model("demo_ssdlite", steps=2, batch=2, seed=3)
+    _, b = train_model("demo_ssdlite", steps=2, batch=2, seed=3)
     assert a["losses"] == b["losses"]
 
 
