@@ -55,6 +55,7 @@ def test_worker_killed_or_crashing_is_a_failed_point(fail, reason):
     assert res.measurement is None
     row = res.to_row()
     assert row["status"] == "failed" and row["reason"] == reason and np.isnan(row["stage_backbone_ms"])
+    assert np.isnan(row["lat_p50_ms"]) and np.isnan(row["fps"])     # same columns as an ok row
 
 
 def test_worker_raising_reports_the_exception():
@@ -95,6 +96,7 @@ def test_options_from_model_id_and_identity():
     a = Point(model="synthetic", backend="synthetic", options={"work_ms": 1})
     b = Point(model="synthetic", backend="synthetic", options={"work_ms": 3})
     assert a.id == b.id                    # options (an injected slowdown) are not identity
+    assert a.exec_mode == "" and a.opt_level == ""     # ORT-only knobs are blank elsewhere (schema)
     from speedbench.measure.backends.synthetic import settings
 
     assert settings(Point(model="synthetic:work_ms=5,alloc_mib=2", backend="synthetic"))["work_ms"] == 5

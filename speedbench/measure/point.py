@@ -36,6 +36,11 @@ class Point:
     graph: str | None = None
     options: dict = field(default_factory=dict)
 
+    def __post_init__(self):
+        # ORT's executor knobs mean nothing elsewhere; schema: "" for eager (and the test backend)
+        if self.backend in ("eager", "synthetic"):
+            self.exec_mode, self.opt_level = "", ""
+
     def config(self) -> dict:
         return {c: getattr(self, c) for c in CONFIG_COLUMNS}
 

@@ -9,6 +9,8 @@ from speedbench.measure.stats import Measurement
 from speedbench.schema import STAGES, stage_column
 
 MEMORY_COLUMNS = ("rss_imports_mib", "rss_loaded_mib", "rss_peak_mib", "model_file_mib")
+LATENCY_COLUMNS = ("n_samples", "lat_min_ms", "lat_mean_ms", "lat_std_ms", "lat_cov",
+                   *[f"lat_p{p}_{k}ms" for p in (50, 90, 99) for k in ("", "ci_lo_", "ci_hi_")], "noisy", "fps")
 NAN = float("nan")
 
 
@@ -34,6 +36,7 @@ class PointResult:
         row["point_id"] = self.point.id
         row["status"] = self.status
         row["reason"] = self.reason
+        row.update({c: NAN for c in LATENCY_COLUMNS})      # same columns for failed points
         if self.measurement is not None:
             row.update(self.measurement.summary())
             p50 = row["lat_p50_ms"]

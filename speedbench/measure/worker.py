@@ -67,6 +67,8 @@ def run_worker(spec: dict) -> dict:
     inputs = [runner.prepare(img) for img in images]
     mem["rss_loaded_mib"] = memory.rss_mib()
     mem["model_file_mib"] = runner.model_file_mib
+    if getattr(runner, "param_mib", None) is not None:
+        extra["param_mib"] = runner.param_mib
 
     warm = timing.warm_up(runner, inputs, policy)
     tracker = memory.PeakTracker(policy.memory_every)

@@ -13,6 +13,7 @@ top level is what remains and is reported as unattributed.
 """
 from __future__ import annotations
 
+import os
 import time
 from collections import defaultdict
 
@@ -45,7 +46,10 @@ class Runner:
         self.spec = get_spec(point.model)
         self.model = build_model(point.model, weights=point.weights, size=point.size or None,
                                  proposals=point.proposals or None).eval()
-        self.model_file_mib = sum(p.numel() * p.element_size() for p in self.model.parameters()) / 2**20
+        # the model file is the weights file when there is one; the parameters' size is kept apart
+        self.param_mib = sum(p.numel() * p.element_size() for p in self.model.parameters()) / 2**20
+        weights_file = point.weights[5:] if str(point.weights).startswith("file:") else None
+        self.model_file_mib = os.path.getsize(weights_file) / 2**20 if weights_file else float("nan")
 
     def prepare(self, image):
         from speedbench.data import to_input
