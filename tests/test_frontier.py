@@ -109,3 +109,10 @@ def test_failed_rows_are_left_out_with_reason_and_bad_columns_rejected():
     assert "timed out" in got.attrs["excluded"]["reason"].iloc[0]
     with pytest.raises(UserError, match="lat_p99_ms"):
         frontier(df.drop(columns=["lat_p50_ms"]).assign(), x="lat_p99_ms")
+
+
+def test_all_failed_gives_an_empty_frontier_with_reasons():
+    df = pd.DataFrame([_row("x", np.nan, np.nan, np.nan, np.nan, status="failed", reason="killed by SIGKILL")])
+    got = frontier(df)
+    assert len(got) == 0 and "frontier_status" in got.columns
+    assert list(got.attrs["excluded"]["reason"]) == ["failed: killed by SIGKILL"]

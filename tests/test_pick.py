@@ -92,3 +92,9 @@ def test_cli_exit_codes(tmp_path, capsys):
     assert main(["pick", str(tmp_path / "run"), "--budget-ms", "1"]) == 1
     assert main(["pick", str(tmp_path / "missing"), "--budget-ms", "15"]) == 2
     assert "run directory not found" in capsys.readouterr().err
+
+
+def test_all_failed_is_a_clear_answer_not_a_crash():
+    p = pick(TABLE[TABLE["status"] == "failed"], 15.0)
+    assert p.best is None and "no configuration was measured successfully" in p.notes
+    assert list(p.excluded["reason"]) == ["failed: raised ValueError: bad graph"]

@@ -183,7 +183,7 @@ def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: 
                      "CIs of the medians (conservative)")
     if len(points) and (points["drift"] == "not recorded").all():
         notes.append("detection drift not recorded in these runs")
-    notes += _load_notes(b, n, np_, bp)
+    notes += [x for x in _load_notes(b, n, np_, bp) if x not in notes]
     return Comparison(points=points, env_diff=env_diff(b.meta, n.meta), unmatched=unmatched,
                       threshold=threshold, confidence=confidence, base_name=b.name, new_name=n.name,
                       fail_on_drift=fail_on_drift, notes=notes)
@@ -192,7 +192,8 @@ def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: 
 def _load_notes(b: Run, n: Run, new_pts, base_pts) -> list[str]:
     """Say when a run was measured on a busy machine or has noisy points: wide intervals follow."""
     out = []
-    for run, pts in ((b, base_pts), (n, new_pts)):
+    pairs = ((b, base_pts), (n, new_pts)) if b.path != n.path or not b.path else ((b, base_pts),)
+    for run, pts in pairs:
         env = run.meta.get("env") or {}
         load, cores = env.get("load_avg"), env.get("cores_logical")
         if isinstance(load, (list, tuple)) and load and cores and float(load[0]) > float(cores):

@@ -98,14 +98,15 @@ def pick(df: pd.DataFrame, budget_ms: float, latency: str = "p50", threads=None,
             why.append(f"{stat} {lat:.2f} ms > budget {budget_ms:g} ms by {lat - budget_ms:.2f} ms")
         over.append(lat - budget_ms if not np.isnan(lat) else np.inf)
         reasons.append("; ".join(why))
-    ok["reason"], ok["over_ms"] = reasons, over
+    ok["reason"] = pd.Series(reasons, index=ok.index, dtype=object)
+    ok["over_ms"] = pd.Series(over, index=ok.index, dtype=float)
     fits = ok[ok["reason"] == ""].copy()
     out_of = ok[ok["reason"] != ""]
     excluded = pd.concat([out_of, bad]) if len(bad) else out_of
     # Closest misses: rows that fail only on the budget, smallest overshoot first.
     only_budget = out_of[out_of["reason"].str.count(";").eq(0) & out_of["reason"].str.contains("> budget")]
     misses = only_budget.sort_values("over_ms").head(3)
-    notes = []
+    notes = [] if len(ok) else ["no configuration was measured successfully"]
     acc = bool(has_accuracy(fits).any()) if len(fits) else bool(has_accuracy(ok).any())
     if len(fits):
         fits["_acc"] = pd.to_numeric(fits["map"], errors="coerce") if "map" in fits.columns else np.nan

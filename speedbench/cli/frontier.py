@@ -49,7 +49,9 @@ def format_table(f, x: str, show_all: bool = False) -> str:
     import pandas as pd
 
     lines = []
-    if len(f) and not f["accuracy_available"].any():
+    if not len(f):
+        lines.append("no configuration was measured successfully: there is no frontier")
+    elif not f["accuracy_available"].any():
         lines.append("accuracy unavailable (untrained weights): ranked by the cost axis only")
     rows = f if show_all else f[f["frontier_status"] != "dominated"]
     head = ["status", "in thread setting", "configuration", x, "mAP", "note"]
@@ -64,7 +66,7 @@ def format_table(f, x: str, show_all: bool = False) -> str:
                 f"dominated by {r['dominated_by']}" if r["dominated_by"] else "")
         body.append([r["frontier_status"], r.get("in_thread_setting", ""), r["label"], val, acc, note])
     widths = [max(len(str(c)) for c in col) for col in zip(head, *body)]
-    for cells in [head] + body:
+    for cells in ([head] + body) if body else []:
         lines.append("  ".join(str(c).ljust(w) for c, w in zip(cells, widths)).rstrip())
     hidden = int((f["frontier_status"] == "dominated").sum()) if not show_all else 0
     if hidden:
