@@ -371,3 +371,29 @@ def test_concurrency_as_a_sweep_axis_then_size(tmp_path, monkeypatch):
     assert len(out) == 1 and "single-stream" in out["k1_source"].iloc[0]
     assert out["scaling_eff"].iloc[0] == pytest.approx(
         df.loc[2, "tput_fps"] / (2 * 1000.0 / df.loc[1, "lat_mean_ms"]))
+
+
+def test_small_real_detector_k1_k2():
+    # ssdlite320_mobilenet_v3_large (untrained, 128 px) exported through speedbench.export, run by
+    # onnxruntime in K = 1 and K = 2 workers. Export is cached (SPEEDBENCH_CACHE), so only the first
+    # run pays for it (~50 s on the shared 2-core machine).
+    from speedbench.data.scenes import render_scene
+    from speedbench.export import export_onnx
+
+    if host_cores() < 2:
+        pytest.skip("needs 2 cores for K=2")
+    rec = export_onnx("ssdlite320_mobilenet_v3_large", size=128, weights="none", verify=False)
+    assert rec.ok, rec.reason
+    rng = np.random.default_rng(0)
+    images = [render_scene(rng, width=160, height=160)[0] for _ in range(2)]
+    point = Point(model="ssdlite320_mobilenet_v3_large", weights="none", size=128, proposals=0, backend="ort",
+                  intra_threads=1, graph=str(rec.path))
+    # min_requests=20 per worker: the window edge effect on L vs X W is about one request in n
+    r1, r2 = measure_scaling(point, images, ks=(1, 2), policy=FAST, seconds=1.0, min_requests=20, timeout_s=300)
+    assert r1.ok and r2.ok, (r1.reason, r2.reason)
+    assert r2.summary["scaling_eff"] == pytest.approx(r2.tput_fps / (2 * r1.tput_fps))
+    for r in (r1, r2):
+        s = r.summary
+        assert s["littles_L"] == pytest.approx(s["littles_XW"], rel=0.10)
+        assert s["tput_cpu_util"] == pytest.approx(s["tput_cpu_util_xs"], rel=0.10)
+        assert s["cores_used"] == r.k and s["tput_rss_total_mib"] > 0
