@@ -78,6 +78,13 @@ def test_sweep_writes_rows_and_keeps_failures(tmp_path):
     run_sweep(prof, out_dir=tmp_path / "run", resume=True, quiet=True, stream=open(os.devnull, "w"))
     after = sqlite3.connect(out / "points.sqlite").execute("SELECT point_id, seq FROM points").fetchall()
     assert sorted(before) == sorted(after)
+    # --retry-failed re-measures exactly the failed points (they fail again: same injected fault)
+    run_sweep(prof, out_dir=tmp_path / "run", resume=True, retry_failed=True, quiet=True,
+              stream=open(os.devnull, "w"))
+    again = dict(sqlite3.connect(out / "points.sqlite").execute("SELECT point_id, seq FROM points").fetchall())
+    old = dict(after)
+    assert set(again) == set(old) and len(load_run(out)) == 6
+    assert {p for p in again if again[p] != old[p]} == set(failed.point_id)
 
 
 def test_resume_with_a_different_profile_is_refused(tmp_path):

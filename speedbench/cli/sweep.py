@@ -13,12 +13,15 @@ def add_parser(subparsers):
     p.add_argument("-o", "--output", metavar="RUN_DIR", help="run directory (default: the profile's run.output)")
     p.add_argument("--resume", action="store_true",
                    help="continue an interrupted run: measure only the points it does not have yet")
+    p.add_argument("--retry-failed", action="store_true",
+                   help="with --resume: measure the points stored as failed again as well")
     p.add_argument("--dry-run", action="store_true", help="print the plan and a time estimate; measure nothing")
     p.add_argument("-q", "--quiet", action="store_true", help="one plain line per point instead of a progress bar")
     p.set_defaults(run=run)
 
 
 def run(args) -> int:
+    from speedbench.errors import UserError
     from speedbench.sweep import expand_plan, load_profile
 
     profile = load_profile(args.profile)
@@ -29,7 +32,9 @@ def run(args) -> int:
         return 0
     from speedbench.sweep.runner import run_sweep
 
-    run_sweep(args.profile, out_dir=out, resume=args.resume, quiet=args.quiet)
+    if args.retry_failed and not args.resume:
+        raise UserError("--retry-failed: only together with --resume")
+    run_sweep(args.profile, out_dir=out, resume=args.resume, quiet=args.quiet, retry_failed=args.retry_failed)
     from speedbench.sweep import load_run
 
     df = load_run(out)

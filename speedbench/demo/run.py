@@ -34,7 +34,8 @@ def run_demo(out_dir=None, quiet: bool = False, budget_ms: float | None = None, 
     resume = (out / "meta.json").exists()
     if resume:
         print(f"{out}: continuing the demo run there (only missing points are measured)", file=stream)
-    run_sweep(profile_path, out_dir=out, resume=resume, quiet=quiet, stream=stream)
+    # A rerun also retries points that failed (for example a worker killed from outside).
+    run_sweep(profile_path, out_dir=out, resume=resume, quiet=quiet, stream=stream, retry_failed=resume)
 
     df = load_run(out)
     return {"run": out, **render(out, df, budget_ms)}

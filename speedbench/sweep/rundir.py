@@ -210,6 +210,10 @@ class RunDir:
         """Ids of every point already stored (measured or failed)."""
         return {r[0] for r in self._db.execute("SELECT point_id FROM points")}
 
+    def failed_ids(self) -> set[str]:
+        """Ids of stored points whose status is "failed"."""
+        return {r["point_id"] for r in self.rows() if r.get("status") == "failed"}
+
     def finish(self) -> None:
         """Stamp the end time into meta.json and regenerate the CSV/Parquet copies."""
         meta = self.meta()

@@ -20,8 +20,12 @@ from speedbench.sweep.rundir import RunDir
 
 
 def run_sweep(profile_path, out_dir=None, resume: bool = False, quiet: bool = False,
-              stream=None) -> Path:
-    """Run (or resume) the sweep described by a profile file; returns the run directory."""
+              stream=None, retry_failed: bool = False) -> Path:
+    """Run (or resume) the sweep described by a profile file; returns the run directory.
+
+    retry_failed (with resume): measure the points stored as failed again too, e.g.
+    after a worker was killed from outside; their new rows replace the failed ones.
+    """
     profile = load_profile(profile_path)
     plan = expand_plan(profile)
     out = Path(out_dir) if out_dir else profile.output_dir()
@@ -33,7 +37,7 @@ def run_sweep(profile_path, out_dir=None, resume: bool = False, quiet: bool = Fa
     dataset = steps.prepare_dataset(profile, Path(profile.cache)) if needs_data else None
     rd = _open_run(profile, out, resume)
     try:
-        run_plan(rd, profile, plan, quiet=quiet, stream=stream, dataset=dataset)
+        run_plan(rd, profile, plan, quiet=quiet, stream=stream, dataset=dataset, retry_failed=retry_failed)
     finally:
         rd.close()
     return out
@@ -72,10 +76,11 @@ def _open_run(profile: Profile, out: Path, resume: bool) -> RunDir:
 
 
 def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stream=None,
-             dataset=None) -> dict:
+             dataset=None, retry_failed: bool = False) -> dict:
     """Measure every point of `plan` not yet in `rd`; returns counts by status."""
     stream = stream or sys.stderr
-    todo = plan.missing(rd.done_ids())
+    done = rd.done_ids() - (rd.failed_ids() if retry_failed else set())
+    todo = plan.missing(done)
     counts = {"ok": 0, "failed": 0, "skipped_done": len(plan.points) - len(todo)}
     rd.update_meta(plan_points=len(plan.points), plan_notes=plan.notes)
     for note in plan.notes:

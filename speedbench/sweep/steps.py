@@ -75,8 +75,11 @@ def make_policy(repetitions: dict):
     from speedbench.measure import Policy
 
     policy = Policy(**repetitions)
+    # A profile that raises only the lower bound keeps a consistent policy.
     if "warmup_max" not in repetitions and policy.warmup_max < policy.warmup_min:
         policy.warmup_max = policy.warmup_min
+    if "max_reps" not in repetitions and policy.max_reps < policy.min_reps:
+        policy.max_reps = policy.min_reps
     policy.validate()
     return policy
 
@@ -250,6 +253,10 @@ def _extra_columns(extra: dict) -> dict:
         out["stop_reason"] = extra["stop"]
     if "seconds" in extra:
         out["timing_s"] = extra["seconds"]
+    tail = (extra.get("stderr_tail") or "").strip().splitlines()
+    if tail:
+        # Last line the worker printed before it failed: often the actual cause.
+        out["worker_stderr"] = tail[-1][-300:]
     return out
 
 
