@@ -179,3 +179,13 @@ def test_cli_exit_codes_and_bad_inputs(tmp_path, capsys):
     assert exc.value.code == 2
     with pytest.raises(UserError, match="--threshold"):
         compare(Run.load(base), Run.load(same), threshold=1.5)
+
+
+def test_accuracy_change_without_intervals_is_reported_not_gated():
+    rng = np.random.default_rng(6)
+    a, b = _samples(rng), _samples(rng)
+    base = _run([_row("m", a, map_ci_lo=np.nan, map_ci_hi=np.nan)], [a])
+    new = _run([_row("m", b, map=0.29, map_ci_lo=np.nan, map_ci_hi=np.nan)], [b])
+    c = compare(base, new)
+    assert c.points.iloc[0]["accuracy"] == "changed (no CI)" and not c.regressed
+    assert "-0.010 (no CI)" in c.to_text()

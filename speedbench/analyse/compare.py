@@ -274,8 +274,12 @@ def _accuracy_delta(rb, rn) -> dict:
     # runs' bootstrap intervals as independent and roughly symmetric.
     hb = (_f(rb.get("map_ci_hi")) - _f(rb.get("map_ci_lo"))) / 2
     hn = (_f(rn.get("map_ci_hi")) - _f(rn.get("map_ci_lo"))) / 2
-    h = math.sqrt(hb * hb + hn * hn) if np.isfinite(hb) and np.isfinite(hn) else 0.0
-    verdict = "lower" if d + h < 0 and d < -1e-12 else ("higher" if d - h > 0 else "unchanged")
+    if not (np.isfinite(hb) and np.isfinite(hn)) or hb + hn <= 0:
+        # Without intervals a difference cannot be told from noise: report it, do not gate on it.
+        verdict = "unchanged" if abs(d) <= 1e-12 else "changed (no CI)"
+        return {"map_delta": d, "map_delta_ci_lo": math.nan, "map_delta_ci_hi": math.nan, "accuracy": verdict}
+    h = math.sqrt(hb * hb + hn * hn)
+    verdict = "lower" if d + h < 0 else ("higher" if d - h > 0 else "unchanged")
     return {"map_delta": d, "map_delta_ci_lo": d - h, "map_delta_ci_hi": d + h, "accuracy": verdict}
 
 
@@ -362,6 +366,8 @@ def _signed(v, unit, digits):
 def _acc(r):
     if not np.isfinite(_f(r.get("map_delta"))):
         return "n/a"
+    if not np.isfinite(_f(r.get("map_delta_ci_lo"))):
+        return f"{r['map_delta']:+.3f} (no CI)"
     return f"{r['map_delta']:+.3f} [{r['map_delta_ci_lo']:+.3f}, {r['map_delta_ci_hi']:+.3f}]"
 
 
