@@ -164,6 +164,13 @@ def test_frontier_drops_dominated_configurations():
     assert set(everything["model"]) == {"a", "b", "c"}
 
 
+def test_plain_table_without_ids_or_host():
+    # a hand-built DataFrame (no point_id, no host) works; B is still dominated by A
+    out = size(table().drop(columns=["point_id", "host"]), 40, 10, server_cores=[8])
+    assert list(out["model"]) == ["a", "c"] and list(out["servers"]) == [4, 8]
+    # C: 10 fps/core -> 80 fps per 8-core server; ceil(400 / 56) = ceil(7.14) = 8
+
+
 def test_scaling_summary_recomputes_efficiency_from_rows():
     configs, excluded = scaling_summary(table().assign(scaling_eff=99.0))  # a stale column is ignored
     a = configs[configs["model"] == "a"].iloc[0]

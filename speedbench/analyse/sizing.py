@@ -151,7 +151,7 @@ def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
         configs.append({
             **_ident(base.iloc[0]),
             **{c: acc_src.get(c, np.nan) for c in ("map", "map_ci_lo", "map_ci_hi")},
-            "point_id": base.iloc[0].get("point_id", ""),
+            "point_id": _config_id(base.iloc[0]),
             "per_core_fps": float(top["tput_fps"]) / float(top["cores_used"]),
             "measured_cores": int(top["cores_used"]),
             "measured_k": k_top,
@@ -163,13 +163,23 @@ def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
             "measured_cpu_util": float(pd.to_numeric(top.get("tput_cpu_util", np.nan), errors="coerce")),
             "paced": _paced_curve(top.get("load_curve")),
         })
-    cols = [*_IDENT, "map", "map_ci_lo", "map_ci_hi", "point_id", "per_core_fps", "measured_cores",
+    cols = [*_IDENT, "host", "map", "map_ci_lo", "map_ci_hi", "point_id", "per_core_fps", "measured_cores",
             "measured_k", "scaling_eff", "x1_fps", "host_cores", "curve", "k1_source",
             "measured_cpu_util", "paced"]
     return pd.DataFrame(configs, columns=cols), pd.DataFrame(excluded, columns=[*_IDENT, "reason"])
 
 
 _IDENT = ("label", *CONFIG_KEY)
+
+
+def _config_id(row) -> str:
+    """The K = 1 point id of a configuration (computed when the table carries none)."""
+    pid = row.get("point_id")
+    if isinstance(pid, str) and pid:
+        return pid
+    from speedbench.schema import point_id
+
+    return point_id({**{c: row.get(c) for c in CONFIG_KEY}, "concurrency": 1})
 
 
 def _ident(row) -> dict:
