@@ -189,3 +189,12 @@ def test_accuracy_change_without_intervals_is_reported_not_gated():
     c = compare(base, new)
     assert c.points.iloc[0]["accuracy"] == "changed (no CI)" and not c.regressed
     assert "-0.010 (no CI)" in c.to_text()
+
+
+def test_thread_setting_change_is_named_not_compared():
+    rng = np.random.default_rng(7)
+    a = _samples(rng)
+    c = compare(_run([_row("m", a, threads=1)], [a]), _run([_row("m", a, threads=2)], [a]))
+    assert len(c.points) == 0 and len(c.unmatched) == 2 and not c.regressed
+    assert any("different thread settings" in n for n in c.notes)
+    assert "nothing was compared" in c.to_text()

@@ -175,7 +175,7 @@ def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: 
         points = points.reset_index(drop=True)
     else:
         points = pd.DataFrame(columns=["point_id", "label", "verdict", "regression", "ratio"])
-    notes = []
+    notes = _thread_change_notes(bi, ni, unmatched)
     if not common:
         notes.append("no configuration appears in both runs: nothing was compared")
     if len(points) and (points["method"] == "recorded CIs").any():
@@ -187,6 +187,28 @@ def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: 
     return Comparison(points=points, env_diff=env_diff(b.meta, n.meta), unmatched=unmatched,
                       threshold=threshold, confidence=confidence, base_name=b.name, new_name=n.name,
                       fail_on_drift=fail_on_drift, notes=notes)
+
+
+THREAD_COLUMNS = ("intra_threads", "inter_threads", "exec_mode", "affinity")
+
+
+def _thread_change_notes(bi: pd.DataFrame, ni: pd.DataFrame, unmatched: pd.DataFrame) -> list[str]:
+    """Unmatched points that differ only in their thread setting: the profile's threads changed."""
+    from speedbench.schema import CONFIG_COLUMNS
+
+    rest = [c for c in CONFIG_COLUMNS if c not in THREAD_COLUMNS]
+
+    def keys(frame, ids):
+        cols = [c for c in rest if c in frame.columns]
+        return {tuple(str(frame.at[p, c]) for c in cols) for p in ids}
+
+    kb = keys(bi, unmatched.loc[unmatched["side"] == "base only", "point_id"])
+    kn = keys(ni, unmatched.loc[unmatched["side"] == "new only", "point_id"])
+    both = kb & kn
+    if not both:
+        return []
+    return [f"{len(both)} configuration(s) appear in both runs with different thread settings; they are "
+            "listed as unmatched, not compared (verdicts compare equal configurations only)"]
 
 
 def _load_notes(b: Run, n: Run, new_pts, base_pts) -> list[str]:
