@@ -38,6 +38,7 @@ class _HostExports:
     """Where prepare_graph keeps its copy of a graph on this host (a run directory's exports/)."""
 
     def __init__(self, path: Path):
+        path.mkdir(parents=True, exist_ok=True)
         self.exports = path
 
 
@@ -135,7 +136,7 @@ def run_point(text: str, source: str, label: str, planned, baseline=None, baseli
     except Exception as exc:  # a harness bug on one point must not cost the others
         row, samples = _failed(planned, profile, f"{type(exc).__name__}: {' '.join(str(exc).split())[:300]}"), []
     finished = time.time()
-    if needs_data and info.path:
+    if info is not None and info.path:
         row["host_graph"] = info.path   # the graph stays on the host (its export cache)
     row["host"] = label
     row["wall_s"] = round(finished - started, 3)
