@@ -174,6 +174,9 @@ def test_cli_exit_codes_and_bad_inputs(tmp_path, capsys):
     (slow / "points.sqlite").write_bytes(b"this is not a database at all" * 100)
     assert main(["compare", str(base), str(slow)]) == 2
     assert "corrupt" in capsys.readouterr().err
+    disjoint = _write(tmp_path / "disjoint", _run([_row("m", a, size=640)], [a]))
+    assert main(["compare", str(base), str(disjoint)]) == 2
+    assert "no configuration in common" in capsys.readouterr().err
     with pytest.raises(SystemExit) as exc:
         main(["compare", str(base), str(same), "--threshold", "lots"])
     assert exc.value.code == 2

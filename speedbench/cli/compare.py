@@ -1,6 +1,7 @@
 """speedbench compare BASE NEW: regression verdict between two runs of one profile.
 
-Exit status: 0 no regression, 1 regression, 2 usage or input error.
+Exit status: 0 no regression, 1 regression, 2 usage or input error (including two runs
+with no configuration in common: a gate must not pass on an empty comparison).
 """
 from __future__ import annotations
 
@@ -41,4 +42,11 @@ def run(args) -> int:
                      fail_on_drift=args.fail_on_drift)
     out = {"text": result.to_text, "md": result.to_markdown, "json": result.to_json}[args.format]()
     print(out)
+    if not len(result.points):
+        # Nothing in common cannot pass a gate silently: treat it as an input problem.
+        import sys
+
+        print(f"speedbench: error: {args.new}: no configuration in common with {args.base}; nothing compared",
+              file=sys.stderr)
+        return 2
     return 1 if result.regressed else 0
