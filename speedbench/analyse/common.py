@@ -115,3 +115,11 @@ def has_accuracy(df: pd.DataFrame, col: str = "map") -> pd.Series:
     if col not in df.columns:
         return pd.Series(False, index=df.index)
     return pd.to_numeric(df[col], errors="coerce").notna()
+
+
+def as_float(v) -> float:
+    """float(v), or NaN for anything that is not a number (None, "", text)."""
+    try:
+        return float(v)
+    except (TypeError, ValueError):
+        return float("nan")

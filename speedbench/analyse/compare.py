@@ -10,19 +10,20 @@ those ratios. A point is *slower* only when the whole interval lies above
 """
 from __future__ import annotations
 
-import html
-import json
 import math
 import zlib
-from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 
-from speedbench.analyse.common import require_columns, split_ok, with_ids
+from speedbench.analyse.common import as_float as _f
+from speedbench.analyse.common import require_columns, with_ids
+from speedbench.analyse.comparison import Comparison
+from speedbench.analyse.rundiff import env_diff, load_notes, thread_change_notes
 from speedbench.analyse.runs import Run, as_run
 from speedbench.errors import UserError
 from speedbench.schema import STAGES
+
 
 N_BOOT = 2000
 MIN_SAMPLES = 5  # fewer raw samples than this: fall back to the recorded CIs of the median
@@ -50,90 +51,6 @@ def _boot_medians(x, n_boot, rng, chunk_elems=4_000_000):
         k = min(step, n_boot - s)
         out[s:s + k] = np.median(x[rng.integers(0, n, size=(k, n))], axis=1)
     return out
-
-
-@dataclass
-class Comparison:
-    points: pd.DataFrame          # one row per matched configuration
-    env_diff: pd.DataFrame        # key, base, new
-    unmatched: pd.DataFrame       # side ("base only" / "new only"), point_id, label
-    threshold: float
-    confidence: float
-    base_name: str = "base"
-    new_name: str = "new"
-    fail_on_drift: bool = False
-    notes: list[str] = field(default_factory=list)
-
-    @property
-    def regressed(self) -> bool:
-        return bool(self.points["regression"].any()) if len(self.points) else False
-
-    def counts(self) -> dict:
-        c = self.points["verdict"].value_counts().to_dict() if len(self.points) else {}
-        return {k: int(v) for k, v in c.items()}
-
-    def _summary(self) -> str:
-        head = "REGRESSION" if self.regressed else "no regression"
-        parts = ", ".join(f"{v} {k}" for k, v in sorted(self.counts().items()))
-        return (f"{head}: {len(self.points)} matched point(s) ({parts or 'none'}); "
-                f"{len(self.unmatched)} unmatched; threshold {self.threshold:.0%}, "
-                f"confidence {self.confidence:.0%}")
-
-    def _table(self) -> list[list[str]]:
-        rows = []
-        for _, r in self.points.iterrows():
-            rows.append([r["label"], _ms(r["base_p50_ms"]), _ms(r["new_p50_ms"]),
-                         _ratio(r), r["verdict"], _signed(r["mem_delta_mib"], "MiB", 0),
-                         _acc(r), r["drift"], r["stage_note"]])
-        return rows
-
-    HEADER = ["configuration", "base p50", "new p50", "ratio [CI]", "verdict",
-              "peak mem", "mAP delta [CI]", "detections", "stages"]
-
-    def to_text(self) -> str:
-        lines = [f"compare {self.base_name} -> {self.new_name}", self._summary(), ""]
-        lines += _aligned(self.HEADER, self._table())
-        if len(self.env_diff):
-            lines += ["", "Environment changes:"]
-            lines += [f"  {r.key}: {r.base} -> {r.new}" for r in self.env_diff.itertuples()]
-        else:
-            lines += ["", "Environment: no recorded difference"]
-        if len(self.unmatched):
-            lines += ["", "Unmatched points (not compared):"]
-            lines += [f"  {r.side}: {r.label} [{r.point_id}]" for r in self.unmatched.itertuples()]
-        lines += [f"Note: {n}" for n in self.notes]
-        return "\n".join(lines)
-
-    def to_markdown(self) -> str:
-        icon = "Regression" if self.regressed else "No regression"
-        out = [f"### speedbench compare: {icon}", "", _md(self._summary()), "",
-               f"Base: `{_md(self.base_name)}` - new: `{_md(self.new_name)}`", "",
-               "| " + " | ".join(self.HEADER) + " |", "|" + "---|" * len(self.HEADER)]
-        for row in self._table():
-            cells = [_md(c) for c in row]
-            cells[4] = f"**{cells[4]}**" if row[4] in ("slower", "failed in new") else cells[4]
-            out.append("| " + " | ".join(cells) + " |")
-        out += ["", "#### Environment changes", ""]
-        if len(self.env_diff):
-            out += ["| key | base | new |", "|---|---|---|"]
-            out += [f"| {_md(r.key)} | {_md(r.base)} | {_md(r.new)} |" for r in self.env_diff.itertuples()]
-        else:
-            out.append("No recorded difference.")
-        if len(self.unmatched):
-            out += ["", "#### Unmatched points (not compared)", ""]
-            out += [f"- {_md(r.side)}: {_md(r.label)} (`{_md(r.point_id)}`)" for r in self.unmatched.itertuples()]
-        if self.notes:
-            out += [""] + [f"> {_md(n)}" for n in self.notes]
-        return "\n".join(out) + "\n"
-
-    def to_json(self) -> str:
-        doc = {
-            "regressed": self.regressed, "threshold": self.threshold, "confidence": self.confidence,
-            "base": self.base_name, "new": self.new_name, "counts": self.counts(),
-            "points": _records(self.points), "env_diff": _records(self.env_diff),
-            "unmatched": _records(self.unmatched), "notes": self.notes,
-        }
-        return json.dumps(doc, indent=2, allow_nan=False, default=str)
 
 
 def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: int = 0,
@@ -175,7 +92,7 @@ def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: 
         points = points.reset_index(drop=True)
     else:
         points = pd.DataFrame(columns=["point_id", "label", "verdict", "regression", "ratio"])
-    notes = _thread_change_notes(bi, ni, unmatched)
+    notes = thread_change_notes(bi, ni, unmatched)
     if not common:
         notes.append("no configuration appears in both runs: nothing was compared")
     if len(points) and (points["method"] == "recorded CIs").any():
@@ -183,49 +100,10 @@ def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: 
                      "CIs of the medians (conservative)")
     if len(points) and (points["drift"] == "not recorded").all():
         notes.append("detection drift not recorded in these runs")
-    notes += [x for x in _load_notes(b, n, np_, bp) if x not in notes]
+    notes += [x for x in load_notes(b, n, np_, bp) if x not in notes]
     return Comparison(points=points, env_diff=env_diff(b.meta, n.meta), unmatched=unmatched,
                       threshold=threshold, confidence=confidence, base_name=b.name, new_name=n.name,
                       fail_on_drift=fail_on_drift, notes=notes)
-
-
-THREAD_COLUMNS = ("intra_threads", "inter_threads", "exec_mode", "affinity")
-
-
-def _thread_change_notes(bi: pd.DataFrame, ni: pd.DataFrame, unmatched: pd.DataFrame) -> list[str]:
-    """Unmatched points that differ only in their thread setting: the profile's threads changed."""
-    from speedbench.schema import CONFIG_COLUMNS
-
-    rest = [c for c in CONFIG_COLUMNS if c not in THREAD_COLUMNS]
-
-    def keys(frame, ids):
-        cols = [c for c in rest if c in frame.columns]
-        return {tuple(str(frame.at[p, c]) for c in cols) for p in ids}
-
-    kb = keys(bi, unmatched.loc[unmatched["side"] == "base only", "point_id"])
-    kn = keys(ni, unmatched.loc[unmatched["side"] == "new only", "point_id"])
-    both = kb & kn
-    if not both:
-        return []
-    return [f"{len(both)} configuration(s) appear in both runs with different thread settings; they are "
-            "listed as unmatched, not compared (verdicts compare equal configurations only)"]
-
-
-def _load_notes(b: Run, n: Run, new_pts, base_pts) -> list[str]:
-    """Say when a run was measured on a busy machine or has noisy points: wide intervals follow."""
-    out = []
-    pairs = ((b, base_pts), (n, new_pts)) if b.path != n.path or not b.path else ((b, base_pts),)
-    for run, pts in pairs:
-        env = run.meta.get("env") or {}
-        load, cores = env.get("load_avg"), env.get("cores_logical")
-        if isinstance(load, (list, tuple)) and load and cores and float(load[0]) > float(cores):
-            out.append(f"{run.name}: load average {float(load[0]):.1f} on {cores} logical cores at the start; "
-                       "the machine was busy, so intervals are wide and fewer verdicts are reached")
-        if "noisy" in pts.columns:
-            k = int(pts["noisy"].fillna(False).astype(bool).sum())
-            if k:
-                out.append(f"{run.name}: {k} point(s) flagged noisy")
-    return out
 
 
 def _samples_by_id(run: Run) -> dict:
@@ -329,82 +207,6 @@ def _stages(rb, rn) -> dict:
     return out
 
 
-# Readings of the moment rather than of the setup: reported as load notes, not as changes.
-VOLATILE_ENV = {"load_avg"}
-
-
-def env_diff(meta_b: dict, meta_n: dict) -> pd.DataFrame:
-    """Flattened environment keys whose values differ (packages, CPU, cores, thread env...)."""
-    fb = _flatten({"host": meta_b.get("host"), **(meta_b.get("env") or {})})
-    fn = _flatten({"host": meta_n.get("host"), **(meta_n.get("env") or {})})
-    rows = [(k, _show(fb.get(k)), _show(fn.get(k))) for k in sorted(set(fb) | set(fn))
-            if fb.get(k) != fn.get(k) and k not in VOLATILE_ENV]
-    return pd.DataFrame(rows, columns=["key", "base", "new"])
-
-
-def _flatten(d, prefix=""):
-    out = {}
-    for k, v in (d or {}).items():
-        key = f"{prefix}{k}"
-        if isinstance(v, dict):
-            out.update(_flatten(v, key + "."))
-        elif v is not None and v != "":
-            out[key] = v
-    return out
-
-
-def _show(v):
-    return "(absent)" if v is None else str(v)
-
-
 def _is_ok(r) -> bool:
     s = r.get("status")
     return not isinstance(s, str) or s in ("", "ok")
-
-
-def _f(v) -> float:
-    try:
-        return float(v)
-    except (TypeError, ValueError):
-        return math.nan
-
-
-def _ms(v):
-    return "-" if not np.isfinite(_f(v)) else f"{v:.2f} ms"
-
-
-def _ratio(r):
-    if not np.isfinite(_f(r["ratio"])):
-        return "-"
-    if not np.isfinite(_f(r["ci_lo"])):
-        return f"{r['ratio']:.3f}"
-    return f"{r['ratio']:.3f} [{r['ci_lo']:.3f}, {r['ci_hi']:.3f}]"
-
-
-def _signed(v, unit, digits):
-    return "-" if not np.isfinite(_f(v)) else f"{v:+.{digits}f} {unit}"
-
-
-def _acc(r):
-    if not np.isfinite(_f(r.get("map_delta"))):
-        return "n/a"
-    if not np.isfinite(_f(r.get("map_delta_ci_lo"))):
-        return f"{r['map_delta']:+.3f} (no CI)"
-    return f"{r['map_delta']:+.3f} [{r['map_delta_ci_lo']:+.3f}, {r['map_delta_ci_hi']:+.3f}]"
-
-
-def _aligned(header, rows):
-    widths = [max(len(str(x)) for x in col) for col in zip(header, *rows)] if rows else [len(h) for h in header]
-    fmt = lambda cells: "  ".join(str(c).ljust(w) for c, w in zip(cells, widths)).rstrip()  # noqa: E731
-    return [fmt(header)] + [fmt(r) for r in rows]
-
-
-def _md(text) -> str:
-    """Escape for a Markdown table cell: HTML special characters and pipes."""
-    return html.escape(str(text)).replace("|", "\\|").replace("\n", " ")
-
-
-def _records(df: pd.DataFrame) -> list[dict]:
-    recs = df.to_dict("records")
-    return [{k: (None if isinstance(v, float) and not math.isfinite(v) else
-                 (v.item() if hasattr(v, "item") else v)) for k, v in r.items()} for r in recs]
