@@ -116,3 +116,27 @@ def test_all_failed_gives_an_empty_frontier_with_reasons():
     got = frontier(df)
     assert len(got) == 0 and "frontier_status" in got.columns
     assert list(got.attrs["excluded"]["reason"]) == ["failed: killed by SIGKILL"]
+
+
+def test_cli_table_plot_and_errors(tmp_path, capsys):
+    from speedbench.cli import main
+    from speedbench.schema import point_id
+    from speedbench.sweep import RunDir
+
+    rd = RunDir.create(tmp_path / "run", "[run]\n", {"profile_name": "t", "host": "h", "env": {}})
+    df = pd.DataFrame([_row("a", 10.0, 0.1, 0.30, 0.01), _row("b", 20.0, 0.1, 0.20, 0.01),
+                       _row("a", 6.0, 0.1, 0.30, 0.01, threads=2)])
+    for r in df.to_dict("records"):
+        cfg = {k: r[k] for k in ("model", "weights", "size", "proposals", "backend", "intra_threads",
+                                 "inter_threads", "exec_mode", "opt_level", "affinity", "concurrency")}
+        rd.write_point(dict(r, point_id=point_id(cfg)), [])
+    rd.close()
+    assert main(["frontier", str(tmp_path / "run"), "--all", "-o", str(tmp_path / "f.png")]) == 0
+    out = capsys.readouterr().out
+    # "a" at 1 thread loses overall to "a" at 2 threads but is the frontier of its own thread setting.
+    line = next(ln for ln in out.splitlines() if "a @ 320 / - / 1t" in ln and ln.startswith("dominated"))
+    assert line.split()[1] == "frontier"
+    assert (tmp_path / "f.png").stat().st_size > 0
+    assert main(["frontier", str(tmp_path / "nope")]) == 2
+    assert main(["frontier", str(tmp_path / "run"), "--axis", "memory"]) == 0  # memory was not recorded
+    assert "a @ 320 / - / 1t: rss_peak_mib not recorded" in capsys.readouterr().out

@@ -25,14 +25,17 @@ def frontier(df: pd.DataFrame, x: str = "lat_p50_ms", y: str = "map", minimize_x
     Rows without accuracy (untrained weights: y is NaN) cannot be placed on a 2-D
     frontier; they form their own group ranked by x only, flagged by
     ``accuracy_available == False``. Failed rows are left out and listed, with their
-    reason, in ``result.attrs["excluded"]``.
+    reason, in ``result.attrs["excluded"]``, as are rows without a value of x.
     Added columns: frontier_status, dominated_by (label), dominated_by_id, tied_with, accuracy_available.
     """
     by = [by] if isinstance(by, str) else list(by or [])
     require_columns(df, [x, *by], "frontier")
     ok, bad = split_ok(df)
     ok["accuracy_available"] = has_accuracy(ok, y)
-    ok = ok[pd.to_numeric(ok[x], errors="coerce").notna()]
+    has_x = pd.to_numeric(ok[x], errors="coerce").notna()
+    if (~has_x).any():  # e.g. memory not recorded for some points: left out, and said so
+        bad = pd.concat([bad, ok[~has_x].assign(reason=f"{x} not recorded")])
+    ok = ok[has_x]
     parts = []
     for _, group in ok.groupby([*by, "accuracy_available"], dropna=False, sort=True):
         parts.append(_mark_group(group, x, y, minimize_x, bool(group["accuracy_available"].iloc[0])))

@@ -50,7 +50,7 @@ def format_table(f, x: str, show_all: bool = False) -> str:
 
     lines = []
     if not len(f):
-        lines.append("no configuration was measured successfully: there is no frontier")
+        lines.append("no usable configuration (all failed, or the cost axis was not recorded): no frontier")
     elif not f["accuracy_available"].any():
         lines.append("accuracy unavailable (untrained weights): ranked by the cost axis only")
     rows = f if show_all else f[f["frontier_status"] != "dominated"]
@@ -73,7 +73,7 @@ def format_table(f, x: str, show_all: bool = False) -> str:
         lines.append(f"({hidden} dominated configuration(s) not shown; --all lists them)")
     ex = f.attrs.get("excluded")
     if ex is not None and len(ex):
-        lines.append(f"{len(ex)} failed configuration(s) left out:")
+        lines.append(f"{len(ex)} configuration(s) left out:")
         lines += [f"  {r['label']}: {r['reason']}" for _, r in ex.iterrows()]
     return "\n".join(lines)
 
