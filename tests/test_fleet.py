@@ -132,20 +132,35 @@ def _kill_mid_point(client, label, run_dir, pid=None, deadline_s=90, min_stored=
                 time.sleep(0.02)
                 continue
             os.kill(pid, signal.SIGKILL)
-            from speedbench.schema import point_id
-
-            return pid, point_id(spec["point"]), stored
+            return pid, _planned_id(run_dir, spec["point"]), stored
         time.sleep(0.02)
 
 
-def _assert_plan_equal(run_dir, profile_path):
-    """The host ran exactly the plan a local sweep of the same profile expands, point for point."""
+# Knobs every row carries as planned (the measure package blanks ORT-only knobs on other backends).
+KEPT = ("model", "weights", "size", "proposals", "backend", "intra_threads", "affinity", "concurrency")
+
+
+def _planned_id(run_dir, point: dict) -> str:
+    """The plan's id of the point a measurement subprocess was given (matched on the kept knobs)."""
+    plan = expand_plan(load_profile(run_dir.parent.parent / "fleet.toml"))
+    (pid,) = [p.point_id for p in plan.points if all(p.config[c] == point[c] for c in KEPT)]
+    return pid
+
+
+def _assert_plan_equal(run_dir, profile_path, local=None):
+    """The host ran exactly the plan a local sweep of the same profile expands, point for point.
+
+    point_id is a digest of the planned configuration, so equal id sets mean equal
+    configurations; `local` (a local sweep's points table) also compares every config column."""
     plan = expand_plan(load_profile(profile_path))
     df = load_run(run_dir).set_index("point_id")
     assert sorted(df.index) == sorted(p.point_id for p in plan.points)
     for p in plan.points:
-        got = {c: df.loc[p.point_id, c] for c in CONFIG_COLUMNS}
-        assert got == p.config, p.point_id
+        assert {c: df.loc[p.point_id, c] for c in KEPT} == {c: p.config[c] for c in KEPT}, p.point_id
+        if local is not None:
+            want = local.set_index("point_id")
+            assert {c: df.loc[p.point_id, c] for c in CONFIG_COLUMNS} == \
+                   {c: want.loc[p.point_id, c] for c in CONFIG_COLUMNS}, p.point_id
     return df
 
 
@@ -154,7 +169,9 @@ def test_fleet_runs_each_host_plan_and_survives_a_killed_worker(cluster, tmp_pat
     prof = write_profile(tmp_path)
     out = tmp_path / "fleet"
     from speedbench.fleet import run_fleet_sweep
+    from speedbench.sweep import run_sweep
 
+    local = load_run(run_sweep(prof, out_dir=tmp_path / "local", quiet=True, stream=open(os.devnull, "w")))
     result, errors = {}, []
 
     def go():
@@ -173,7 +190,7 @@ def test_fleet_runs_each_host_plan_and_survives_a_killed_worker(cluster, tmp_pat
     assert result == {"a": out / "a", "b": out / "b"}
 
     for label in ("a", "b"):
-        df = _assert_plan_equal(out / label, prof)
+        df = _assert_plan_equal(out / label, prof, local)
         assert (df["status"] == "ok").all(), df["reason"].tolist()
         assert (df["host"] == label).all()
         # Dask resources: one point at a time per host, so a host's intervals never overlap.
@@ -353,3 +370,29 @@ def test_without_the_engine_cluster_says_what_to_install(monkeypatch, tmp_path, 
     assert str(err.value) == "fleet sweeps need the optional engine: pip install 'speedbench[fleet]'" == INSTALL_HINT
     assert main([str(prof), "--cluster", "tcp://127.0.0.1:8786"]) == 2
     assert capsys.readouterr().err.strip() == f"speedbench: error: {INSTALL_HINT}"
+
+
+def test_killed_client_keeps_what_it_stored_and_resume_finishes_without_duplicates(cluster, tmp_path):
+    cl, _ = cluster
+    prof = write_profile(tmp_path, sizes="[64, 96, 128]", proposals="[10]")
+    out = tmp_path / "fleet"
+    cmd = [sys.executable, "-m", "speedbench.fleet", str(prof), "--cluster", cl.scheduler_address,
+           "-o", str(out), "--hosts", "a", "-q"]
+    sweep = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    deadline = time.monotonic() + 90
+    while _rows(out / "a" / "points.sqlite") < 1:
+        assert sweep.poll() is None, sweep.stderr.read().decode()
+        assert time.monotonic() < deadline, "fleet sweep made no progress"
+        time.sleep(0.05)
+    sweep.kill()
+    sweep.wait()
+    before = sqlite3.connect(out / "a" / "points.sqlite").execute("SELECT point_id, seq FROM points").fetchall()
+    assert 1 <= len(before) < 3
+    from speedbench.fleet import run_fleet_sweep
+
+    run_fleet_sweep(prof, cl.scheduler_address, out_dir=out, hosts="a", resume=True, quiet=True,
+                    stream=open(os.devnull, "w"))
+    after = sqlite3.connect(out / "a" / "points.sqlite").execute("SELECT point_id, seq FROM points").fetchall()
+    assert set(before) <= set(after)              # stored points are kept, not measured again
+    df = _assert_plan_equal(out / "a", prof)      # the full plan, each point once
+    assert (df["status"] == "ok").all()
