@@ -65,6 +65,12 @@ def test_worker_raising_reports_the_exception():
     assert "Traceback" in res.extra["traceback"]
 
 
+def test_worker_out_of_memory_is_a_failed_point():
+    # cap the worker's address space 1 GiB above what it uses at load, then allocate 4 GiB per run
+    res = measure_point(synthetic(limit_mib=1024, alloc_mib=4096), IMAGES, FAST, timeout_s=60)
+    assert res.status == "failed" and res.reason.startswith("raised MemoryError")
+
+
 def test_hung_worker_times_out_and_group_is_killed():
     import psutil
 

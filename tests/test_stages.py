@@ -166,10 +166,11 @@ def ssdlite_graph() -> str:
     """
     cache = Path(tempfile.gettempdir()) / "speedbench-test-graphs"
     cache.mkdir(exist_ok=True)
-    path = cache / "ssdlite128_bias_t008.onnx"
+    import torch
+
+    path = cache / f"ssdlite128_bias_t008_torch{torch.__version__}.onnx"
     if path.exists():
         return str(path)
-    import torch
     from torchvision.models.detection import ssdlite320_mobilenet_v3_large
 
     torch.manual_seed(0)

@@ -13,6 +13,9 @@ model "synthetic:work_ms=5,alloc_mib=300". Keys:
 - jitter       relative spread of the work, uniform +-jitter, seeded (default 0)
 - alloc_mib    MiB allocated, written and freed in every run
 - load_mib     MiB allocated at load time and held
+- limit_mib    cap the worker's address space (RLIMIT_AS) at load to this many MiB above
+               what it uses then: a later allocation beyond it fails the way an
+               out-of-memory worker does (MemoryError)
 - fail         "abort" | "segv" | "hang" | "raise" | "sigkill"
 - fail_at      "load" (default) or "run"; fail_after: runs before failing at "run"
 - stages       {"backbone": 0.6, ...} fractions of work_ms reported by profile()
@@ -94,6 +97,13 @@ class Runner:
         fail = self.opts.get("fail")
         if fail and self.opts.get("fail_at", "load") == "load":
             _fail(fail)
+        if self.opts.get("limit_mib"):
+            import resource
+
+            import psutil
+
+            cap = psutil.Process().memory_info().vms + int(float(self.opts["limit_mib"]) * 2**20)
+            resource.setrlimit(resource.RLIMIT_AS, (cap, resource.getrlimit(resource.RLIMIT_AS)[1]))
         load_bytes = int(float(self.opts.get("load_mib", 0)) * 2**20)
         self.held = np.ones(load_bytes, dtype=np.uint8) if load_bytes else None
 
