@@ -24,9 +24,15 @@ def label(row) -> str:
     backend = get("backend", None)
     if backend and backend != "ort":
         parts.append(str(backend))
-    host = get("host", None)
-    if isinstance(host, str) and host and get("_show_host", False):
-        parts.append(host)
+    # Knobs shown only when they differ from the usual setting, to keep labels short.
+    if get("exec_mode", "") == "parallel":
+        parts.append("parallel")
+    opt = get("opt_level", "")
+    if isinstance(opt, str) and opt not in ("", "all"):
+        parts.append(f"opt {opt}")
+    pin = _int_or(get("affinity", None))
+    if pin:
+        parts.append(f"{pin} cores")
     return " / ".join(parts)
 
 
@@ -108,6 +114,13 @@ def with_ids(df: pd.DataFrame) -> pd.DataFrame:
             df["point_id"] = ids
     if "label" not in df.columns:
         df["label"] = [label(r) for r in df.to_dict("records")]
+        # Same label for different configurations (e.g. two weights of one model): say which.
+        dup = df["label"].duplicated(keep=False) & ~df["point_id"].duplicated(keep=False)
+        if dup.any() and "weights" in df.columns:
+            df.loc[dup, "label"] = df.loc[dup, "label"] + " / " + df.loc[dup, "weights"].astype(str)
+        dup = df["label"].duplicated(keep=False) & ~df["point_id"].duplicated(keep=False)
+        if dup.any():
+            df.loc[dup, "label"] = df.loc[dup, "label"] + " [" + df.loc[dup, "point_id"].astype(str) + "]"
     return df
 
 
