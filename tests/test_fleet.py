@@ -270,12 +270,17 @@ def test_lost_host_records_its_point_in_flight_and_resume_completes_it(cluster, 
         got = run_fleet_sweep(prof, addr, out_dir=out, hosts="a,c", resume=True, quiet=True,
                               stream=open(os.devnull, "w"))
         assert got == {"a": out / "a", "c": out / "c"}
+        c = _assert_plan_equal(out / "c", prof)
+        assert (c["status"] == "failed").sum() == 1 and c.loc[in_flight, "status"] == "failed"
+        assert load_meta(out / "c")["finished"]
+        # --retry-failed measures the point the lost host had in flight again.
+        run_fleet_sweep(prof, addr, out_dir=out, hosts="c", resume=True, retry_failed=True, quiet=True,
+                        stream=open(os.devnull, "w"))
     finally:
         worker.kill()
         worker.wait()
     c = _assert_plan_equal(out / "c", prof)
-    assert (c["status"] == "failed").sum() == 1 and c.loc[in_flight, "status"] == "failed"
-    assert load_meta(out / "c")["finished"]
+    assert (c["status"] == "ok").all()
     after_a = sqlite3.connect(out / "a" / "points.sqlite").execute("SELECT point_id, seq FROM points").fetchall()
     assert sorted(after_a) == sorted(seq_a)   # a had everything: nothing re-measured
 
@@ -287,6 +292,8 @@ def test_bad_input_is_a_one_line_error(cluster, tmp_path):
     prof = write_profile(tmp_path)
     with pytest.raises(UserError, match=r"--hosts: no worker advertises host label 'zz' \(the cluster has: a, b\)"):
         run_fleet_sweep(prof, cl.scheduler_address, out_dir=tmp_path / "o", hosts="a,zz")
+    with pytest.raises(UserError, match="--retry-failed: only together with --resume"):
+        run_fleet_sweep(prof, cl.scheduler_address, out_dir=tmp_path / "o", retry_failed=True)
     with pytest.raises(UserError, match="--hosts: .* empty host label"):
         run_fleet_sweep(prof, cl.scheduler_address, out_dir=tmp_path / "o", hosts="a,,b")
     with pytest.raises(UserError, match=r"--cluster tcp://127.0.0.1:9: cannot reach the scheduler"):

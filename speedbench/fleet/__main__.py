@@ -19,6 +19,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--cluster", required=True, metavar="ADDRESS", help="Dask scheduler address, e.g. tcp://HOST:8786")
     p.add_argument("-o", "--output", metavar="DIR", help="parent directory of the per-host run directories DIR/<label>/")
     p.add_argument("--resume", action="store_true", help="measure only the points each host's run directory lacks")
+    p.add_argument("--retry-failed", action="store_true",
+                   help="with --resume: measure the points stored as failed again as well")
     p.add_argument("--hosts", metavar="A,B", help="only these host labels (default: every label the cluster advertises)")
     p.add_argument("--lost-after", type=float, default=120.0, metavar="SECONDS",
                    help="a host with no worker for this long is given up on (default 120)")
@@ -34,7 +36,8 @@ def main(argv: list[str] | None = None) -> int:
         from speedbench.fleet import run_fleet_sweep
 
         outs = run_fleet_sweep(args.profile, args.cluster, out_dir=args.output, resume=args.resume,
-                               hosts=args.hosts, quiet=args.quiet, lost_after_s=args.lost_after)
+                               hosts=args.hosts, quiet=args.quiet, lost_after_s=args.lost_after,
+                               retry_failed=args.retry_failed)
     except UserError as exc:
         print(f"speedbench: error: {exc}", file=sys.stderr)
         return 2

@@ -46,15 +46,20 @@ class _Host:
 
 def run_fleet_sweep(profile_path, cluster, out_dir=None, resume: bool = False, hosts=None,
                     quiet: bool = False, stream=None, lost_after_s: float = 120.0,
-                    poll_s: float = 0.25, connect_timeout_s: float = 20.0) -> dict[str, Path]:
+                    retry_failed: bool = False, poll_s: float = 0.25,
+                    connect_timeout_s: float = 20.0) -> dict[str, Path]:
     """Run (or resume) a profile on every host of a Dask cluster; returns {host label: run directory}.
 
     cluster: scheduler address ("tcp://HOST:8786"), a dask Cluster or Client.
     hosts: labels to use ("a,b" or a list); default every label the cluster advertises.
     out_dir: parent of the per-host run directories OUT/<label>/ (default: the
     profile's run.output with {host} filled in, or run.output/<label>).
+    retry_failed (with resume): measure the points stored as failed again too
+    (e.g. the point a lost host had in flight); new rows replace the failed ones.
     """
     engine.require_engine()
+    if retry_failed and not resume:
+        raise UserError("--retry-failed: only together with --resume")
     from speedbench.sweep.plan import expand_plan
     from speedbench.sweep.profile import load_profile
 
@@ -64,7 +69,7 @@ def run_fleet_sweep(profile_path, cluster, out_dir=None, resume: bool = False, h
     client, owned = engine.connect(cluster, timeout_s=connect_timeout_s)
     try:
         return _Fleet(client, profile, out_dir, resume, wanted, quiet, stream or sys.stderr,
-                      lost_after_s, poll_s).run()
+                      lost_after_s, poll_s, retry_failed).run()
     finally:
         if owned:
             client.close()
@@ -83,8 +88,9 @@ def same_study(a, b) -> bool:
 
 
 class _Fleet:
-    def __init__(self, client, profile, out_dir, resume, wanted, quiet, stream, lost_after_s, poll_s):
-        self.client, self.profile, self.resume = client, profile, resume
+    def __init__(self, client, profile, out_dir, resume, wanted, quiet, stream, lost_after_s, poll_s,
+                 retry_failed=False):
+        self.client, self.profile, self.resume, self.retry_failed = client, profile, resume, retry_failed
         self.out_dir = Path(out_dir) if out_dir else None
         self.wanted, self.quiet, self.stream = wanted, quiet, stream
         self.lost_after_s, self.poll_s = lost_after_s, poll_s
@@ -228,8 +234,10 @@ class _Fleet:
                      f"this client {speedbench.__version__}")
         if (h.out / "meta.json").exists():
             rd = RunDir.open(h.out)
-            resumed = list(rd.meta().get("fleet_resumed", []))
-            rd.update_meta(fleet_resumed=resumed + [{"at": now_iso(), **fleet, "env": h.setup["env"]}])
+            meta = rd.meta()
+            rd.update_meta(resumed=list(meta.get("resumed") or []) + [now_iso()], finished=None,
+                           fleet_resumed=list(meta.get("fleet_resumed") or [])
+                           + [{"at": now_iso(), **fleet, "env": h.setup["env"]}])
             return rd
         meta = {"profile_name": self.profile.name, "host": h.label, "profile_source": self.profile.source,
                 "env": h.setup["env"], "fleet": fleet}
@@ -246,7 +254,7 @@ class _Fleet:
         for h in self.hosts.values():
             if h.state != "running":
                 continue
-            done = h.rd.done_ids()
+            done = h.rd.done_ids() - (h.rd.failed_ids() if self.retry_failed else set())
             todo = h.plan.missing(done)
             h.counts["skipped_done"] = len(h.plan.points) - len(todo)
             h.rd.update_meta(plan_points=len(h.plan.points), plan_notes=h.plan.notes)

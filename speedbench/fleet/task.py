@@ -93,6 +93,11 @@ def host_setup(text: str, source: str, label: str) -> dict:
     out = {"env": environment_fingerprint(), "version": speedbench.__version__,
            "hostname": os.uname().nodename, "plan": None, "error": ""}
     try:
+        for i, entry in enumerate(profile.models):
+            # A checkpoint is read where the graph is exported: on this host.
+            if entry.weights.startswith("file:") and not Path(entry.weights[5:]).is_file():
+                raise UserError(f"{profile.source}: models[{i}].weights: {entry.weights[5:]}: "
+                                f"checkpoint file not found on this host")
         out["plan"] = expand_plan(profile)
         if _needs_data(out["plan"]):
             _dataset(profile)   # checked before the client creates this host's run directory
