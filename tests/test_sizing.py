@@ -292,3 +292,16 @@ def test_cli_missing_run_and_run_without_throughput(tmp_path, capsys):
     rd.close()
     assert main(["size", str(tmp_path / "lat"), "--streams", "1", "--fps", "1"]) == 2
     assert "no throughput data" in capsys.readouterr().err
+
+
+def test_text_calls_out_noise_and_untrained_weights():
+    from speedbench.cli.size import render_text
+
+    df = table()
+    df.loc[df["model"] == "a", "weights"] = "none"
+    df.loc[(df["model"] == "a") & (df["concurrency"] == 2), "tput_fps"] = 55.0  # 55 / (2 x 25) = 1.1
+    out = size(df, 40, 10, server_cores=[8])
+    a = out[out["model"] == "a"].iloc[0]
+    assert a["scaling_eff"] == pytest.approx(1.1) and a["untrained"]
+    text = render_text(out, with_p99=False, with_cost=False)
+    assert "above 1 is measurement noise" in text and "untrained weights" in text

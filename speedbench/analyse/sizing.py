@@ -59,7 +59,7 @@ SIZE_COLUMNS = [
     "server_cores", "workers_per_server", "servers", "provisioned_cores", "capacity_fps",
     "utilisation", "in_flight", "expected_p99_ms", "p99_at_util", "p99_beyond_measured",
     "meets_p99", "cost_per_mframe", "extrapolated", "assumption", "p99_note", "k1_source",
-    "measured_cpu_util",
+    "measured_cpu_util", "untrained",
 ]
 
 
@@ -162,10 +162,11 @@ def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
             "k1_source": k1_source,
             "measured_cpu_util": float(pd.to_numeric(top.get("tput_cpu_util", np.nan), errors="coerce")),
             "paced": _paced_curve(top.get("load_curve")),
+            "untrained": bool(acc_src.get("untrained", False) is True or str(acc_src.get("weights")) == "none"),
         })
     cols = [*_IDENT, "host", "map", "map_ci_lo", "map_ci_hi", "point_id", "per_core_fps", "measured_cores",
             "measured_k", "scaling_eff", "x1_fps", "host_cores", "curve", "k1_source",
-            "measured_cpu_util", "paced"]
+            "measured_cpu_util", "paced", "untrained"]
     return pd.DataFrame(configs, columns=cols), pd.DataFrame(excluded, columns=[*_IDENT, "reason"])
 
 
@@ -216,7 +217,7 @@ def _size_one(cfg: dict, shape: int, required: float, p99_ms, headroom: float, c
     workers = shape // threads
     row = {k: cfg.get(k) for k in ("label", "model", "size", "proposals", "backend", "intra_threads",
                                    "map", "frontier_status", "per_core_fps", "measured_cores", "scaling_eff",
-                                   "k1_source", "measured_cpu_util")}
+                                   "k1_source", "measured_cpu_util", "untrained")}
     row.update(required_fps=required, cores_needed=cores_needed, server_cores=shape,
                workers_per_server=workers, extrapolated=shape > measured_cores)
     if workers == 0:

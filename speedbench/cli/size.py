@@ -54,6 +54,12 @@ def render_text(table, with_p99: bool, with_cost: bool) -> str:
         first = group.iloc[0]
         lines.append(f"{label}: {first['per_core_fps']:.3g} fps/core, scaling efficiency "
                      f"{first['scaling_eff']:.2f} at {int(first['measured_cores'])} measured cores")
+        if first["scaling_eff"] > 1.05:
+            lines.append("  note: scaling efficiency above 1 is measurement noise (the K=1 run got less of "
+                         "the host than its share); rerun on a quiet host before trusting the sizing")
+        if bool(first.get("untrained", False)):
+            lines.append("  note: untrained weights: NMS typically sees far more candidates than with trained weights, "
+                         "so throughput is not that of the deployed model")
         util = first.get("measured_cpu_util", float("nan"))
         if util == util and util < CONTENDED_CPU_UTIL:
             lines.append(f"  note: its workers got only {util:.0%} of their cores' CPU time while measured "
