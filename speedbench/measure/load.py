@@ -254,6 +254,7 @@ def measure_load(point, images, k: int | None = None, policy=None, timeout_s: fl
                 "cores": allowed[i * per_worker:(i + 1) * per_worker] if per_worker else None,
                 "policy": policy.to_dict(), "ready": str(tmp / f"ready.{i}"), "go": str(tmp / "go.json"),
                 "result": str(tmp / f"result.{i}.json"), "index": i,
+                "parent_pid": os.getpid(), "timeout_s": timeout_s,
                 # paced: worker i gets every K-th frame of one clock at offered_fps
                 "period_ns": int(k * 1e9 / offered_fps) if offered_fps else 0,
                 "phase_ns": int(i * 1e9 / offered_fps) if offered_fps else 0,
@@ -456,9 +457,24 @@ def _write_json(path: Path, obj) -> None:
 
 
 # --------------------------------------------------------------------------- worker side
+def _watch_parent(parent_pid: int) -> None:
+    """Exit this worker if the parent goes away (killed with SIGKILL, nobody left to stop us)."""
+    import threading
+
+    def watch():
+        while True:
+            if os.getppid() != parent_pid:
+                os._exit(3)
+            time.sleep(0.5)
+
+    threading.Thread(target=watch, daemon=True).start()
+
+
 def _worker_main(spec_path: str) -> int:
     spec = _read_json(spec_path)
     result_path = Path(spec["result"])
+    if spec.get("parent_pid"):
+        _watch_parent(int(spec["parent_pid"]))
     try:
         if spec.get("cores"):
             os.sched_setaffinity(0, spec["cores"])
@@ -474,7 +490,10 @@ def _worker_main(spec_path: str) -> int:
         warm_ms = warm["samples_ms"][-max(1, policy.warmup_window):] or [0.0]
         _write_json(Path(spec["ready"]), {"warmup_p50_ms": float(np.median(warm_ms)), "pid": os.getpid()})
         go = Path(spec["go"])
+        give_up = time.monotonic() + float(spec.get("timeout_s", 600))
         while not go.exists():
+            if time.monotonic() > give_up:  # a parent that gave up never writes the go file
+                return 3
             time.sleep(0.002)
         times = _read_json(go)
         start_ns, end_ns = times["start_ns"], times["end_ns"]
