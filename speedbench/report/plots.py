@@ -182,7 +182,7 @@ def plot_stages(df: pd.DataFrame, path=None, svg: bool = False) -> Figure:
     ax.invert_yaxis()
     ax.set_xlabel("time per image (ms), profiled pass")
     ax.set_title("Where the time goes, per stage", fontsize=11)
-    ax.legend(fontsize=8, loc="lower right")
+    ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0))  # outside: never hides a bar
     ax.grid(axis="x", alpha=0.3)
     return _done(fig, path, svg)
 
@@ -266,6 +266,6 @@ def plot_memory(df: pd.DataFrame, path=None, svg: bool = False) -> Figure:
     ax.invert_yaxis()
     ax.set_xlabel("worker resident memory (MiB)")
     ax.set_title("Memory per configuration", fontsize=11)
-    ax.legend(fontsize=8, loc="lower right")
+    ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0))  # outside: never hides a bar
     ax.grid(axis="x", alpha=0.3)
     return _done(fig, path, svg)
