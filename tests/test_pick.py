@@ -98,3 +98,8 @@ def test_all_failed_is_a_clear_answer_not_a_crash():
     p = pick(TABLE[TABLE["status"] == "failed"], 15.0)
     assert p.best is None and "no configuration was measured successfully" in p.notes
     assert list(p.excluded["reason"]) == ["failed: raised ValueError: bad graph"]
+
+
+def test_noisy_pick_is_flagged():
+    t = pd.DataFrame([_row("n", 10.0, 0.3, noisy=True, lat_cov=0.25)])
+    assert any("flagged noisy (CoV 25%)" in n for n in pick(t, 15.0, latency="p90").notes)
