@@ -119,7 +119,8 @@ class _Fleet:
     def _on_event(self, event) -> None:
         # Runs on the client's event-loop thread; plain dict/set updates are safe under the GIL.
         _, msg = event
-        if isinstance(msg, dict) and "label" in msg:
+        # Every fleet sweep on the cluster logs to the topic; only this sweep's tasks count.
+        if isinstance(msg, dict) and "label" in msg and str(msg.get("key", "")).endswith(self.token):
             self.running[msg["label"]] = msg["point_id"]
             self.started.add((msg["label"], msg["point_id"]))
 
@@ -131,9 +132,9 @@ class _Fleet:
         by_label = engine.workers_by_label(self.client)
         labels = engine.check_labels(by_label, self.address, self.wanted)
         shared = engine.shared_machines(by_label, labels)
-        for label, others in shared.items():
-            self.say(f"warning: host {label} shares a machine ({by_label[label][0]['ip']}) with "
-                     f"{', '.join(others)}: their points may run at the same time and disturb each other")
+        for group in sorted({tuple(sorted([lb, *others])) for lb, others in shared.items()}):
+            self.say(f"warning: hosts {', '.join(group)} share one machine ({by_label[group[0]][0]['ip']}): "
+                     f"their points run at the same time and disturb each other; do not compare their latencies")
         now = time.monotonic()
         self.hosts = {lb: _Host(label=lb, out=self.out_for(lb), last_seen=now) for lb in labels}
         self._note_absent_runs(labels)

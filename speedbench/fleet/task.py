@@ -118,7 +118,9 @@ def run_point(text: str, source: str, label: str, planned, baseline=None, baseli
     from speedbench.sweep import steps
 
     worker_label(label)
-    get_worker().log_event(TOPIC, {"label": label, "point_id": planned.point_id, "pid": os.getpid()})
+    worker = get_worker()
+    worker.log_event(TOPIC, {"label": label, "point_id": planned.point_id, "key": str(worker.get_current_task()),
+                             "pid": os.getpid()})
     profile = _profile(text, source)
     started = time.time()
     notes = []
