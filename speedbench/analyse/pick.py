@@ -128,7 +128,8 @@ def pick(df: pd.DataFrame, budget_ms: float, latency: str = "p50", threads=None,
         if best["_hi"] > budget_ms:
             notes.append(f"the {stat} CI of the pick reaches {best['_hi']:.2f} ms, past the budget: "
                          "a rerun may not fit")
-        if bool(best.get("noisy", False) is True):
+        noisy = best.get("noisy", False)
+        if isinstance(noisy, (bool, np.bool_)) and noisy:
             cov = best.get("lat_cov")
             spread = f" (CoV {cov:.0%})" if cov is not None and pd.notna(cov) else ""
             notes.append(f"the pick was flagged noisy{spread}: remeasure it on a quiet machine before relying on it")
