@@ -106,6 +106,7 @@ def test_options_from_model_id_and_identity():
     from speedbench.measure.backends.synthetic import settings
 
     assert settings(Point(model="synthetic:work_ms=5,alloc_mib=2", backend="synthetic"))["work_ms"] == 5
+    assert settings(Point(model="synthetic", backend="synthetic", options={"delay_ms": 7}))["work_ms"] == 7
 
 
 def test_images_from_files(tmp_path):
@@ -126,6 +127,7 @@ def test_images_from_files(tmp_path):
     (Point(model="x", backend="synthetic", intra_threads=-1), "'intra_threads'"),
     (Point(model="x", backend="synthetic", affinity=4096), "'affinity'"),
     (Point(model="x", backend="ort", exec_mode="fast", graph=__file__), "'exec_mode'"),
+    (Point(model="x", backend="synthetic", options={"wrok_ms": 3}), "unknown synthetic setting 'wrok_ms'"),
 ])
 def test_bad_points_are_user_errors(point, message):
     with pytest.raises(UserError, match=message):
@@ -152,3 +154,20 @@ def test_corrupt_graph_is_a_failed_point_not_a_crash(tmp_path):
     graph.write_bytes(b"\x00garbage")
     res = measure_point(Point(model="x", backend="ort", graph=str(graph)), IMAGES, FAST, timeout_s=60)
     assert res.status == "failed" and res.reason.startswith("raised ")
+
+
+def test_cli_measure_synthetic_and_bad_input(tmp_path, capsys):
+    import json
+
+    from speedbench.cli import main
+
+    out = tmp_path / "res.json"
+    rc = main(["measure", "--backend", "synthetic", "--model", "synthetic", "--scenes", "2", "--max-seconds", "0.5",
+               "--min-reps", "5", "--json", "-o", str(out)])
+    row = json.loads(capsys.readouterr().out)
+    assert rc == 0 and row["status"] == "ok" and row["n_samples"] >= 5
+    assert len(json.loads(out.read_text())["samples_ms"]) == row["n_samples"]
+    assert main(["measure", str(tmp_path / "missing.onnx")]) == 2
+    assert "missing.onnx: ONNX graph file not found" in capsys.readouterr().err
+    assert main(["measure", "--backend", "synthetic", "--model", "s", "--images", str(tmp_path / "nope")]) == 2
+    assert main(["measure", "--backend", "synthetic", "--model", "s", "--threads", "-2"]) == 2

@@ -189,6 +189,16 @@ def summarise(workers: list[dict], start_ns: int, end_ns: int, cores_used: int) 
     return out
 
 
+def completed_latencies_ms(workers: list[dict], start_ns: int, end_ns: int) -> list[float]:
+    """Latency (from arrival) of every request that completed inside [start_ns, end_ns]."""
+    lat = []
+    for w in workers:
+        s, e = np.asarray(w["starts_ns"], dtype=np.int64), np.asarray(w["ends_ns"], dtype=np.int64)
+        done = (e >= start_ns) & (e <= end_ns)
+        lat.extend(((e[done] - s[done]) / 1e6).tolist())
+    return lat
+
+
 # --------------------------------------------------------------------------- parent side
 def host_cores() -> int:
     """Cores this process may run on (affinity / cgroup aware where Linux tells us)."""
@@ -386,7 +396,9 @@ def _run_workers(point, k, specs, tmp: Path, window: float, min_requests: int, t
             time.sleep(0.01)
         # Stretch the window so the slowest worker completes about min_requests requests.
         slowest_ms = max(r.get("warmup_p50_ms", 0.0) for r in ready)
-        window = max(window, min_requests * slowest_ms / 1000.0)
+        stretched = max(window, min_requests * slowest_ms / 1000.0)
+        # ... but leave half of the remaining time budget for draining and reporting.
+        window = min(stretched, max(window, 0.5 * (deadline - time.monotonic())))
         lead_ns = 200_000_000  # 0.2 s for every worker to see the go file
         start_ns = time.monotonic_ns() + lead_ns
         end_ns = start_ns + int(window * 1e9)
@@ -413,11 +425,7 @@ def _run_workers(point, k, specs, tmp: Path, window: float, min_requests: int, t
     cores_used = k * (point.affinity or point.intra_threads)
     summary = summarise(workers, start_ns, end_ns, cores_used)
     summary["tput_rss_total_mib"] = float(sum(w.get("rss_peak_mib", NAN) for w in workers))
-    lat = []
-    for w in workers:
-        s, e = np.asarray(w["starts_ns"]), np.asarray(w["ends_ns"])
-        done = (e >= start_ns) & (e <= end_ns)
-        lat.extend(((e[done] - s[done]) / 1e6).tolist())
+    lat = completed_latencies_ms(workers, start_ns, end_ns)
     if not lat:
         return LoadResult(point, k, "failed", "no request completed inside the measurement window",
                           summary=summary, workers=workers)

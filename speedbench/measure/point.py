@@ -80,6 +80,13 @@ class Point:
                 raise UserError(f"{self.graph}: ONNX graph file not found")
         if not isinstance(self.options, dict):
             raise UserError(f"point field 'options': expected a table/dict, got {type(self.options).__name__}")
+        if self.backend == "synthetic":
+            from speedbench.measure.backends.synthetic import settings
+
+            try:
+                settings(self)
+            except ValueError as exc:
+                raise UserError(f"point field 'options': {exc}") from None
 
 
 @dataclass

@@ -8,7 +8,8 @@ real worker can (abort, segfault, hang, raise, be SIGKILLed).
 Settings come from Point.options (not part of the point's identity), with
 key=value pairs after "synthetic:" in the model id as a fallback, e.g.
 model "synthetic:work_ms=5,alloc_mib=300". Keys:
-- work_ms      time one run takes (default: 2 ms x (size/320)^2 + 0.002 ms x proposals)
+- work_ms      time one run takes (default: 2 ms x (size/320)^2 + 0.002 ms x proposals);
+               delay_ms is accepted as another name for it
 - mode         "busy" (spin on the CPU, default) or "sleep"
 - jitter       relative spread of the work, uniform +-jitter, seeded (default 0)
 - alloc_mib    MiB allocated, written and freed in every run
@@ -32,7 +33,12 @@ TIMED_REGION = "synthetic: one busy-wait/sleep of work_ms (+ alloc_mib written a
 DEFAULT_STAGES = {"preprocess": 0.1, "backbone": 0.5, "head": 0.3, "postprocess": 0.1}
 
 
+KEYS = ("work_ms", "delay_ms", "mode", "jitter", "seed", "alloc_mib", "load_mib", "limit_mib",
+        "fail", "fail_at", "fail_after", "stages")
+
+
 def settings(point) -> dict:
+    """The synthetic settings of a point; ValueError naming an unknown key."""
     opts = {}
     model = point.model or ""
     if ":" in model:
@@ -41,6 +47,11 @@ def settings(point) -> dict:
                 k, v = item.split("=", 1)
                 opts[k.strip()] = _number(v.strip())
     opts.update(point.options or {})
+    unknown = sorted(set(opts) - set(KEYS))
+    if unknown:
+        raise ValueError(f"unknown synthetic setting {unknown[0]!r} (known: {', '.join(KEYS)})")
+    if "delay_ms" in opts:
+        opts.setdefault("work_ms", opts.pop("delay_ms"))
     if "work_ms" not in opts:
         size = point.size or 320
         opts["work_ms"] = 2.0 * (size / 320) ** 2 + 0.002 * (point.proposals or 0)
