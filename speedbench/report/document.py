@@ -147,7 +147,7 @@ def build(runs, budget_ms=None, latency: str = "p50", title: str | None = None) 
     blocks.append(("table", ["configuration", "p50", "p90", "p99", "CoV", "n", "fps", "peak MiB", "mAP", "noisy"],
                    [[r["label"], _num(r.get("lat_p50_ms"), 2), _num(r.get("lat_p90_ms"), 2), _num(r.get("lat_p99_ms"), 2),
                      _num(r.get("lat_cov"), 3), _num(r.get("n_samples"), 0), _num(r.get("fps"), 1),
-                     _num(r.get("rss_peak_mib"), 0), _num(r.get("map"), 3), "yes" if r.get("noisy") is True else ""]
+                     _num(r.get("rss_peak_mib"), 0), _num(r.get("map"), 3), "yes" if _flag(r.get("noisy")) else ""]
                     for _, r in ok.sort_values(col).iterrows()]))
     if len(failed):
         blocks.append(("p", f"{len(failed)} configuration(s) failed and are excluded:"))
@@ -280,3 +280,8 @@ def _map_ci(r) -> str:
         return "n/a"
     lo, hi = _num(r.get("map_ci_lo"), 3), _num(r.get("map_ci_hi"), 3)
     return f"{m} [{lo}, {hi}]" if lo and hi else m
+
+
+def _flag(v) -> bool:
+    # A flag column may hold numpy booleans, Python booleans or NaN (not recorded).
+    return isinstance(v, (bool, np.bool_)) and bool(v)
