@@ -10,6 +10,10 @@ from speedbench.analyse.common import bounds, has_accuracy, latency_col, require
 from speedbench.errors import UserError
 
 
+CAUTION = ("Caution: measured on one machine with a small image set; a safety-relevant deployment "
+           "needs its own validation on the target hardware and data.")
+
+
 @dataclass
 class Pick:
     budget_ms: float
@@ -46,6 +50,7 @@ class Pick:
             lines.append(f"Excluded ({len(self.excluded)}):")
             for _, r in self.excluded.iterrows():
                 lines.append(f"  {r['label']}: {r['reason']}")
+        lines.append(CAUTION)
         return "\n".join(lines)
 
 
