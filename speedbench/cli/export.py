@@ -13,7 +13,6 @@ def add_parser(subparsers):
                    "default: the model's native size")
     p.add_argument("--proposals", type=int, default=None, help="proposal / candidate budget; default: the model's")
     p.add_argument("--weights", default=None, help="none | torchvision | demo | file:PATH (default: the model's)")
-    p.add_argument("--num-classes", type=int, default=None, help=argparse_suppress())
     p.add_argument("--opset", type=int, default=17, help="ONNX opset (default 17)")
     p.add_argument("-o", "--out", default=None, help="also copy the verified graph here (record next to it)")
     p.add_argument("--cache-dir", default=None, help="export cache (default $SPEEDBENCH_CACHE or "
@@ -23,12 +22,6 @@ def add_parser(subparsers):
     p.add_argument("--json", action="store_true", help="print the export record as JSON")
     p.set_defaults(run=run)
     return p
-
-
-def argparse_suppress():
-    import argparse
-
-    return argparse.SUPPRESS
 
 
 def run(args) -> int:

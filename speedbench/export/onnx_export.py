@@ -177,7 +177,7 @@ def export_onnx(model_id, size=None, proposals=None, weights="none", opset=DEFAU
             _export_into(record, model, spec, onnx_path, opset, size)
         if record.ok and verify:
             _verify_into(record, model, spec, onnx_path, opset, size, proposals)
-        if kind == "none":
+        if kind == "none" and not record.notes:
             record.notes.append("untrained weights: accuracy is not reported, and postprocess/NMS time is "
                                 "unrepresentative (untrained scores flood NMS)")
         record.seconds = round(time.perf_counter() - started, 2)

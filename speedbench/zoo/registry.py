@@ -37,11 +37,11 @@ _SSD = {"preprocess": ("transform",), "backbone": ("backbone", "backbone.feature
         "neck": ("backbone.extra",), "head": ("head",), "postprocess": ("anchor_generator", "")}
 
 
-def _tv(id, weights, family, native, dets, thresh, props, scopes, arch, notes=""):
+def _tv(id, weights, family, native, dets, thresh, props, scopes, arch, notes="", min_size=32):
     return ModelSpec(id=id, builder=f"torchvision.models.detection.{id}", family=family,
                      native_size=native, detections_per_img=dets, score_thresh=thresh,
                      default_proposals=props, stage_scopes=scopes, num_classes=91,
-                     weights_enum=f"{weights}.COCO_V1", arch=arch, notes=notes)
+                     weights_enum=f"{weights}.COCO_V1", arch=arch, notes=notes, min_size=min_size)
 
 
 # Values are torchvision 0.29's builder defaults; tests/test_zoo.py checks them against
@@ -62,7 +62,8 @@ TORCHVISION_SPECS = (
     _tv("retinanet_resnet50_fpn_v2", "RetinaNet_ResNet50_FPN_V2_Weights", "one-stage", 800, 300, 0.05, 1000,
         _DENSE, "RetinaNet"),
     _tv("fcos_resnet50_fpn", "FCOS_ResNet50_FPN_Weights", "one-stage", 800, 100, 0.2, 1000, _DENSE, "FCOS"),
-    _tv("ssd300_vgg16", "SSD300_VGG16_Weights", "one-stage", 300, 200, 0.01, 400, _SSD, "SSD"),
+    # Below 268 px the last unpadded 3x3 extra layers of SSD300 have nothing left to convolve.
+    _tv("ssd300_vgg16", "SSD300_VGG16_Weights", "one-stage", 300, 200, 0.01, 400, _SSD, "SSD", min_size=268),
     _tv("ssdlite320_mobilenet_v3_large", "SSDLite320_MobileNet_V3_Large_Weights", "one-stage", 320, 300,
         0.001, 300, _SSD, "SSD"),
 )
