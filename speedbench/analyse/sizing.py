@@ -70,7 +70,8 @@ def size(df: pd.DataFrame, streams, fps, p99_ms=None, server_cores=(8, 16, 32, 6
     df: a run's points table (speedbench.load_run) holding throughput rows (tput_fps ...).
     use_frontier: size only the configurations on the throughput-vs-accuracy frontier
     (per-core fps maximised, mAP maximised; ties within noise are kept); False sizes all.
-    Configurations left out and why are in ``result.attrs["excluded"]``.
+    Configurations left out and why are in ``result.attrs["excluded"]``; ``attrs["caution"]``
+    is the text a report must carry next to these figures.
     Columns: see SIZE_COLUMNS; cost_per_mframe is NaN without core_hour_cost.
     """
     streams, fps, p99_ms, shapes, headroom, core_hour_cost = _check_args(
@@ -89,6 +90,9 @@ def size(df: pd.DataFrame, streams, fps, p99_ms=None, server_cores=(8, 16, 32, 6
     out.attrs["excluded"] = excluded
     out.attrs["required_fps"] = required
     out.attrs["headroom"] = headroom
+    out.attrs["caution"] = ("Estimates from one host's measurements; figures beyond the measured core count "
+                            "rest on the stated assumption. A safety-relevant deployment needs its own "
+                            "validation at the planned load.")
     return out
 
 
@@ -114,6 +118,9 @@ def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
                 "intra_threads", "host_cores", "lat_mean_ms", "lat_p99_ms"):
         df[col] = pd.to_numeric(df[col], errors="coerce") if col in df.columns else np.nan
     df["concurrency"] = df["concurrency"].fillna(1)
+    # ORT-only knobs mean nothing for other backends; rows may record them either way.
+    not_ort = df["backend"].astype(str) != "ort"
+    df.loc[not_ort, ["exec_mode", "opt_level"]] = ""
     # cores_used = K x T; rebuild it for rows that lack it.
     df["cores_used"] = df["cores_used"].fillna(df["concurrency"] * df["intra_threads"].fillna(1).clip(lower=1))
     key = list(CONFIG_KEY) + (["host"] if "host" in df.columns else [])

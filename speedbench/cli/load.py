@@ -113,11 +113,14 @@ def load_into_run(run_dir, ks, seconds=5.0, pin=False, quiet=False, utilisations
         todo = [(_planned(r), r) for r in rows]
 
         def write(result, source, info):
-            if result.k == 1 and result.ok and result.point.id == source["point_id"]:
-                # Same configuration as the stored row: add the load columns, keep its latency samples.
+            # K=1 unpinned is the stored row's own configuration. Match on that, not on a
+            # recomputed id: the stored row keeps the id its sweep gave it.
+            same = result.k == 1 and result.point.affinity == int(source.get("affinity") or 0)
+            if same and result.ok:
+                # add the load columns, keep its latency samples
                 kept = samples.loc[samples["point_id"] == source["point_id"], "ms"].tolist()
                 rd.write_point({**source, **result.load_columns()}, kept)
-            elif result.k == 1 and not result.ok and result.point.id == source["point_id"]:
+            elif same:
                 return  # a failed K=1 load must not overwrite the measured single-stream row
             else:
                 row = {**{c: source[c] for c in CARRIED if c in source}, **result.to_row()}
