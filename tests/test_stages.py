@@ -120,10 +120,14 @@ def test_ort_inserted_node_resolved_by_ancestry_or_unattributed():
     optimized.graph.node.insert(1, helper.make_node("Identity", ["r"], ["r2"], name="ReorderInput_token_3"))
     # and one with no tie to anything in the original graph
     optimized.graph.node.insert(1, helper.make_node("Identity", ["nowhere"], ["zz"], name="MemcpyX_1"))
+    # an unscoped Identity that feeds a weight to a scoped node: its consumer decides
+    optimized.graph.node.insert(0, helper.make_node("Identity", ["two"], ["two_copy"], name="Identity_1"))
+    optimized.graph.node.append(helper.make_node("Mul", ["r", "two_copy"], ["m3"], name="/head/Mul_3"))
     # a fusion ORT names after the original node it replaced
     optimized.graph.node.insert(1, helper.make_node("Identity", ["s"], ["s2"], name="/head/ReduceSum/SomeFusion"))
     att = Attributor(original, optimized)
     assert att.resolve("/head/ReduceSum/SomeFusion") == ("/head/ReduceSum", "fused-name")
+    assert att.resolve("Identity_1") == ("/head/Mul_3", "consumer")
     assert att.resolve("ReorderInput_token_3") == ("/backbone/body/Relu", "ancestry")
     assert att.resolve("MemcpyX_1") == (None, "none")
     assert att.resolve("Sub_9")[0] == "/head/Mul"

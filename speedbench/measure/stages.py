@@ -11,7 +11,8 @@ graph), which differs from the exported one:
   after its output tensor, "..._nchwc") and nodes it inserts (ReorderInput /
   ReorderOutput, "Reshape_token_77"). These are resolved through ancestry: the
   original producer of one of their output tensors, else of their input
-  tensors (walking up), else the control-flow node that holds them.
+  tensors (walking up), else of a node consuming their output (an Identity
+  passing a shared weight to a Conv), else the control-flow node that holds them.
 - If/Loop/Scan nodes own subgraphs whose nodes get their own events while the
   parent's event spans all of them. Each node is counted by its *self* time
   (its time minus its direct children's), so no time is counted twice.
@@ -60,6 +61,7 @@ class GraphIndex:
     def __init__(self, model):
         self.nodes = {}        # name -> NodeProto
         self.producer = {}     # tensor name -> node name
+        self.consumers = {}    # tensor name -> [node name]
         self.parent = {}       # subgraph node name -> control-flow node name
         if model is not None:
             self._walk(model.graph, None)
@@ -75,6 +77,9 @@ class GraphIndex:
             for out in node.output:
                 if out:
                     self.producer.setdefault(out, name)
+            for inp in node.input:
+                if inp:
+                    self.consumers.setdefault(inp, []).append(name)
             for attr in node.attribute:
                 if attr.type == onnx.AttributeProto.GRAPH:
                     self._walk(attr.g, name)
@@ -99,7 +104,7 @@ class Attributor:
         return self.opt.nodes.get(name) or self.orig.nodes.get(name)
 
     def resolve(self, name: str) -> tuple[str | None, str]:
-        """(a scoped name or None, how it was found: name | fused-name | ancestry | parent | none).
+        """(a scoped name or None, how: name | fused-name | ancestry | consumer | parent | none).
 
         The scoped name is the node's own name when it carries a scope, else the name of
         the ancestor (node or tensor) that does; scope_of_name() turns it into a module path.
@@ -123,6 +128,9 @@ class Attributor:
         scope = self._ancestry(name)
         if scope is not None:
             return scope, "ancestry"
+        scope = self._consumer(name)
+        if scope is not None:       # e.g. an Identity handing a shared weight to a Conv
+            return scope, "consumer"
         parent = self.parent_of(name)
         if parent is not None:
             scope, _ = self.resolve(parent)
@@ -165,6 +173,18 @@ class Attributor:
             if not nxt:
                 break
             frontier = nxt
+        return None
+
+
+    def _consumer(self, name: str) -> str | None:
+        node = self.node(name)
+        if node is None:
+            return None
+        for out in node.output:
+            for index in (self.opt, self.orig):
+                for c in index.consumers.get(out, ()):
+                    if scope_of_name(c) is not None:
+                        return c
         return None
 
 
