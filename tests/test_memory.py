@@ -1,6 +1,5 @@
 """Memory figures of a worker: RSS after imports, after loading, and the peak of the timed runs."""
 import numpy as np
-import pytest
 
 from speedbench.measure import Point, Policy, measure_point
 from speedbench.measure.memory import MIB, PeakTracker
