@@ -76,8 +76,7 @@ def render_text(table, with_p99: bool, with_cost: bool) -> str:
         lines.append("note: expected p99 of some rows comes from a closed-loop load test (contention, no "
                      "queueing); camera streams arriving on their own clock add queueing delay near full "
                      "utilisation. `speedbench load RUN --utilisation 0.5,0.7,0.9` measures it with paced arrivals.")
-    lines.append("caution: these are estimates from one host's measurements; a safety-relevant "
-                 "deployment needs its own validation at the planned load.")
+    lines.append("caution: " + table.attrs["caution"])
     excluded = table.attrs.get("excluded")
     if excluded is not None and len(excluded):
         for r in excluded.to_dict("records"):
