@@ -186,7 +186,7 @@ def _measure_all(todo, profile, rd, ks, seconds, pin, quiet, write, steps, utili
                 print(f"  {label} K={result.k}: " + (_describe(result) if result.ok else f"failed: {result.reason}"),
                       file=sys.stderr)
 
-        if not info.ok:
+        if not info.ok and c["backend"] != "eager":  # eager builds its model without the export
             print(f"  {planned.label}: skipped, {info.reason}", file=sys.stderr)
             counts["failed"] += 1
             continue
@@ -221,8 +221,8 @@ def _planned(row: dict):
     for c in ("size", "proposals", "intra_threads", "inter_threads", "affinity", "concurrency"):
         config[c] = int(config[c] or 0)
     config["concurrency"] = 1
-    for c in ("exec_mode", "opt_level"):
-        config[c] = config[c] or ""
+    for c, ort_default in (("exec_mode", "sequential"), ("opt_level", "all")):
+        config[c] = config[c] or (ort_default if config["backend"] == "ort" else "")
     return PlannedPoint(config=config, point_id=row["point_id"], family=row.get("family", ""),
                         graph_key=(config["model"], config["weights"], config["size"], config["proposals"]))
 
