@@ -6,13 +6,19 @@ Layout of a run directory::
     profile.toml     verbatim copy of the profile the sweep ran
     points.sqlite    the source of truth: points(point_id PRIMARY KEY, seq, row JSON),
                      samples(point_id, i, ms)
-    points.csv       the points table, regenerated after every point (temp file + os.replace)
+    points.csv       the points table, regenerated as points arrive (temp file + os.replace)
     points.parquet   the same, when pyarrow is installed
     exports/         the ONNX graphs the sweep exported (content-hash cache)
 
 Every point is written in one SQLite transaction (row and raw samples
 together) with synchronous=FULL, so a sweep killed at any moment loses at
 most the point that was in flight, and a half-written point never shows up.
+
+The CSV/Parquet copies are conveniences for other tools. Rewriting them costs
+time that grows with the table, so after a write they are refreshed only when
+the last refresh is older than ten times its own duration (at least 1 s), and
+always by finish() and close(): a killed sweep's CSV may lag by the last few
+points, never its SQLite table, which load_run reads.
 """
 from __future__ import annotations
 
@@ -96,6 +102,9 @@ class RunDir:
         self.path = Path(path)
         self.exports = self.path / EXPORTS_DIR
         self._db: sqlite3.Connection | None = None
+        self._copies_at = 0.0       # monotonic time of the last CSV/Parquet refresh
+        self._copies_cost = 0.0     # how long that refresh took
+        self._copies_stale = False
 
     # ----------------------------------------------------------------- creation
     @classmethod
@@ -170,6 +179,8 @@ class RunDir:
 
     def close(self) -> None:
         if self._db is not None:
+            if self._copies_stale:
+                self._export_tables()
             self._db.close()
             self._db = None
 
@@ -204,7 +215,9 @@ class RunDir:
             if db.in_transaction:
                 db.execute("ROLLBACK")
             raise
-        self._export_tables()
+        self._copies_stale = True
+        if time.monotonic() - self._copies_at >= max(1.0, 10 * self._copies_cost):
+            self._export_tables()
 
     def done_ids(self) -> set[str]:
         """Ids of every point already stored (measured or failed)."""
@@ -275,17 +288,22 @@ class RunDir:
 
     # ----------------------------------------------------------------- copies
     def _export_tables(self) -> None:
+        started = time.monotonic()
         df = self.points()
         _atomic_write_bytes(self.path / CSV_FILE, df.to_csv(index=False).encode())
         try:
             import pyarrow  # noqa: F401
         except ImportError:
-            return
-        import io
+            pyarrow = None
+        if pyarrow is not None:
+            import io
 
-        buf = io.BytesIO()
-        df.to_parquet(buf, index=False)
-        _atomic_write_bytes(self.path / PARQUET_FILE, buf.getvalue())
+            buf = io.BytesIO()
+            df.to_parquet(buf, index=False)
+            _atomic_write_bytes(self.path / PARQUET_FILE, buf.getvalue())
+        self._copies_at = time.monotonic()
+        self._copies_cost = self._copies_at - started
+        self._copies_stale = False
 
 
 def rows_to_frame(rows: list[dict]):
