@@ -281,3 +281,20 @@ def test_missing_checkpoint_or_dataset_fails_before_any_run_directory(tmp_path, 
     assert main(["sweep", str(bad_data), "-o", str(tmp_path / "r2")]) == 2
     assert "no/such/set.json: dataset not found" in capsys.readouterr().err
     assert not (tmp_path / "r1").exists() and not (tmp_path / "r2").exists()
+
+
+def test_concurrency_axis_measures_throughput_points(tmp_path):
+    # K=2 workers x 1 thread fits 2 cores; K=4 would not and is skipped with a note by the plan.
+    prof = write_profile(tmp_path, sizes="[64]", work_ms=2.0)
+    prof.write_text(prof.read_text().replace('backends = ["synthetic"]',
+                                             'backends = ["synthetic"]\nconcurrency = [1, 2]')
+                    .replace("proposals = [10, 20]", "proposals = [10]"))
+    plan = expand_plan(load_profile(prof), cores=2)
+    assert [p.config["concurrency"] for p in plan.points] == [1, 2]
+    df = load_run(run_sweep(prof, out_dir=tmp_path / "run", quiet=True, stream=open(os.devnull, "w")))
+    one, two = df[df.concurrency == 1].iloc[0], df[df.concurrency == 2].iloc[0]
+    assert one.status == "ok" and two.status == "ok", two.reason
+    assert two["tput_fps"] > 0 and two["n_samples"] > 0
+    # scaling efficiency = X(2) / (2 X(1)) against the K=1 point measured just before
+    assert two["scaling_eff"] > 0
+    assert two["point_id"] != one["point_id"]
