@@ -1,52 +1,55 @@
 """Sweep profiles: a TOML file saying what to measure, validated strictly.
 
-Every key (the shipped profiles under profiles/ carry the same text as comments)::
+Every key, with its default where it has one (the shipped profiles under
+profiles/ explain the keys they use in comments)::
 
     [run]
     name       = "cpu-budget"     # required; names the run
-    host       = ""               # label for this machine in reports; "" = hostname
+    host       = ""               # label for this machine in reports; "" = the hostname
     output     = "runs/{name}"    # run directory; {name} and {host} are filled in
-    cache      = ".speedbench-cache"  # exported graphs + accuracy results, shared across runs
-    timeout_s  = 600              # per point (worker process), seconds, 1..86400
+    cache      = ".speedbench-cache"  # exported graphs, generated scenes, accuracy results
+    timeout_s  = 600              # per point (its worker process), seconds, 1..86400
 
-    [dataset]                     # exactly one of `path` or `scenes`
-    path       = "data/val"       # COCO-style JSON file, or a Pascal VOC directory
-    scenes     = {count = 40, seed = 0}   # generated scenes (speedbench.data.make_scenes)
-    accuracy   = true             # evaluate mAP once per distinct graph
+    [dataset]                     # required; exactly one of `path` or `scenes`
+    path       = "data/val"       # COCO-style JSON file (or its folder), or a Pascal VOC folder
+    scenes     = {count = 40, seed = 0}   # generated held-out scenes (speedbench.data.make_scenes)
+    accuracy   = true             # evaluate mAP once per distinct graph (trained weights only)
     limit      = 0                # images used for mAP; 0 = all
     timing_images = 8             # images cycled during latency measurement, >= 1
 
-    [sweep]                       # the global axes; each a non-empty list
-    sizes       = [320, 512]      # input sizes (px, 32..4096) or "native"
-    proposals   = ["default"]     # proposal budgets (1..10000) or "default"
-    backends    = ["ort"]         # "ort", "eager" (or "synthetic", a test harness backend)
+    [sweep]                       # the global axes; each a non-empty list without repeats
+    sizes       = ["native"]      # input sizes (px, 32..4096); "native" = the model's own
+    proposals   = ["default"]     # proposal / candidate budgets (1..10000); "default" = the
+                                  # model's own; a model without the knob is measured at 0
+    backends    = ["ort"]         # "ort", "eager", or "synthetic" (a test harness, no model)
     opt_levels  = ["all"]         # ORT graph optimisation: "disable", "basic", "extended", "all"
-    concurrency = [1]             # K concurrent streams (throughput points when K > 1)
+    concurrency = [1]             # K concurrent workers (throughput points when K > 1)
 
-    [[models]]                    # one table per model, at least one
-    id        = "ssdlite320_mobilenet_v3_large"   # zoo id (speedbench models)
-    weights   = "none"            # "none" (untrained: latency only), "torchvision",
-                                  # "demo", or "file:PATH" (local checkpoint)
+    [[models]]                    # required: one table per model
+    id        = "ssdlite320_mobilenet_v3_large"   # zoo id (`speedbench models`), or
+                                  # "synthetic[:key=value,...]" for the synthetic backend
+    weights   = "none"            # "none" (untrained: latency only), "torchvision" (local
+                                  # cache only), "demo", or "file:PATH" (local checkpoint)
     sizes     = [320]             # optional: replaces [sweep].sizes for this model
     proposals = [100]             # optional: replaces [sweep].proposals for this model
 
-    [[threads]]                   # one table per thread setting, at least one
-    intra    = 2                  # intra-op threads, 0..256 (0 = library default)
-    inter    = 1                  # inter-op threads, 0..256 (used by ORT in parallel mode)
+    [[threads]]                   # required: one table per thread setting
+    intra    = 2                  # required; intra-op threads, 0..256 (0 = library default)
+    inter    = 1                  # inter-op threads, 0..256 (ORT uses them in parallel mode only)
     mode     = "sequential"       # ORT execution mode: "sequential" or "parallel"
     affinity = 0                  # pin the worker to this many cores; 0 = not pinned
 
-    [repetitions]                 # how long each point is measured
+    [repetitions]                 # how long each point is measured (speedbench.measure.Policy)
     warmup_min  = 3               # warm-up runs at least, >= 0
     warmup_max  = 50              # warm-up runs at most (warm-up ends once latency settles)
     min_reps    = 10              # timed runs at least, >= 1
-    max_reps    = 200             # timed runs at most, >= min_reps
-    max_seconds = 20.0            # stop timing after this long, > 0
-    rel_ci      = 0.05            # stop once the p50's CI half-width / p50 is below this, (0, 1)
+    max_reps    = 1000            # timed runs at most, >= min_reps
+    max_seconds = 30.0            # stop timing after this long, > 0 and < run.timeout_s
+    rel_ci      = 0.02            # stop once the p50's CI half-width / p50 is below this, (0, 1)
     stages      = true            # also run a few profiled passes for per-stage times
 
-    [synthetic]                   # settings of the "synthetic" test backend (no model is run),
-    delay_ms = 5.0                # passed through to speedbench.measure as the point's options
+    [synthetic]                   # options of the synthetic backend, passed through as the
+    work_ms = 5.0                 # points' options (see speedbench.measure.backends.synthetic)
 
 Relative paths are taken from the current directory. Errors are one line:
 ``<file>: <key path>: <what is wrong>``.
