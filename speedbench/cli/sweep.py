@@ -65,6 +65,10 @@ def format_plan(plan, profile, out, resume: bool = False) -> str:
         lines.append(f"{p.point_id:<12}  {graph:<44}  {c['backend']:<7}  {c['intra_threads']:>5} "
                      f"{c['inter_threads']:>5} {c['exec_mode'] or '-':<11} {c['affinity']:>8} "
                      f"{c['concurrency']:>2}  {c['opt_level'] or '-'}{mark}")
+    per_model: dict = {}
+    for p in plan.points:
+        per_model[p.config["model"]] = per_model.get(p.config["model"], 0) + 1
+    lines.append("points per model: " + ", ".join(f"{m} {n}" for m, n in per_model.items()))
     for note in plan.notes:
         lines.append(f"note: {note}")
     lines.append(
