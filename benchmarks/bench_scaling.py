@@ -4,7 +4,8 @@
 
 Measures, with speedbench.measure.load (fresh worker processes, synchronised start):
   K=1 x T=1, K=2 x T=1 (two single-thread workers), and K=1 x T=2 (one two-thread worker),
-so the two ways of spending two cores are compared on the same graph in the same run.
+so the two ways of spending two cores are compared on the same graph in the same run, plus
+K=2 with paced arrivals at 50 % and 80 % of its capacity (p99 including queueing).
 Prints throughput, per-request p50/p99 under load, scaling efficiency X(2) / (2 X(1)), and the
 Little's-law and utilisation-law consistency figures. The machine may be shared: the 1-minute
 load average is printed before and after; read the ratios with it in mind.
@@ -96,7 +97,8 @@ def main() -> int:
     base = dict(model=args.model, weights="none", size=args.size, proposals=0, backend="ort", graph=graph)
     load_before = os.getloadavg()[0]
     t1 = Point(**base, intra_threads=1)
-    r1, r2 = measure_scaling(t1, imgs, ks=(1, 2), policy=policy, seconds=args.seconds, timeout_s=900)
+    r1, r2 = measure_scaling(t1, imgs, ks=(1, 2), policy=policy, seconds=args.seconds, timeout_s=900,
+                             utilisations=(0.5, 0.8))
     t2 = measure_load(Point(**base, intra_threads=2), imgs, k=1, policy=policy, seconds=args.seconds,
                       timeout_s=900)
     load_after = os.getloadavg()[0]
@@ -113,6 +115,14 @@ def main() -> int:
         eff = s.get("scaling_eff", float("nan"))
         print(f"{name:<16}{s['tput_fps']:>8.2f}{s['tput_p50_ms']:>9.1f}{s['tput_p99_ms']:>9.1f}{eff:>6.2f}"
               f"{s['littles_L']:>7.3f}{s['littles_XW']:>7.3f}{s['tput_cpu_util']:>7.2f}{s['tput_cpu_util_xs']:>7.2f}")
+    if r2.ok:
+        import json
+
+        for e in json.loads(r2.summary.get("load_curve") or "[]"):
+            if e["status"] == "ok":
+                print(f"K=2 paced at {e['load']:.0%} of capacity: busy {e['util']:.2f}, p50 {e['p50_ms']:.1f} ms, "
+                      f"p99 {e['p99_ms']:.1f} ms (latency from arrival), L {e['littles_L']:.3f} vs "
+                      f"X*W {e['littles_XW']:.3f}")
     if r1.ok and r2.ok:
         print(f"ratio X(K=2) / X(K=1) = {r2.tput_fps / r1.tput_fps:.3f}  (2.0 = perfect scaling)")
         print(f"p99 under load K=2 / K=1 = {r2.summary['tput_p99_ms'] / r1.summary['tput_p99_ms']:.3f}")
