@@ -124,9 +124,7 @@ def run_point(text: str, source: str, label: str, planned, baseline=None, baseli
     profile = _profile(text, source)
     started = time.time()
     notes = []
-    killed, busy = clear_orphans()
-    if killed:
-        notes.append(f"stopped {killed} orphaned measurement worker(s) of an earlier, lost attempt")
+    busy = other_measurements()
     if busy:
         notes.append(f"{busy} other measurement worker(s) were running on this host when the point started")
     if baseline_fps is None and baseline and baseline["row"].get("status") == "ok":
@@ -172,35 +170,18 @@ def _failed(planned, profile, reason: str) -> dict:
     return row
 
 
-def clear_orphans() -> tuple[int, int]:
-    """Stop measurement workers left behind by a worker process that died mid-point.
+def other_measurements() -> int:
+    """How many measurement workers are running on this host besides our own.
 
-    The measure package starts each point's worker in its own session, so when
-    the Dask worker is killed its measurement goes on, unparented, and would
-    disturb the retried point. Those orphans (whose parent is no longer a Python
-    process) are killed; other live measurement workers are counted, not touched.
-    Returns (killed, others).
+    Only counted, never touched: they may belong to another user's sweep. A
+    worker whose launcher died ends itself within a second (measure.worker's
+    parent watch), so a retried point does not compete with its lost attempt.
     """
-    import signal
-
     import psutil
 
-    killed = others = 0
-    me = os.getpid()
-    for proc in psutil.process_iter(["pid", "ppid", "cmdline", "uids"]):
-        try:
-            cmd = proc.info["cmdline"] or []
-            if "speedbench.measure.worker" not in cmd or proc.info["pid"] == me:
-                continue
-            if proc.info["uids"] and proc.info["uids"].real != os.getuid():
-                others += 1
-                continue
-            parent = proc.parent()
-            if parent is not None and "python" in parent.name():
-                others += 1
-                continue
-            os.killpg(os.getpgid(proc.info["pid"]), signal.SIGKILL)
-            killed += 1
-        except (psutil.Error, ProcessLookupError, PermissionError, OSError):
-            continue
-    return killed, others
+    busy = 0
+    for proc in psutil.process_iter(["pid", "cmdline"]):
+        cmd = proc.info["cmdline"] or []
+        if any(m in cmd for m in ("speedbench.measure.worker", "speedbench.measure.load")):
+            busy += 1
+    return busy

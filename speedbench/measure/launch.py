@@ -81,7 +81,8 @@ def measure_point(point: Point, images, policy: Policy | None = None, timeout_s:
         tmp = Path(tmp)
         np.savez(tmp / "images.npz", **{f"image_{i}": a for i, a in enumerate(arrays)})
         spec = {"point": point.to_dict(), "policy": policy.to_dict(),
-                "images": str(tmp / "images.npz"), "result": str(tmp / "result.json")}
+                "images": str(tmp / "images.npz"), "result": str(tmp / "result.json"),
+                "parent_pid": os.getpid()}
         (tmp / "spec.json").write_text(json.dumps(spec))
         with open(tmp / "stderr.txt", "wb") as err:
             proc = subprocess.Popen([sys.executable, "-m", "speedbench.measure.worker", str(tmp / "spec.json")],

@@ -98,10 +98,36 @@ THREAD_VARS = ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS", "VE
                "NUMEXPR_NUM_THREADS", "BLIS_NUM_THREADS")
 
 
+def watch_parent(parent_pid: int, every_s: float = 1.0) -> None:
+    """End this worker (and its process group) if the process that launched it dies.
+
+    The worker runs in its own session so the parent can kill the whole group on a
+    timeout; the price is that it would outlive a parent that is itself killed (a
+    sweep killed mid-point, a lost cluster worker) and disturb whatever runs next.
+    A daemon thread that wakes once a second costs nothing measurable.
+    """
+    import signal
+    import threading
+    import time
+
+    def check():
+        while True:
+            time.sleep(every_s)
+            if os.getppid() != parent_pid:
+                try:
+                    os.killpg(os.getpgrp(), signal.SIGKILL)
+                finally:
+                    os._exit(1)
+
+    threading.Thread(target=check, name="parent-watch", daemon=True).start()
+
+
 def main(argv=None) -> int:
     argv = sys.argv[1:] if argv is None else argv
     with open(argv[0]) as f:
         spec = json.load(f)
+    if spec.get("parent_pid"):
+        watch_parent(int(spec["parent_pid"]))
     try:
         out = run_worker(spec)
     except BaseException as exc:  # report every failure to the parent, then exit non-zero
