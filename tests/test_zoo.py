@@ -157,6 +157,8 @@ def test_describe_knobs_names_the_torchvision_attributes():
     ("/roi_heads/NonMaxSuppression", "postprocess"),
     ("/Gather_12", "postprocess"),
     ("Identity_5", "unattributed"),
+    ("ReorderInput_token_83", "unattributed"),            # ONNX Runtime layout transform
+    ("fused /roi_heads/box_head/fc6/Gemm", "roi_heads"),  # ONNX Runtime fused node
     ("backbone.body.layer2", "backbone"),
 ])
 def test_stage_of_scope_two_stage(name, stage):

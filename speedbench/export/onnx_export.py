@@ -15,7 +15,7 @@ from pathlib import Path
 from speedbench.errors import UserError
 from speedbench.zoo import get_spec, weights_digest
 
-EXPORT_FORMAT = 1          # bump when the graph layout or the record changes
+EXPORT_FORMAT = 2          # bump when the graph layout or the record changes
 MIN_OPSET, DEFAULT_OPSET = 11, 17
 OUTPUTS = ("boxes", "scores", "labels")
 
@@ -126,7 +126,53 @@ def _torch_export(model, path: Path, opset: int, size: int) -> list[str]:
         warnings.simplefilter("ignore")   # tracer warnings about Python control flow are expected
         torch.onnx.export(model, (x,), str(path), input_names=["image"], output_names=names,
                           dynamic_axes=dyn, opset_version=opset, dynamo=False)
+    import onnx
+
+    proto = onnx.load(str(path))
+    attach_scopes(proto.graph)
+    onnx.save(proto, str(path))
     return names
+
+
+def _scope_of(name: str) -> str | None:
+    return name.rsplit("/", 1)[0] if name.startswith("/") else None
+
+
+def attach_scopes(graph, inherited: str | None = None) -> int:
+    """Give the exporter's unscoped nodes the module scope of the tensors they work on.
+
+    The TorchScript exporter emits some nodes without a scope, notably torchvision's
+    NonMaxSuppression and the If/shape checks around it ("NonMaxSuppression_4393"). Left so,
+    NMS time - most of an untrained one-stage run - could not be attributed to a stage.
+    Each such node takes the scope of the producer of its first scoped input (graph order
+    is topological), else of its first scoped consumer; nodes inside If/Loop bodies take
+    their parent's. Only node names change; the computation is untouched.
+    """
+    produced: dict[str, str] = {}
+    pending = []
+    renamed = 0
+    for node in graph.node:
+        scope = _scope_of(node.name)
+        if scope is None:
+            scope = next((produced[i] for i in node.input if i in produced), inherited)
+            if scope is None:
+                pending.append(node)
+            else:
+                node.name = f"{scope}/{node.name or node.op_type}"
+                renamed += 1
+        if scope is not None:
+            for out in node.output:
+                produced[out] = scope
+        for attr in node.attribute:
+            if attr.type == attr.GRAPH:
+                renamed += attach_scopes(attr.g, scope)
+    for node in pending:   # inputs came only from initializers/graph inputs: look downstream
+        consumer = next((n for n in graph.node if set(node.output) & set(n.input)
+                         and _scope_of(n.name) is not None), None)
+        if consumer is not None:
+            node.name = f"{_scope_of(consumer.name)}/{node.name or node.op_type}"
+            renamed += 1
+    return renamed
 
 
 def _first_line(exc: BaseException) -> str:
@@ -135,8 +181,10 @@ def _first_line(exc: BaseException) -> str:
 
 
 def _write_record(record: ExportRecord, json_path: Path) -> None:
-    tmp = json_path.with_suffix(".json.tmp")
-    tmp.write_text(json.dumps(record.to_dict(), indent=2, default=str))
+    # A private temp file per writer: workers exporting the same graph may race here.
+    fd, tmp = tempfile.mkstemp(dir=json_path.parent, suffix=".json.tmp")
+    with os.fdopen(fd, "w") as f:
+        f.write(json.dumps(record.to_dict(), indent=2, default=str))
     os.replace(tmp, json_path)
 
 
@@ -210,7 +258,9 @@ def _cached(json_path: Path, onnx_path: Path) -> ExportRecord | None:
 def _export_into(record, model, spec, onnx_path, opset, size) -> None:
     from speedbench.export.facts import model_facts
 
-    tmp = Path(tempfile.mkstemp(dir=onnx_path.parent, suffix=".onnx.tmp")[1])
+    fd, name = tempfile.mkstemp(dir=onnx_path.parent, suffix=".onnx.tmp")
+    os.close(fd)
+    tmp = Path(name)
     try:
         record.outputs = tuple(_torch_export(model, tmp, opset, size))
         import onnx

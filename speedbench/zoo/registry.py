@@ -172,8 +172,12 @@ def stage_of_scope(spec: ModelSpec, scope: str) -> str:
 
     The longest matching prefix in spec.stage_scopes wins; "" stands for nodes outside any
     submodule (the top-level forward). Names without a module scope that the exporter or
-    ONNX Runtime made up (``Identity_12``, fused or reordered nodes) are "unattributed".
+    ONNX Runtime made up (``Identity_12``, layout reorders) are "unattributed"; ONNX Runtime's
+    fused nodes ("fused /roi_heads/box_head/fc6/Gemm") count for the scope they name.
     """
+    scope = str(scope)
+    if scope.startswith("fused "):
+        scope = scope[len("fused "):]
     if not str(scope).startswith("/") and "." not in str(scope) and str(scope) not in _all_prefixes(spec):
         return "unattributed"
     path = scope_to_path(scope)
