@@ -7,11 +7,15 @@ import numpy as np
 import pandas as pd
 
 from speedbench.analyse.common import bounds, has_accuracy, latency_col, require_columns, split_ok
+from speedbench.analyse.prices import SINGLE, add_costs
 from speedbench.errors import UserError
 
 
 CAUTION = ("Caution: measured on one machine with a small image set; a safety-relevant deployment "
            "needs its own validation on the target hardware and data.")
+CAUTION_HOSTS = ("Caution: each host's figures come from its own run, on a small image set, and are only as good "
+                 "as that run's conditions; they are no guarantee, and a safety-relevant deployment needs its "
+                 "own validation on the target hardware and data.")
 
 
 @dataclass
@@ -25,6 +29,12 @@ class Pick:
     closest_misses: pd.DataFrame       # over budget only, smallest overshoot first
     accuracy_available: bool = True    # False: ranked by latency only
     notes: list[str] = field(default_factory=list)
+    per_host: pd.DataFrame | None = None  # several hosts: each host's own best fitting row (or none)
+    priced: bool = False               # ranked by cost per million frames (usd_per_mframe)
+
+    @property
+    def hosts(self) -> list[str]:
+        return [] if self.per_host is None else list(self.per_host["host"])
 
     def to_text(self) -> str:
         stat = self.latency.removeprefix("lat_").removesuffix("_ms")
@@ -38,20 +48,46 @@ class Pick:
                                  f"{r['over_ms']:.2f} ms over budget{_acc(r)}")
         else:
             b = self.best
-            lines.append(f"Best within {stat} <= {self.budget_ms:g} ms: {b['label']}")
+            what = "Cheapest" if self.priced else "Best"
+            lines.append(f"{what} within {stat} <= {self.budget_ms:g} ms: {_where(b, self.per_host)}")
             ci = f" (CI {b['_lo']:.2f}-{b['_hi']:.2f})" if b["_hi"] > b["_lo"] else " (no CI recorded)"
             lines.append(f"  {stat} {b[self.latency]:.2f} ms{ci}, margin {self.margin_ms:.2f} ms{_acc(b)}")
+            if self.priced:
+                lines.append(f"  {_cost(b)}")
         lines.extend(f"Note: {n}" for n in self.notes)
+        if self.per_host is not None:
+            lines.append("Per host:")
+            for r in self.per_host.to_dict("records"):
+                lines.append(f"  {r['host']}: {r['answer']}")
         if len(self.runners_up):
             lines.append("Runners-up:")
             for _, r in self.runners_up.head(5).iterrows():
-                lines.append(f"  {r['label']}: {stat} {r[self.latency]:.2f} ms{_acc(r)}")
+                cost = f", {_cost(r, short=True)}" if self.priced else ""
+                lines.append(f"  {r['label']}: {stat} {r[self.latency]:.2f} ms{_acc(r)}{cost}")
         if len(self.excluded):
             lines.append(f"Excluded ({len(self.excluded)}):")
             for _, r in self.excluded.iterrows():
                 lines.append(f"  {r['label']}: {r['reason']}")
-        lines.append(CAUTION)
+        lines.append(CAUTION if self.per_host is None else CAUTION_HOSTS)
         return "\n".join(lines)
+
+
+def _where(r, per_host) -> str:
+    """A row's configuration, naming its host whenever more than one host was considered."""
+    host = r.get("host", "")
+    if per_host is not None and host:
+        return f"{r.get('config_label') or r['label']} on host {host}"
+    return r["label"]
+
+
+def _cost(r, short: bool = False) -> str:
+    c = r.get("usd_per_mframe")
+    if c is None or pd.isna(c):
+        return "cost unknown"
+    if short:
+        return f"${c:.4g} per million frames"
+    return (f"cost ${c:.4g} per million frames (host ${r['usd_per_hour']:g}/h, {r['frames_per_s']:.1f} frames/s "
+            f"from {r['fps_source']})")
 
 
 def _acc(r) -> str:
@@ -64,12 +100,17 @@ def _acc(r) -> str:
 
 
 def pick(df: pd.DataFrame, budget_ms: float, latency: str = "p50", threads=None,
-         max_memory_mb=None, min_map=None) -> Pick:
+         max_memory_mb=None, min_map=None, prices: dict | None = None) -> Pick:
     """Best configuration whose latency statistic fits the budget.
 
     Ranking: highest mAP first, lower latency breaking ties. When no fitting row has
     accuracy (untrained weights) the ranking falls back to latency only, and says so.
     A pick whose latency CI reaches past the budget is flagged: on a rerun it may not fit.
+
+    prices: {host: USD per host-hour} (analyse.prices.load_prices). Then the answer is the
+    cheapest fitting row per million frames (mAP, then latency, breaking ties); rows of a
+    host without a price, or without a frame rate, are excluded with that reason.
+    With rows from several hosts (a `host` column) `per_host` holds each host's own answer.
     """
     if budget_ms is None or not np.isfinite(budget_ms) or budget_ms <= 0:
         raise UserError(f"--budget-ms: must be a positive number of milliseconds, not {budget_ms!r}")
@@ -78,10 +119,17 @@ def pick(df: pd.DataFrame, budget_ms: float, latency: str = "p50", threads=None,
     ok, bad = split_ok(df)
     v, lo, hi = bounds(ok, col) if len(ok) else (np.array([]),) * 3
     ok["_lo"], ok["_hi"] = lo, hi
+    if prices is not None:
+        ok = add_costs(ok, prices)
     stat = col.removeprefix("lat_").removesuffix("_ms")
     reasons, over = [], []
     for k, r in enumerate(ok.to_dict("records")):
         why = []
+        if prices is not None:
+            if r.get("host", "") not in prices:
+                why.append(f"no price for host {r.get('host', '')!r} in the price table")
+            elif not r["frames_per_s"] > 0:
+                why.append("no frame rate recorded, cost per million frames unknown")
         if threads is not None and int(r.get("intra_threads", -1)) != int(threads):
             why.append(f"intra threads {r.get('intra_threads')} != {threads}")
         if max_memory_mb is not None:
@@ -115,7 +163,15 @@ def pick(df: pd.DataFrame, budget_ms: float, latency: str = "p50", threads=None,
     acc = bool(has_accuracy(fits).any()) if len(fits) else bool(has_accuracy(ok).any())
     if len(fits):
         fits["_acc"] = pd.to_numeric(fits["map"], errors="coerce") if "map" in fits.columns else np.nan
-        if acc:
+        if prices is not None:
+            fits = fits.sort_values(["usd_per_mframe", "_acc", col], ascending=[True, False, True],
+                                    na_position="last")
+            if min_map is None and acc:
+                notes.append("no --min-map given: this is the cheapest configuration whatever its accuracy")
+            if (fits["fps_source"] == SINGLE).any():
+                notes.append("single-stream rows assume the host serves one stream at a time; throughput "
+                             "rows (`speedbench load`) show what the whole host delivers")
+        elif acc:
             fits = fits.sort_values(["_acc", col], ascending=[False, True], na_position="last")
             if not has_accuracy(fits).all():
                 notes.append("some fitting configurations have no accuracy (untrained) and rank last")
@@ -125,7 +181,7 @@ def pick(df: pd.DataFrame, budget_ms: float, latency: str = "p50", threads=None,
                          "which says nothing about detection quality")
         best = fits.iloc[0]
         runners = fits.iloc[1:].drop(columns=["reason"])
-        if acc and len(runners) and "map_ci_hi" in runners.columns and pd.notna(best.get("map_ci_lo")):
+        if prices is None and acc and len(runners) and "map_ci_hi" in runners.columns and pd.notna(best.get("map_ci_lo")):
             close = runners[pd.to_numeric(runners["map_ci_hi"], errors="coerce") >= best["map_ci_lo"]]
             if len(close):
                 notes.append(f"{len(close)} runner(s)-up have mAP within the best one's CI; "
@@ -143,4 +199,26 @@ def pick(df: pd.DataFrame, budget_ms: float, latency: str = "p50", threads=None,
         best, margin, runners = None, None, fits
     return Pick(budget_ms=float(budget_ms), latency=col, best=best, margin_ms=margin,
                 runners_up=runners, excluded=excluded.reset_index(drop=True),
-                closest_misses=misses.reset_index(drop=True), accuracy_available=acc, notes=notes)
+                closest_misses=misses.reset_index(drop=True), accuracy_available=acc, notes=notes,
+                per_host=_per_host(ok, fits, col, stat, prices is not None), priced=prices is not None)
+
+
+def _per_host(ok: pd.DataFrame, fits: pd.DataFrame, col: str, stat: str, priced: bool) -> pd.DataFrame | None:
+    """Each host's best fitting row (fits is already ranked), or why it has none."""
+    hosts = [h for h in pd.unique(ok["host"].astype(str))] if "host" in ok.columns else []
+    if len(hosts) < 2:
+        return None
+    rows = []
+    for h in sorted(hosts):
+        mine = fits[fits["host"].astype(str) == h] if len(fits) else fits
+        if len(mine):
+            b = mine.iloc[0]
+            extra = f", {_cost(b, short=True)}" if priced else ""
+            answer = f"{b.get('config_label') or b['label']}: {stat} {b[col]:.2f} ms{_acc(b)}{extra}"
+            rows.append({"host": h, "point_id": b["point_id"], "answer": answer})
+        else:
+            theirs = ok[ok["host"].astype(str) == h]
+            fastest = pd.to_numeric(theirs[col], errors="coerce").min()
+            rows.append({"host": h, "point_id": "", "answer": f"nothing fits the limits (its fastest {stat}: {fastest:.2f} ms)"
+                         if fastest == fastest else "nothing fits"})
+    return pd.DataFrame(rows)

@@ -1,4 +1,8 @@
-"""speedbench frontier RUN: the configurations worth considering, overall and per thread setting."""
+"""speedbench frontier RUN [RUN ...]: the configurations worth considering, per host and per thread setting.
+
+Several runs (or a parent directory holding one run directory per host, as a fleet sweep
+writes) give one frontier per host, each row also marked against every host's points.
+"""
 from __future__ import annotations
 
 AXES = {"latency": None, "memory": "rss_peak_mib", "fps": "fps"}
@@ -9,7 +13,9 @@ def add_parser(subparsers):
         "frontier", help="Pareto frontier of a run: latency, memory or throughput against accuracy",
         description="Mark every configuration as on the frontier, tied within noise, or dominated, "
                     "overall and within its thread setting; optionally draw the plot.")
-    p.add_argument("run_dir", metavar="RUN", help="run directory written by `speedbench sweep`")
+    p.add_argument("run_dirs", nargs="+", metavar="RUN",
+                   help="run directory written by `speedbench sweep`; several (or a parent of several, "
+                        "e.g. a fleet sweep's output) give one frontier per host")
     p.add_argument("--latency", default="p50", choices=["p50", "p90", "p99"], help="latency statistic (default p50)")
     p.add_argument("--axis", default="latency", choices=sorted(AXES),
                    help="cost axis against accuracy: latency (default), memory (peak RSS) or fps (throughput)")
@@ -29,20 +35,63 @@ def run(args) -> int:
     import os
 
     os.environ.setdefault("MPLBACKEND", "Agg")
-    from speedbench.analyse import Run, frontier
+    from speedbench.analyse import combine, frontier, load_runs
 
-    run_ = Run.load(args.run_dir)
+    data = combine(load_runs(args.run_dirs))
     x, minimize = x_column(args.axis, args.latency)
-    overall = frontier(run_.points, x=x, minimize_x=minimize)
-    per = frontier(run_.points, x=x, minimize_x=minimize, by=["intra_threads", "inter_threads"])
-    overall["in_thread_setting"] = overall["point_id"].map(dict(zip(per["point_id"], per["frontier_status"])))
-    print(format_table(overall, x, show_all=args.all))
+    pts = data.points
+    if not data.multi_host:
+        overall = frontier(pts, x=x, minimize_x=minimize)
+        per = frontier(pts, x=x, minimize_x=minimize, by=["intra_threads", "inter_threads"])
+        overall["in_thread_setting"] = overall["point_id"].map(dict(zip(per["point_id"], per["frontier_status"])))
+        print(format_table(overall, x, show_all=args.all))
+    else:
+        for w in data.shared_machine_warnings():
+            print(f"WARNING: {w}")
+        by_host = frontier(pts, x=x, minimize_x=minimize, by="host")
+        per = frontier(pts, x=x, minimize_x=minimize, by=["host", "intra_threads", "inter_threads"])
+        across = frontier(pts, x=x, minimize_x=minimize)
+        by_host["in_thread_setting"] = by_host["point_id"].map(dict(zip(per["point_id"], per["frontier_status"])))
+        by_host["across_hosts"] = by_host["point_id"].map(dict(zip(across["point_id"], across["frontier_status"])))
+        for h in data.hosts.itertuples():
+            mine = by_host[by_host["host"] == h.host]
+            mine.attrs.update(by_host.attrs)
+            ex = by_host.attrs.get("excluded")
+            if ex is not None and len(ex):
+                mine.attrs["excluded"] = ex[ex["point_id"].astype(str).str.endswith(f"@{h.host}")]
+            print(f"== host {h.host}: {host_line(h)}")
+            print(format_table(mine, x, show_all=args.all))
+            print()
+        print("status: frontier of that host's own points; across hosts: against every host's points "
+              "(latency from different machines; each run's conditions apply)")
     if args.output:
-        from speedbench.report import plot_frontier
+        from speedbench.report import plot_frontier, plot_host_frontiers
 
-        plot_frontier(run_.points, args.output, x=x, minimize_x=minimize)
+        if data.multi_host:
+            plot_host_frontiers(pts, args.output, x=x, minimize_x=minimize, titles=host_titles(data))
+        else:
+            plot_frontier(pts, args.output, x=x, minimize_x=minimize)
         print(f"plot written to {args.output}")
     return 0
+
+
+def host_line(h) -> str:
+    cpu = h.cpu_model or "CPU model not recorded"
+    cores = f", {h.cores_logical} logical cores" if h.cores_logical == h.cores_logical and h.cores_logical else ""
+    return f"{cpu}{cores} ({len(h.runs)} run(s), {h.points} point(s))"
+
+
+def host_titles(data) -> dict:
+    """Panel titles for per-host plots: the label, the CPU, and a warning for a shared machine."""
+    out = {}
+    for h in data.hosts.itertuples():
+        t = f"{h.host}\n{h.cpu_model or 'CPU not recorded'}"
+        if h.cores_logical == h.cores_logical and h.cores_logical:
+            t += f", {h.cores_logical} cores"
+        if h.shares_machine_with:
+            t += "\nshared machine: not for hardware comparison"
+        out[h.host] = t
+    return out
 
 
 def format_table(f, x: str, show_all: bool = False) -> str:
@@ -54,7 +103,8 @@ def format_table(f, x: str, show_all: bool = False) -> str:
     elif not f["accuracy_available"].any():
         lines.append("accuracy unavailable (untrained weights): ranked by the cost axis only")
     rows = f if show_all else f[f["frontier_status"] != "dominated"]
-    head = ["status", "in thread setting", "configuration", x, "mAP", "note"]
+    across = "across_hosts" in f.columns
+    head = ["status", "in thread setting", *(["across hosts"] if across else []), "configuration", x, "mAP", "note"]
     body = []
     for _, r in rows.iterrows():
         lo, hi = _ci(r, x)
@@ -64,7 +114,9 @@ def format_table(f, x: str, show_all: bool = False) -> str:
             f" [{r['map_ci_lo']:.3f}, {r['map_ci_hi']:.3f}]" if pd.notna(r.get("map_ci_lo")) else "")
         note = (f"tied with {r['tied_with']}" if r["tied_with"] else
                 f"dominated by {r['dominated_by']}" if r["dominated_by"] else "")
-        body.append([r["frontier_status"], r.get("in_thread_setting", ""), r["label"], val, acc, note])
+        body.append([r["frontier_status"], r.get("in_thread_setting", ""),
+                     *([r.get("across_hosts", "")] if across else []),
+                     r.get("config_label") if across else r["label"], val, acc, note])
     widths = [max(len(str(c)) for c in col) for col in zip(head, *body)]
     for cells in ([head] + body) if body else []:
         lines.append("  ".join(str(c).ljust(w) for c, w in zip(cells, widths)).rstrip())

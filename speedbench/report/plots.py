@@ -103,6 +103,93 @@ def plot_frontier(df: pd.DataFrame, path=None, x: str = "lat_p50_ms", y: str = "
     return _done(fig, path, svg)
 
 
+def plot_host_frontiers(df: pd.DataFrame, path=None, x: str = "lat_p50_ms", y: str = "map",
+                        minimize_x: bool = True, titles: dict | None = None, svg: bool = False,
+                        max_cols: int = 3) -> Figure:
+    """One frontier panel per host, side by side, sharing both axes so hosts compare at a glance.
+
+    Marker shape = family (one-/two-stage), colour = model, the same in every panel.
+    titles: {host: panel title}, e.g. CPU model and a shared-machine warning.
+    """
+    f = _frontier(df, x=x, y=y, minimize_x=minimize_x, by="host")
+    if not len(f):
+        return _empty("no successful points to plot", path, svg)
+    hosts = sorted(pd.unique(f["host"].astype(str)))
+    models = sorted(pd.unique(f["model"].astype(str)))
+    palette = [f"C{k % 10}" for k in range(len(models))]
+    colour = dict(zip(models, palette))
+    family = f.drop_duplicates("model").set_index("model")["family"].to_dict() if "family" in f.columns else {}
+    with_acc = f[f["accuracy_available"]]
+    ncols = min(len(hosts), max_cols)
+    nrows = -(-len(hosts) // ncols)
+    ranking = not len(with_acc)
+    per_row = max(f.groupby("host").size()) if ranking else 0
+    height = (_height(per_row) if ranking else 4.2) * nrows
+    fig = Figure(figsize=(4.6 * ncols + 1.8, height + 0.6))
+    axes = fig.subplots(nrows, ncols, sharex=True, sharey=not ranking, squeeze=False).ravel()
+    for ax in axes[len(hosts):]:
+        ax.axis("off")
+    for ax, host in zip(axes, hosts):
+        g = f[f["host"].astype(str) == host]
+        if ranking:
+            _host_ranking(ax, g, x, minimize_x, colour)
+        else:
+            _host_panel(ax, g[g["accuracy_available"]], x, y, minimize_x, colour)
+        ax.set_title(_text((titles or {}).get(host, host)), fontsize=9,
+                     color="#a00" if "shared machine" in str((titles or {}).get(host, "")) else "black")
+        ax.set_xlabel(axis_name(x), fontsize=9)
+        ax.grid(alpha=0.3)
+    if not ranking:
+        for ax in axes[::ncols]:
+            ax.set_ylabel(axis_name(y))
+    handles = [Line2D([], [], marker=FAMILY_STYLE.get(family.get(m), OTHER_STYLE)[0], color=colour[m], ls="",
+                      label=_text(f"{m} ({family.get(m) or 'other'})")) for m in models]
+    handles += [Line2D([], [], marker="o", color="grey", mfc="grey", ls="", label="frontier (filled)"),
+                Line2D([], [], marker="o", color="black", mfc="grey", ls="", label="tied within noise (black edge)"),
+                Line2D([], [], marker="o", color="grey", mfc="white", ls="", label="dominated (hollow)")]
+    fig.legend(handles=handles, fontsize=8, loc="upper left", bbox_to_anchor=(1.0, 0.95))
+    what = f"ranking on {axis_name(x)} (no accuracy)" if ranking else f"{axis_name(y)} vs {axis_name(x)}"
+    fig.suptitle(f"Per-host frontiers: {what}; each host's points measured on that host only", fontsize=10)
+    fig.tight_layout()
+    return _done(fig, path, svg)
+
+
+def _host_panel(ax, g: pd.DataFrame, x: str, y: str, minimize_x: bool, colour: dict) -> None:
+    xv, xlo, xhi = bounds(g, x)
+    yv, ylo, yhi = bounds(g, y)
+    status = g["frontier_status"].to_numpy()
+    models = g["model"].astype(str).to_numpy()
+    fam = g["family"].to_numpy() if "family" in g.columns else np.array([""] * len(g))
+    for m in pd.unique(models):
+        for st in ("dominated", "tied", "frontier"):
+            k = np.flatnonzero((models == m) & (status == st))
+            if not len(k):
+                continue
+            c = colour[m]
+            ax.errorbar(xv[k], yv[k], xerr=[xv[k] - xlo[k], xhi[k] - xv[k]], yerr=[yv[k] - ylo[k], yhi[k] - yv[k]],
+                        fmt=FAMILY_STYLE.get(fam[k[0]], OTHER_STYLE)[0], ms=8 if st == "frontier" else 6, ls="none",
+                        mfc="white" if st == "dominated" else c, mec="black" if st == "tied" else c, color=c,
+                        alpha=0.55 if st == "dominated" else 1.0, elinewidth=0.8, capsize=2)
+    front = g[g["frontier_status"] == "frontier"].sort_values(x, ascending=minimize_x)
+    if len(front) > 1:
+        ax.step(front[x], front[y], where="post", color="black", lw=1.0, zorder=0)
+    for _, r in front.iterrows():  # colour names the model; the label gives the rest
+        short = str(r.get("config_label") or r["label"]).split(" @ ", 1)[-1]
+        ax.annotate(_text(short), (r[x], r[y]), xytext=(4, 4), textcoords="offset points", fontsize=6.5)
+
+
+def _host_ranking(ax, g: pd.DataFrame, x: str, minimize_x: bool, colour: dict) -> None:
+    g = g.sort_values(x, ascending=minimize_x)
+    xv, xlo, xhi = bounds(g, x)
+    for k, (_, r) in enumerate(g.iterrows()):
+        c = colour[str(r["model"])]
+        st = r["frontier_status"]
+        ax.errorbar(xv[k], k, xerr=[[xv[k] - xlo[k]], [xhi[k] - xv[k]]], fmt=FAMILY_STYLE.get(r.get("family"), OTHER_STYLE)[0],
+                    color=c, mfc=c if st != "dominated" else "white", mec=c if st != "tied" else "black", capsize=2, ms=7)
+    ax.set_yticks(np.arange(len(g)), [_text(r.get("config_label") or r["label"]) for _, r in g.iterrows()], fontsize=7)
+    ax.invert_yaxis()
+
+
 def _place_labels(ax, rows: pd.DataFrame, x: str, y: str) -> None:
     """Annotate points, stepping a label down when it would sit on top of an earlier one."""
     if not len(rows):
