@@ -7,6 +7,8 @@ Public face:
 - Measurement(samples_ms) - every sample, percentiles, order-statistic CIs, CoV, noisy flag
 - PointResult - status/reason, measurement, stages (ms), profiling overhead, memory; .to_row()
 - measure_point(point, images, policy=Policy(), timeout_s=600) -> PointResult
+- measure_load(point, images, k, ...) / measure_scaling / measure_curve - throughput of K
+  concurrent workers, latency under load (speedbench.measure.load)
 - attribute_profile / Attributor - ORT profile node times -> stages (speedbench.measure.stages)
 
 Backends: "ort" (ONNX Runtime CPU), "eager" (PyTorch) and "synthetic" (a harness
@@ -22,9 +24,15 @@ _LAZY = {
     "measure_point": "speedbench.measure.launch",
     "Attributor": "speedbench.measure.stages",
     "attribute_profile": "speedbench.measure.stages",
+    "measure_load": "speedbench.measure.load",
+    "measure_scaling": "speedbench.measure.load",
+    "measure_curve": "speedbench.measure.load",
 }
 
-__all__ = list(_LAZY)
+# The sweep plans K > 1 (throughput) points only when this is true.
+SUPPORTS_CONCURRENCY = True
+
+__all__ = [*_LAZY, "SUPPORTS_CONCURRENCY"]
 
 
 def __getattr__(name):

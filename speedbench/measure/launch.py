@@ -74,6 +74,9 @@ def measure_point(point: Point, images, policy: Policy | None = None, timeout_s:
     policy = policy or Policy()
     point.validate()
     policy.validate()
+    if point.concurrency != 1:
+        raise UserError(f"point field 'concurrency': measure_point times one stream; "
+                        f"use measure_load for K={point.concurrency} concurrent workers")
     if not timeout_s or timeout_s <= 0:
         raise UserError(f"measure: timeout must be > 0 s, got {timeout_s!r}")
     arrays = load_images(images)

@@ -64,8 +64,8 @@ class Point:
             value = getattr(self, name)
             if not isinstance(value, int) or isinstance(value, bool) or value < 0:
                 raise UserError(f"point field {name!r}: expected an integer >= 0, got {value!r}")
-        if self.concurrency != 1:
-            raise UserError(f"point field 'concurrency': only 1 is measured so far, got {self.concurrency!r}")
+        if not isinstance(self.concurrency, int) or isinstance(self.concurrency, bool) or self.concurrency < 1:
+            raise UserError(f"point field 'concurrency': expected an integer >= 1, got {self.concurrency!r}")
         cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
         if self.affinity > cores:
             raise UserError(f"point field 'affinity': {self.affinity} cores requested, {cores} available")
