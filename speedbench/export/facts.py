@@ -40,9 +40,14 @@ def count_macs(model, spec, image) -> dict:
         path = "" if name == root else name[len(root) + 1:] if name.startswith(root + ".") else None
         if path is not None:
             paths[path] = flops
+    children: dict[str, float] = {}
+    for path, flops in paths.items():
+        parent = _parent(path, paths)
+        if parent is not None:
+            children[parent] = children.get(parent, 0) + flops
     per_stage: dict[str, float] = {}
     for path, flops in paths.items():
-        own = flops - sum(f for p, f in paths.items() if _parent(p, paths) == path and p != path)
+        own = flops - children.get(path, 0)
         if path == "":
             own += total - flops   # anything outside the model call (nothing, normally)
         stage = stage_of_scope(spec, path) if path else stage_of_scope(spec, "/Op")

@@ -30,23 +30,29 @@ def torchvision_weights(model_id: str):
     return get_weight(spec.weights_enum)
 
 
-def check_size(spec: ModelSpec, size) -> int:
+def _whole(value, flag: str) -> int:
+    """An int from an int, an integral float or a digit string; else a UserError naming the flag."""
+    import operator
+
     try:
-        value = int(size)
+        if isinstance(value, str):
+            return int(value.strip())
+        if isinstance(value, float) and value.is_integer():
+            return int(value)
+        return operator.index(value)
     except (TypeError, ValueError):
-        raise UserError(f"--size must be a whole number of pixels, not {size!r}") from None
-    if value != size and not (isinstance(size, str) and size.strip().isdigit()):
-        raise UserError(f"--size must be a whole number of pixels, not {size!r}")
+        raise UserError(f"{flag} must be a whole number, not {value!r}") from None
+
+
+def check_size(spec: ModelSpec, size) -> int:
+    value = _whole(size, "--size")
     if value < spec.min_size or value > MAX_SIZE:
         raise UserError(f"--size {value} is out of range for {spec.id}: use {spec.min_size}..{MAX_SIZE} px")
     return value
 
 
 def check_proposals(spec: ModelSpec, proposals) -> int:
-    try:
-        value = int(proposals)
-    except (TypeError, ValueError):
-        raise UserError(f"--proposals must be a whole number, not {proposals!r}") from None
+    value = _whole(proposals, "--proposals")
     if not spec.default_proposals:
         raise UserError(f"--proposals: model {spec.id} has no proposal/candidate knob")
     if value <= 0 or value > MAX_PROPOSALS:

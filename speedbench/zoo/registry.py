@@ -69,17 +69,18 @@ TORCHVISION_SPECS = (
 )
 
 # How the sweep's knobs land on each torchvision class (shown by `speedbench models`).
+# All of them resize through GeneralizedRCNNTransform; SSD builders give it a fixed size.
+_RCNN_ARCHS = ("FasterRCNN", "MaskRCNN", "KeypointRCNN")
 SIZE_KNOBS = {
-    "GeneralizedRCNN": "transform.min_size = size, transform.max_size = size x (native max/min), "
-                       "so the shorter image side is resized to `size`",
-    "SSD": "transform.fixed_size = (size, size): the image is resized to a size x size square",
+    "min_max": "transform.min_size = size, transform.max_size = size x (native max/min): the shorter "
+               "image side is resized to `size`, the longer one capped",
+    "fixed": "transform.fixed_size = (size, size): the image is resized to a size x size square",
 }
 PROPOSAL_KNOBS = {
-    "GeneralizedRCNN": "RPN at test time keeps the top `proposals` anchors per FPN level before NMS and "
-                       "`proposals` boxes after NMS (pre/post ratio as in the builder)",
-    "RetinaNet": "head keeps the top `proposals` candidates per FPN level before NMS (topk_candidates)",
-    "FCOS": "head keeps the top `proposals` candidates per FPN level before NMS (topk_candidates)",
-    "SSD": "keeps the top `proposals` candidates per class before NMS (topk_candidates)",
+    "rpn": "RPN at test time keeps the top `proposals` anchors per FPN level before NMS and `proposals` "
+           "boxes after NMS (rpn pre/post_nms_top_n_test; the builder's pre/post ratio is kept)",
+    "per_level": "head keeps the top `proposals` scoring candidates per FPN level before NMS (topk_candidates)",
+    "per_class": "keeps the top `proposals` scoring candidates per class before NMS (topk_candidates)",
 }
 
 
@@ -129,21 +130,15 @@ def arch_of(spec: ModelSpec) -> str:
     return type(build_model(spec.id, device="meta")).__name__
 
 
-def _knob_key(arch: str, table: dict) -> str | None:
-    if arch in table:
-        return arch
-    if arch in ("FasterRCNN", "MaskRCNN", "KeypointRCNN", "GeneralizedRCNN"):
-        return "GeneralizedRCNN" if "GeneralizedRCNN" in table else None
-    return None
-
-
 def describe_knobs(spec: ModelSpec) -> dict:
     arch = arch_of(spec)
-    size = SIZE_KNOBS.get(_knob_key(arch, SIZE_KNOBS) or "", "transform.min_size / max_size")
-    if arch == "SSD":
-        size = SIZE_KNOBS["SSD"]
-    key = _knob_key(arch, PROPOSAL_KNOBS)
-    props = PROPOSAL_KNOBS[key] if key and spec.default_proposals else "none (the model has no such knob)"
+    size = SIZE_KNOBS["fixed" if arch == "SSD" else "min_max"]
+    if not spec.default_proposals:
+        props = "none (the model has no proposal / candidate knob)"
+    elif arch in _RCNN_ARCHS:
+        props = PROPOSAL_KNOBS["rpn"]
+    else:
+        props = PROPOSAL_KNOBS["per_class" if arch == "SSD" else "per_level"]
     return {"arch": arch, "size_knob": size, "proposal_knob": props}
 
 
