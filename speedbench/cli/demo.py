@@ -33,7 +33,8 @@ def run(args) -> int:
         print(format_plan(expand_plan(profile), profile, out, resume=True))
         return 0
     paths = run_demo(args.output, quiet=args.quiet, budget_ms=args.budget_ms)
-    print(f"run directory:    {paths['run']}")
+    print(f"run directory:    {paths['run']} ({paths['points_ok']} point(s) measured, "
+          f"{paths['points_failed']} failed)")
     print(f"frontier plot:    {paths['frontier']}")
     print(f"report (HTML):    {paths['report_html']}")
     print(f"report (Markdown): {paths['report_md']}")

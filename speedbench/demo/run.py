@@ -38,7 +38,8 @@ def run_demo(out_dir=None, quiet: bool = False, budget_ms: float | None = None, 
     run_sweep(profile_path, out_dir=out, resume=resume, quiet=quiet, stream=stream, retry_failed=resume)
 
     df = load_run(out)
-    return {"run": out, **render(out, df, budget_ms)}
+    ok = int((df["status"] == "ok").sum())
+    return {"run": out, "points_ok": ok, "points_failed": len(df) - ok, **render(out, df, budget_ms)}
 
 
 def render(out: Path, df, budget_ms: float | None = None) -> dict:
