@@ -100,7 +100,7 @@ def test_pick_names_the_host(fleet_out, capsys):
     # A 5 ms budget: nothing on A fits (its fastest is 6 ms), B's det-one 320 (4.5 ms) does.
     p = pick(pts, 5.0)
     answers = dict(zip(p.per_host["host"], p.per_host["answer"]))
-    assert answers["edge-a"] == "nothing fits the limits (its fastest p50: 6.00 ms)"
+    assert answers["edge-a"] == "nothing fits the limits (fastest p50 6.00 ms, best mAP 0.350)"
     assert main(["pick", str(fleet_out), "--budget-ms", "10"]) == 0
     out = capsys.readouterr().out
     assert "Best within p50 <= 10 ms: det-two @ 320 / 100p / 1t on host cloud-b" in out and "Per host:" in out
@@ -245,9 +245,13 @@ def test_report_over_hosts_warns_about_a_shared_machine(tmp_path):
     (tmp_path / "prices.toml").write_text("[prices]\nedge-a = 0.10\ncloud-b = 0.80\n")
     prices = load_prices(tmp_path / "prices.toml")
     html = render_html(load_runs([out]), tmp_path / "r.html", budget_ms=10, prices=prices).read_text()
-    assert "host edge-a shared its machine with edge-c" in html
+    # Prominent: a caution box right under the question, before the answer.
+    warn = '<div class="warn"><strong>Caution.</strong> Host edge-a shared its machine with edge-c'
+    assert warn in html and html.index(warn) < html.index("<pre>") < html.index("<h2>Hosts")
     assert "Per-host frontiers" in html and html.count("<img") >= 1
     assert "Cost per million frames" in html
+    # The cheapest answer is on the shared host: the pick itself says it is not fit to compare hardware.
+    assert "the pick&#x27;s host edge-a shared its machine with edge-c" in html
     assert "per-host comparisons are only as good as each host&#x27;s run conditions" in html
     md = render_markdown(load_runs([out]), tmp_path / "r.md", budget_ms=10, prices=prices).read_text()
     assert "Which host and configuration" in md and "cheapest" in md.lower()

@@ -95,7 +95,8 @@ def shares_machine_with(run: Run) -> list[str]:
 @dataclass
 class Combined:
     """Points and samples of several runs, every row tagged with its host key."""
-    points: pd.DataFrame                 # `host` = host key; `config_label` = label without the host
+    points: pd.DataFrame                 # `host` = host key; `config_label` = label without the host;
+                                         # `shares_machine_with` = other labels on that machine ("" = none)
     samples: pd.DataFrame                # [point_id, i, ms], point ids as in `points`
     hosts: pd.DataFrame                  # one row per host: host, cpu_model, cores_logical, runs, points, shares_machine_with
     runs: list[Run] = field(default_factory=list)
@@ -139,6 +140,7 @@ def combine(runs) -> Combined:
         p = with_ids(r.points)
         p["host"] = key
         p["config_label"] = p["label"]
+        p["shares_machine_with"] = ", ".join(shares_machine_with(r))  # read by pick to flag its answer
         s = r.samples.copy() if r.samples is not None else pd.DataFrame(columns=["point_id", "i", "ms"])
         if multi:
             p["label"] = p["label"] + f" [{key}]"

@@ -194,6 +194,10 @@ def pick(df: pd.DataFrame, budget_ms: float, latency: str = "p50", threads=None,
             cov = best.get("lat_cov")
             spread = f" (CoV {cov:.0%})" if cov is not None and pd.notna(cov) else ""
             notes.append(f"the pick was flagged noisy{spread}: remeasure it on a quiet machine before relying on it")
+        shared = best.get("shares_machine_with", "")
+        if isinstance(shared, str) and shared:
+            notes.insert(0, f"the pick's host {best.get('host', '')} shared its machine with {shared} while it was "
+                            "measured: its latencies are not fit to compare hardware; remeasure that host alone")
         margin = float(budget_ms - best[col])
     else:
         best, margin, runners = None, None, fits
@@ -215,10 +219,15 @@ def _per_host(ok: pd.DataFrame, fits: pd.DataFrame, col: str, stat: str, priced:
             b = mine.iloc[0]
             extra = f", {_cost(b, short=True)}" if priced else ""
             answer = f"{b.get('config_label') or b['label']}: {stat} {b[col]:.2f} ms{_acc(b)}{extra}"
+            if isinstance(b.get("shares_machine_with", ""), str) and b.get("shares_machine_with", ""):
+                answer += " (shared machine: not for hardware comparison)"
             rows.append({"host": h, "point_id": b["point_id"], "answer": answer})
         else:
             theirs = ok[ok["host"].astype(str) == h]
             fastest = pd.to_numeric(theirs[col], errors="coerce").min()
-            rows.append({"host": h, "point_id": "", "answer": f"nothing fits the limits (its fastest {stat}: {fastest:.2f} ms)"
-                         if fastest == fastest else "nothing fits"})
+            best_map = pd.to_numeric(theirs["map"], errors="coerce").max() if "map" in theirs.columns else np.nan
+            facts = [f"fastest {stat} {fastest:.2f} ms" if fastest == fastest else "",
+                     f"best mAP {best_map:.3f}" if best_map == best_map else ""]
+            facts = ", ".join(x for x in facts if x)
+            rows.append({"host": h, "point_id": "", "answer": "nothing fits the limits" + (f" ({facts})" if facts else "")})
     return pd.DataFrame(rows)

@@ -11,15 +11,20 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from speedbench.analyse import frontier, pick
-from speedbench.analyse.common import latency_col, split_ok, with_ids
-from speedbench.analyse.runs import Run, as_run
+from speedbench.analyse import add_costs, combine, frontier, pick
+from speedbench.analyse.common import latency_col, split_ok
+from speedbench.analyse.runs import Run
 from speedbench.report import plots
 
 SAFETY = ("These are benchmark figures from one machine and a small held-out image set. They are no "
           "guarantee of latency or detection quality in a safety-relevant deployment (people, vehicles, "
           "machinery): such a deployment needs its own validation on its own hardware, data and failure "
           "modes, including worst-case latency under load.")
+
+SAFETY_HOSTS = ("These are benchmark figures from the hosts listed below, each measured in its own run on a small "
+                "held-out image set. They are no guarantee of latency or detection quality in a safety-relevant "
+                "deployment (people, vehicles, machinery): such a deployment needs its own validation on its own "
+                "hardware, data and failure modes, including worst-case latency under load.")
 
 TIMED = ("What is timed: one call of the exported ONNX graph on one image (onnxruntime session.run, or "
          "the eager model's forward under inference mode). Inside the timed region: the model's own "
@@ -31,53 +36,53 @@ TIMED = ("What is timed: one call of the exported ONNX graph on one image (onnxr
 
 
 def collect(runs) -> tuple[pd.DataFrame, pd.DataFrame, list[Run]]:
-    """One points table and one samples table from one or several runs.
+    """One points table and one samples table from one or several runs (see analyse.combine).
 
-    Each row gets a `host` (from the run's metadata when the row has none). With several
-    runs, labels and point ids carry a tag of their run (the host when hosts differ, else
-    the run's directory name) so that the same configuration from two runs stays apart.
+    Each row gets a `host` key. With several hosts, labels and point ids carry the host so
+    that the same configuration from two hosts stays apart.
     """
-    runs = [as_run(r) for r in (runs if isinstance(runs, (list, tuple)) else [runs])]
-    hosts = [str(r.meta.get("host") or "") for r in runs]
-    tags = hosts if len(set(hosts)) == len(runs) and all(hosts) else [Path(r.name).name or r.name for r in runs]
-    pts, smp = [], []
-    for r, host, tag in zip(runs, hosts, tags):
-        p = with_ids(r.points)
-        p["host"] = p["host"].where(p["host"].astype(str) != "", host) if "host" in p.columns else host
-        s = r.samples.copy() if r.samples is not None else pd.DataFrame(columns=["point_id", "i", "ms"])
-        if len(runs) > 1:
-            p["label"] = p["label"] + f" [{tag}]"
-            p["point_id"] = p["point_id"].astype(str) + f"@{tag}"
-            s["point_id"] = s["point_id"].astype(str) + f"@{tag}"
-        pts.append(p)
-        smp.append(s)
-    points = pd.concat(pts, ignore_index=True) if pts else pd.DataFrame()
-    samples = pd.concat(smp, ignore_index=True) if smp else pd.DataFrame(columns=["point_id", "i", "ms"])
-    return points, samples, runs
+    data = combine(runs)
+    return data.points, data.samples, data.runs
 
 
-def build(runs, budget_ms=None, latency: str = "p50", title: str | None = None) -> tuple[str, list]:
-    points, samples, runs = collect(runs)
+def build(runs, budget_ms=None, latency: str = "p50", title: str | None = None,
+          prices: dict | None = None) -> tuple[str, list]:
+    data = combine(runs)
+    points, samples, runs = data.points, data.samples, data.runs
     col = latency_col(latency)
     stat = col[4:-3]
     ok, failed = split_ok(points)
     blocks: list = []
     trained = ok["map"].notna().any() if "map" in ok.columns else False
-    hosts = sorted({str(h) for h in ok.get("host", pd.Series(dtype=str)) if str(h)})
+    multi = data.multi_host
+    hosts = data.host_names
 
     blocks.append(("h2", "The question"))
-    cpu = (runs[0].meta.get("env") or {}).get("cpu_model", "this CPU") if runs else "this CPU"
-    q = f"Which detector configuration (model, input size, proposal count, thread setting) to run on {cpu}"
-    q += f" within {budget_ms:g} ms ({stat} latency)?" if budget_ms else f", trading {stat} latency against accuracy?"
+    if multi:
+        q = (f"Which host and configuration (model, input size, proposal count, thread setting) to run, among "
+             f"{len(hosts)} hosts ({', '.join(hosts)})")
+    else:
+        cpu = (runs[0].meta.get("env") or {}).get("cpu_model") or "this CPU"
+        q = f"Which detector configuration (model, input size, proposal count, thread setting) to run on {cpu}"
+    if budget_ms:
+        q += f" within {budget_ms:g} ms ({stat} latency)"
+        q += ", at the lowest cost per million frames?" if prices is not None else "?"
+    else:
+        q += f", trading {stat} latency against accuracy?"
     blocks.append(("p", q))
-    blocks.extend(_answer(ok, budget_ms, latency, col, trained))
-    blocks.append(("warn", SAFETY))
+    for w in data.shared_machine_warnings():
+        blocks.append(("warn", w[0].upper() + w[1:] + "."))
+    blocks.extend(_answer(ok, budget_ms, latency, col, trained, prices, multi))
+    safety = SAFETY_HOSTS if multi else SAFETY
+    blocks.append(("warn", safety))
 
+    if multi:
+        blocks.extend(_hosts_section(data, prices))
     blocks.append(("h2", "Environment"))
     for r in runs:
+        if multi:
+            blocks.append(("p", f"Run {r.name}:"))
         blocks.append(("table", ["item", "value"], _env_rows(r)))
-    if len(hosts) > 1:
-        blocks.append(("p", f"Points come from {len(hosts)} hosts ({', '.join(hosts)}); compare them per host."))
 
     blocks.append(("h2", "Method"))
     blocks.append(("p", TIMED))
@@ -99,9 +104,12 @@ def build(runs, budget_ms=None, latency: str = "p50", title: str | None = None) 
     if not trained:
         blocks.append(("warn", "Accuracy is unavailable (untrained weights): configurations are ranked by "
                                "latency only, which says nothing about detection quality."))
-    blocks.append(("figure", "frontier", plots.plot_frontier(ok, x=col), f"Frontier on {stat} latency. "
-                   "Filled: on the frontier; black edge: beaten only within noise (tied); hollow: dominated."))
-    f = frontier(ok, x=col) if len(ok) else pd.DataFrame()
+    if multi:
+        blocks.extend(_host_frontier_blocks(ok, data, col, stat))
+    else:
+        blocks.append(("figure", "frontier", plots.plot_frontier(ok, x=col), f"Frontier on {stat} latency. "
+                       "Filled: on the frontier; black edge: beaten only within noise (tied); hollow: dominated."))
+    f = frontier(ok, x=col) if len(ok) and not multi else pd.DataFrame()
     if len(f):
         # Status within each thread setting too: a team with a fixed core budget reads that column.
         per = frontier(ok, x=col, by=["host", "intra_threads", "inter_threads"])
@@ -113,12 +121,15 @@ def build(runs, budget_ms=None, latency: str = "p50", title: str | None = None) 
                          _num(r.get("rss_peak_mib"), 0), r["tied_with"]] for _, r in keep.iterrows()]))
         blocks.append(("p", f"{int((f['frontier_status'] == 'dominated').sum())} dominated configuration(s) "
                             "are not listed here; they appear in the table of all points."))
+    draw = (lambda x, **kw: plots.plot_host_frontiers(ok, x=x, titles=_titles(data), **kw)) if multi else \
+        (lambda x, **kw: plots.plot_frontier(ok, x=x, **kw))
     if len(ok) and "rss_peak_mib" in ok.columns and ok["rss_peak_mib"].notna().any():
-        blocks.append(("figure", "frontier_memory", plots.plot_frontier(ok, x="rss_peak_mib"),
-                       "Frontier on peak memory."))
+        blocks.append(("figure", "frontier_memory", draw("rss_peak_mib"), "Frontier on peak memory."))
     if len(ok) and "fps" in ok.columns and ok["fps"].notna().any():
-        blocks.append(("figure", "frontier_fps", plots.plot_frontier(ok, x="fps", minimize_x=False),
+        blocks.append(("figure", "frontier_fps", draw("fps", minimize_x=False),
                        "Frontier on single-stream throughput (frames/s)."))
+    if prices is not None:
+        blocks.extend(_cost_blocks(ok, prices, col, stat, multi))
 
     blocks.append(("h2", "Stage breakdown"))
     blocks.append(("figure", "stages", plots.plot_stages(ok), "Per-stage time from a separate profiled pass; "
@@ -154,20 +165,24 @@ def build(runs, budget_ms=None, latency: str = "p50", title: str | None = None) 
         blocks.append(("table", ["configuration", "reason"], [[r["label"], r["reason"]] for _, r in failed.iterrows()]))
 
     blocks.append(("h2", "Caveats"))
-    blocks.append(("list", _caveats(ok, trained, hosts)))
-    blocks.append(("warn", SAFETY))
+    blocks.append(("list", _caveats(ok, trained, hosts, prices is not None)))
+    blocks.append(("warn", safety))
     name = title or f"speedbench report: {', '.join(r.name for r in runs) or 'run'}"
     return name, blocks
 
 
-def _answer(ok, budget_ms, latency, col, trained):
+def _answer(ok, budget_ms, latency, col, trained, prices=None, multi=False):
     out = []
     if not len(ok):
         return [("warn", "No configuration was measured successfully; there is nothing to recommend.")]
     if budget_ms:
-        p = pick(ok, budget_ms, latency=latency)
+        p = pick(ok, budget_ms, latency=latency, prices=prices)
         out.append(("pre", p.to_text()))
         return out
+    if multi:
+        return [("list", [f"Host {h}: {_host_summary(g, col, trained)}" for h, g in ok.groupby("host", sort=True)]),
+                ("p", "Pick within your budget with `speedbench pick RUN... --budget-ms X` "
+                      "(add --price-table for the cheapest host per million frames).")]
     f = frontier(ok, x=col)
     front = f[f["frontier_status"] == "frontier"]
     if trained:
@@ -183,6 +198,92 @@ def _answer(ok, budget_ms, latency, col, trained):
         out.append(("p", f"Fastest: {fast['label']} ({fast[col]:.2f} ms). Accuracy is unavailable "
                          "(untrained weights), so this answers the latency question only."))
     return out
+
+
+def _host_summary(g, col, trained) -> str:
+    f = frontier(g, x=col)
+    front = f[f["frontier_status"] == "frontier"]
+    fast = front.loc[front[col].idxmin()]
+    text = f"fastest on its frontier {fast['config_label']} ({fast[col]:.2f} ms"
+    if trained and front["map"].notna().any():
+        best = front.loc[front["map"].idxmax()]
+        return text + f", mAP {_num(fast['map'], 3)}); most accurate {best['config_label']} ({best[col]:.2f} ms, " \
+                      f"mAP {_num(best['map'], 3)})"
+    return text + "; accuracy unavailable)"
+
+
+def _titles(data) -> dict:
+    out = {}
+    for h in data.hosts.itertuples():
+        t = f"{h.host}\n{h.cpu_model or 'CPU not recorded'}"
+        if _num(h.cores_logical, 0):
+            t += f", {_num(h.cores_logical, 0)} cores"
+        if h.shares_machine_with:
+            t += "\nshared machine: not for hardware comparison"
+        out[h.host] = t
+    return out
+
+
+def _hosts_section(data, prices) -> list:
+    rows = []
+    for h in data.hosts.itertuples():
+        price = "" if prices is None else (f"{prices[h.host]:g}" if h.host in prices else "not in table")
+        rows.append([h.host, h.cpu_model or "", _num(h.cores_logical, 0), "; ".join(h.runs), str(h.points),
+                     price, ", ".join(h.shares_machine_with) or "-"])
+    head = ["host", "CPU model", "logical cores", "run(s)", "points", "USD / host-hour", "shared machine with"]
+    return [("h2", "Hosts"),
+            ("p", "Each host's points were measured on that host, in its own run; a host is its label, or, "
+                  "without one, its CPU model and core count. Compare hosts through their own frontiers, "
+                  "not through single figures."),
+            ("table", head if prices is not None else head[:5] + head[6:],
+             rows if prices is not None else [r[:5] + r[6:] for r in rows])]
+
+
+def _host_frontier_blocks(ok, data, col, stat) -> list:
+    blocks = [("figure", "frontier", plots.plot_host_frontiers(ok, x=col, titles=_titles(data)),
+               f"Per-host frontiers on {stat} latency, side by side with shared axes. Marker: one-stage "
+               "(circle) or two-stage (square); colour: model. Filled: on that host's frontier; black edge: "
+               "tied within noise; hollow: dominated.")]
+    if not len(ok):
+        return blocks
+    by_host = frontier(ok, x=col, by="host")
+    overall = frontier(ok, x=col)
+    across = dict(zip(overall["point_id"], overall["frontier_status"]))
+    per = frontier(ok, x=col, by=["host", "intra_threads", "inter_threads"])
+    within = dict(zip(per["point_id"], per["frontier_status"]))
+    keep = by_host[by_host["frontier_status"] != "dominated"]
+    blocks.append(("table", ["host", "status on its host", "across hosts", "in its thread setting", "configuration",
+                             f"{stat} ms [CI]", "mAP [CI]", "peak MiB"],
+                   [[r["host"], r["frontier_status"], across.get(r["point_id"], ""), within.get(r["point_id"], ""),
+                     r["config_label"], _ms_ci(r, col), _map_ci(r), _num(r.get("rss_peak_mib"), 0)]
+                    for _, r in keep.iterrows()]))
+    blocks.append(("p", f"{int((by_host['frontier_status'] == 'dominated').sum())} configuration(s) dominated on "
+                        "their own host are not listed here; they appear in the table of all points. "
+                        "\"Across hosts\" marks a point against every host's points: latencies from different "
+                        "machines, each under its own run's conditions."))
+    return blocks
+
+
+def _cost_blocks(ok, prices, col, stat, multi) -> list:
+    c = add_costs(ok, prices)
+    c = c[c["usd_per_mframe"].notna()].sort_values("usd_per_mframe")
+    blocks = [("h2", "Cost per million frames")]
+    if not len(c):
+        return blocks + [("p", "No host of these runs has a price in the price table (or no frame rate was "
+                               "recorded): no cost can be given.")]
+    blocks.append(("p", "Cost per million frames = USD per host-hour / (frames per second x 3600) x 1e6. The frame "
+                        "rate is the throughput of K concurrent workers (tput_fps, `speedbench load`) where a "
+                        "row has one, else one stream's rate (1000 / p50), which leaves the host's other cores "
+                        "idle and so overstates the cost on a host with many cores. Each row says which."))
+    blocks.append(("table", ["host", "configuration", f"{stat} ms", "mAP", "frames/s", "frame rate from",
+                             "USD / h", "USD / million frames"],
+                   [[r["host"], r.get("config_label") or r["label"], _num(r[col], 2), _num(r.get("map"), 3),
+                     _num(r["frames_per_s"], 1), r["fps_source"], f"{r['usd_per_hour']:g}",
+                     f"{r['usd_per_mframe']:.4g}"] for _, r in c.head(30).iterrows()]))
+    missing = sorted(set(ok["host"].astype(str)) - set(prices))
+    if missing:
+        blocks.append(("p", f"No price for host(s) {', '.join(missing)}: left out of this table."))
+    return blocks
 
 
 def _env_rows(run: Run) -> list[list[str]]:
@@ -240,9 +341,20 @@ def _noise_lines(ok) -> list[str]:
     return lines
 
 
-def _caveats(ok, trained, hosts) -> list[str]:
+def _caveats(ok, trained, hosts, priced=False) -> list[str]:
     out = [f"One host{'' if len(hosts) <= 1 else ' per run'}: the figures hold for this CPU, its instruction "
            "set (AVX2 / AVX-512 / AMX), memory and load. Another CPU model can rank configurations differently.",
+           "Benchmark figures measured on one host are not guarantees, not even for another machine of the "
+           "same type; a safety-relevant deployment needs its own validation."]
+    if len(hosts) > 1:
+        out.append("Several hosts: per-host comparisons are only as good as each host's run conditions (other "
+                   "load, frequency governor, thermal state, neighbours on shared cloud hardware, the "
+                   "speedbench and library versions of each run). A host that shared its machine with another "
+                   "label during a fleet sweep must not be used to compare hardware.")
+    if priced:
+        out.append("Costs use the prices in the given table and the measured frame rates; they leave out "
+                   "everything else a deployment pays for (storage, network, idle capacity, operations).")
+    out += [
            "No extrapolation: sizes, proposal counts and thread settings that were not measured are not "
            "covered; latency is not linear in input size or thread count.",
            "The machine may be shared: points flagged noisy, and ties on the frontier, can swap on a rerun."]

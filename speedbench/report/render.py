@@ -34,10 +34,14 @@ def _writable(out_path) -> Path:
     return out
 
 
-def render_html(run_paths_or_frames, out_path, budget_ms=None, latency: str = "p50", title=None) -> Path:
-    """Write the review report as a single HTML file and return its path."""
+def render_html(run_paths_or_frames, out_path, budget_ms=None, latency: str = "p50", title=None,
+                prices=None) -> Path:
+    """Write the review report as a single HTML file and return its path.
+
+    Several runs give per-host sections; prices ({host: USD per host-hour}) add costs.
+    """
     out = _writable(out_path)
-    name, blocks = build(run_paths_or_frames, budget_ms=budget_ms, latency=latency, title=title)
+    name, blocks = build(run_paths_or_frames, budget_ms=budget_ms, latency=latency, title=title, prices=prices)
     css = resources.files("speedbench.report").joinpath("report.css").read_text()
     parts = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
              f"<title>{esc(name)}</title><style>{css}</style></head><body>", f"<h1>{esc(name)}</h1>"]
@@ -72,10 +76,11 @@ def _html_table(header, rows) -> str:
     return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
 
 
-def render_markdown(run_paths_or_frames, out_path, budget_ms=None, latency: str = "p50", title=None) -> Path:
+def render_markdown(run_paths_or_frames, out_path, budget_ms=None, latency: str = "p50", title=None,
+                    prices=None) -> Path:
     """Write the report as Markdown; figures go to PNG files in `<name>_files/` beside it."""
     out = _writable(out_path)
-    name, blocks = build(run_paths_or_frames, budget_ms=budget_ms, latency=latency, title=title)
+    name, blocks = build(run_paths_or_frames, budget_ms=budget_ms, latency=latency, title=title, prices=prices)
     img_dir = out.with_name(out.stem + "_files")
     lines = [f"# {_md(name)}", ""]
     for b in blocks:
