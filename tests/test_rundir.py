@@ -124,3 +124,10 @@ def test_row_values_survive_roundtrip(tmp_path):
     raw = json.loads(sqlite3.connect(tmp_path / "run" / "points.sqlite").execute(
         "SELECT row FROM points").fetchone()[0])
     assert raw["point_id"] == "a"
+
+
+def test_run_interrupted_while_being_created(tmp_path):
+    RunDir.create(tmp_path / "run", "", {"env": {}}).close()
+    (tmp_path / "run" / "meta.json").unlink()      # as if killed before meta.json was written
+    with pytest.raises(UserError, match=r"meta.json: missing \(incomplete run directory"):
+        load_run(tmp_path / "run")

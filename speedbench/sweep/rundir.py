@@ -245,7 +245,10 @@ class RunDir:
         try:
             meta = json.loads(meta_path.read_text())
         except FileNotFoundError:
-            raise UserError(f"{meta_path}: missing (incomplete run directory)") from None
+            # meta.json is written last at creation and only ever replaced atomically after:
+            # without it the run was interrupted while being created, before any point.
+            raise UserError(f"{meta_path}: missing (incomplete run directory, interrupted before any "
+                            f"point was measured; start a new one)") from None
         except (json.JSONDecodeError, UnicodeDecodeError) as exc:
             raise UserError(f"{meta_path}: corrupt metadata ({exc})") from None
         if not isinstance(meta, dict):
