@@ -281,6 +281,18 @@ def test_missing_checkpoint_or_dataset_fails_before_any_run_directory(tmp_path, 
     assert main(["sweep", str(bad_data), "-o", str(tmp_path / "r2")]) == 2
     assert "no/such/set.json: dataset not found" in capsys.readouterr().err
     assert not (tmp_path / "r1").exists() and not (tmp_path / "r2").exists()
+    (tmp_path / "afile").write_text("x")
+    good = write_profile(tmp_path, sizes="[64]")
+    assert main(["sweep", str(good), "-o", str(tmp_path / "afile")]) == 2
+    assert "afile: exists and is not a directory" in capsys.readouterr().err
+    (tmp_path / "full").mkdir()
+    (tmp_path / "full" / "keep.txt").write_text("x")
+    assert main(["sweep", str(good), "-o", str(tmp_path / "full")]) == 2
+    assert "full: exists and is not empty" in capsys.readouterr().err
+    assert main(["sweep", str(good), "-o", str(tmp_path / "none"), "--resume"]) == 2
+    assert "none: run directory not found" in capsys.readouterr().err
+    assert main(["sweep", str(good), "--retry-failed"]) == 2
+    assert "--retry-failed: only together with --resume" in capsys.readouterr().err
 
 
 def test_concurrency_axis_measures_throughput_points(tmp_path):

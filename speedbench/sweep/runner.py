@@ -66,6 +66,8 @@ def _open_run(profile: Profile, out: Path, resume: bool) -> RunDir:
 
         rd.update_meta(resumed=list(rd.meta().get("resumed") or []) + [now_iso()], finished=None)
         return rd
+    if out.exists() and not out.is_dir():
+        raise UserError(f"{out}: exists and is not a directory; choose another output directory")
     if out.exists() and any(out.iterdir()) and not (out / "meta.json").exists():
         raise UserError(f"{out}: exists and is not empty; choose another output directory")
     from speedbench.sweep.env import environment_fingerprint
