@@ -131,3 +131,18 @@ def test_run_interrupted_while_being_created(tmp_path):
     (tmp_path / "run" / "meta.json").unlink()      # as if killed before meta.json was written
     with pytest.raises(UserError, match=r"meta.json: missing \(incomplete run directory"):
         load_run(tmp_path / "run")
+
+
+def test_write_failure_keeps_earlier_points(tmp_path):
+    rd = RunDir.create(tmp_path / "run", "", {"env": {}})
+    rd.write_point(_row("a"), [1.0])
+    # Another connection holds the write lock: the store cannot commit (like a full disk would).
+    blocker = sqlite3.connect(tmp_path / "run" / "points.sqlite", isolation_level=None)
+    blocker.execute("BEGIN EXCLUSIVE")
+    rd._db.execute("PRAGMA busy_timeout = 50")
+    with pytest.raises(UserError, match=r"cannot store point b .*points stored so far are kept"):
+        rd.write_point(_row("b"), [2.0])
+    blocker.execute("ROLLBACK")
+    blocker.close()
+    rd.close()
+    assert list(load_run(tmp_path / "run")["point_id"]) == ["a"]

@@ -211,6 +211,12 @@ class RunDir:
             db.execute("DELETE FROM samples WHERE point_id = ?", (pid,))
             db.executemany("INSERT INTO samples (point_id, i, ms) VALUES (?, ?, ?)", samples)
             db.execute("COMMIT")
+        except sqlite3.Error as exc:
+            if db.in_transaction:
+                db.execute("ROLLBACK")
+            # e.g. disk full or the file made read-only: say so; earlier points are intact.
+            raise UserError(f"{self.path / DB_FILE}: cannot store point {pid} ({exc}); "
+                            f"points stored so far are kept") from None
         except BaseException:
             if db.in_transaction:
                 db.execute("ROLLBACK")
