@@ -67,3 +67,28 @@ def test_fpn_model_without_its_source_backbone_is_a_user_error(tmp_path, capsys)
 
     assert main(["train", "--model", "demo_frcnn", "--steps", "1", "--out", str(tmp_path)]) == 2
     assert "demo_ssdlite" in capsys.readouterr().err
+
+
+def test_two_phase_chain_writes_weights_manifest_and_backbone_source(tmp_path, monkeypatch):
+    # The real recipe shrunk to a few steps: phase 1, phase 2 on fresh scenes, then an FPN
+    # model that starts from the phase-1 backbone; all entries land in one manifest.
+    import json
+
+    from speedbench.demo import train as tr
+
+    small = {k: {**v, "steps": 2, "batch": 2} for k, v in tr.RECIPES.items()}
+    small["demo_ssdlite"]["second"] = {"steps": 2, "lr": 1e-3}
+    monkeypatch.setattr(tr, "RECIPES", small)
+    tr.train(["demo_ssdlite", "demo_frcnn_lite"], out_dir=tmp_path, heldout_images=2, threads=2,
+             log=lambda s: None)
+    manifest = json.loads((tmp_path / "manifest.json").read_text())["models"]
+    assert list(manifest) == ["demo_ssdlite", "demo_frcnn_lite"]
+    ssd = manifest["demo_ssdlite"]
+    assert [p["recipe"]["steps"] for p in ssd["phases"]] == [2, 2] and ssd["recipe"]["steps"] == 4
+    assert ssd["phases"][1]["recipe"]["first_scene"] == 4  # phase 2 sees new scenes
+    assert (tmp_path / ssd["recipe"]["phase1_file"]).is_file()
+    lite = manifest["demo_frcnn_lite"]
+    assert "demo_ssdlite.phase1" in lite["recipe"]["init"]
+    for e in manifest.values():
+        assert e["heldout"]["n_images"] == 2 and e["heldout_check"]["n_images"] == 2
+        assert (tmp_path / e["file"]).is_file()

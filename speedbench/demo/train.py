@@ -32,11 +32,15 @@ ORDER = ("demo_ssdlite", "demo_fcos", "demo_frcnn", "demo_frcnn_lite")
 # 2-16) already carry detection features for these scenes, and no backward pass through
 # the high-resolution layers makes a step several times cheaper.
 _FROZEN = list(range(13))
+# demo_ssdlite trains in two phases: the FPN models start from its backbone after phase 1
+# (kept as demo_ssdlite.phase1.pt), so they can train while phase 2 continues on fresh scenes.
+_BASE = "demo_ssdlite.phase1"
 RECIPES = {
-    "demo_ssdlite": {"steps": 260, "batch": 8, "lr": 3e-3, "init": None, "freeze": []},
-    "demo_fcos": {"steps": 200, "batch": 8, "lr": 2e-3, "init": "demo_ssdlite", "freeze": _FROZEN},
-    "demo_frcnn": {"steps": 200, "batch": 8, "lr": 2e-3, "init": "demo_ssdlite", "freeze": _FROZEN},
-    "demo_frcnn_lite": {"steps": 200, "batch": 8, "lr": 2e-3, "init": "demo_ssdlite", "freeze": _FROZEN},
+    "demo_ssdlite": {"steps": 260, "batch": 8, "lr": 3e-3, "init": None, "freeze": [],
+                     "second": {"steps": 200, "lr": 1.5e-3}},
+    "demo_fcos": {"steps": 200, "batch": 8, "lr": 2e-3, "init": _BASE, "freeze": _FROZEN},
+    "demo_frcnn": {"steps": 200, "batch": 8, "lr": 2e-3, "init": _BASE, "freeze": _FROZEN},
+    "demo_frcnn_lite": {"steps": 200, "batch": 8, "lr": 2e-3, "init": _BASE, "freeze": _FROZEN},
 }
 COMMON = {"optimizer": "AdamW", "weight_decay": 1e-4, "schedule": "one-cycle (cosine), 15% warm-up",
           "grad_clip": 5.0, "augment": "horizontal flip p=0.5", "image_size": [320, 320]}
@@ -85,8 +89,13 @@ def transfer_backbone(source_state: dict, model) -> int:
 
 
 def train_model(model_id: str, steps: int | None = None, batch: int | None = None, seed: int = 0,
-                out_dir=None, log=print, init_state: dict | None = None, lr: float | None = None):
-    """Train one model; returns (model, info) where info has losses, seconds, recipe."""
+                out_dir=None, log=print, init_state: dict | None = None, lr: float | None = None,
+                resume_state: dict | None = None, first_scene: int = 0):
+    """Train one model; returns (model, info) where info has losses, seconds, recipe.
+
+    resume_state: a full state_dict to continue from (phase 2); first_scene: index of the
+    first train scene, so a continuation sees scenes the first phase did not.
+    """
     import torch
 
     from speedbench.zoo.compact import BUILDERS, NUM_CLASSES
@@ -94,7 +103,8 @@ def train_model(model_id: str, steps: int | None = None, batch: int | None = Non
     if model_id not in RECIPES:
         raise UserError(f"--model must be one of {', '.join(ORDER)} or all, not {model_id!r}")
 
-    recipe = {**RECIPES[model_id], **COMMON, "seed": seed, "threads": torch.get_num_threads()}
+    recipe = {k: v for k, v in RECIPES[model_id].items() if k != "second"}
+    recipe.update(COMMON, seed=seed, threads=torch.get_num_threads())
     if steps is not None:
         recipe["steps"] = steps
     if batch is not None:
@@ -106,11 +116,16 @@ def train_model(model_id: str, steps: int | None = None, batch: int | None = Non
     torch.manual_seed(seed)
     model = BUILDERS[model_id](num_classes=NUM_CLASSES)
     source = recipe["init"]
-    if source is not None:
+    if resume_state is not None:
+        model.load_state_dict({k: v.float() if v.is_floating_point() else v for k, v in resume_state.items()})
+        recipe["init"] = "continued from the first phase's weights"
+        recipe["first_scene"] = first_scene
+    elif source is not None:
         if init_state is None:
             path = Path(out_dir or WEIGHTS_DIR) / f"{source}.pt"
             if not path.is_file():
-                raise UserError(f"{path}: {model_id} starts from {source}'s backbone; train {source} first")
+                raise UserError(f"{path}: {model_id} starts from {source}'s backbone; "
+                                f"train {source.split('.')[0]} first")
             init_state = torch.load(path, map_location="cpu", weights_only=True)
         n = transfer_backbone(init_state, model)
         recipe["init"] = f"backbone initialised from {source}'s trained backbone ({n} tensors), rest random"
@@ -124,11 +139,11 @@ def train_model(model_id: str, steps: int | None = None, batch: int | None = Non
     opt = torch.optim.AdamW(params, lr=recipe["lr"], weight_decay=recipe["weight_decay"])
     sched = torch.optim.lr_scheduler.OneCycleLR(opt, max_lr=recipe["lr"], total_steps=recipe["steps"],
                                                 pct_start=0.15)
-    rng_flip = np.random.default_rng([seed, 99])
+    rng_flip = np.random.default_rng([seed, 99, first_scene])
     losses = []
     wall0, cpu0 = time.perf_counter(), time.process_time()
     for step in range(recipe["steps"]):
-        images, targets = batch_targets(rng_flip, seed, step * recipe["batch"], recipe["batch"])
+        images, targets = batch_targets(rng_flip, seed, first_scene + step * recipe["batch"], recipe["batch"])
         loss = sum(model(images, targets).values())
         opt.zero_grad(set_to_none=True)
         loss.backward()
@@ -166,6 +181,7 @@ def save_weights(model, model_id: str, info: dict, out_dir, heldout: dict) -> di
         "loss_first_last": [round(float(np.mean(info["losses"][:20])), 4),
                             round(float(np.mean(info["losses"][-20:])), 4)],
         "heldout": heldout,
+        **({"phases": info["phases"]} if "phases" in info else {}),
         "torch": torch.__version__.split("+")[0],
         "storage": "fp16 state_dict (torch.save); load with torch.load(weights_only=True), cast to float32",
     }
@@ -224,8 +240,43 @@ def _order(model_id):
     return ORDER.index(model_id) if model_id in ORDER else len(ORDER)
 
 
+def _two_phases(model_id, seed, out_dir, log, reuse_first: bool):
+    """Phase 1 (saved as <id>.phase1.pt, the FPN models' backbone source), then phase 2."""
+    import torch
+
+    first = out_dir / f"{model_id}.phase1.pt"
+    if reuse_first and first.is_file():
+        # Phase 1 was trained earlier by this script; its figures are in the manifest entry.
+        entry = json.loads((out_dir / "manifest.json").read_text())["models"][model_id]
+        p1 = entry.get("phases", [entry])[0]
+        info1 = {"recipe": p1["recipe"], "train_seconds": p1["train_seconds"],
+                 "train_cpu_seconds": p1["train_cpu_seconds"]}
+        state = torch.load(first, map_location="cpu", weights_only=True)
+        log(f"{model_id}: reusing phase 1 from {first}")
+    else:
+        model, info1 = train_model(model_id, seed=seed, out_dir=out_dir, log=log)
+        state = {k: (v.half() if v.is_floating_point() else v) for k, v in model.state_dict().items()}
+        torch.save(state, first)
+        info1 = {k: info1[k] for k in ("recipe", "train_seconds", "train_cpu_seconds")}
+    second = RECIPES[model_id]["second"]
+    start = info1["recipe"]["steps"] * info1["recipe"]["batch"]
+    model, info2 = train_model(model_id, steps=second["steps"], lr=second["lr"], seed=seed, out_dir=out_dir,
+                               log=log, resume_state=state, first_scene=start)
+    phases = [info1, {k: info2[k] for k in ("recipe", "train_seconds", "train_cpu_seconds")}]
+    recipe = {**info1["recipe"], "steps": sum(p["recipe"]["steps"] for p in phases),
+              "schedule": "two one-cycle phases: "
+                          + " then ".join(f"{p['recipe']['steps']} steps at max lr {p['recipe']['lr']}"
+                                          for p in phases),
+              "phase1_file": first.name,
+              "phase1_sha256": hashlib.sha256(first.read_bytes()).hexdigest()}
+    info = {"recipe": recipe, "losses": info2["losses"], "phases": phases,
+            "train_seconds": round(sum(p["train_seconds"] for p in phases), 1),
+            "train_cpu_seconds": round(sum(p["train_cpu_seconds"] for p in phases), 1)}
+    return model, info
+
+
 def train(models="all", steps=None, out_dir=None, seed: int = 0, heldout_images: int = HELDOUT_IMAGES,
-          log=print, threads: int = 2) -> dict:
+          log=print, threads: int = 2, reuse_first: bool = False) -> dict:
     """Train, evaluate and save the requested models in dependency order; returns manifest entries."""
     import torch
 
@@ -238,7 +289,10 @@ def train(models="all", steps=None, out_dir=None, seed: int = 0, heldout_images:
     out_dir = Path(out_dir or WEIGHTS_DIR)
     entries = {}
     for m in sorted(ids, key=_order):
-        model, info = train_model(m, steps=steps, seed=seed, out_dir=out_dir, log=log)
+        if "second" in RECIPES[m] and steps is None:
+            model, info = _two_phases(m, seed, out_dir, log, reuse_first)
+        else:
+            model, info = train_model(m, steps=steps, seed=seed, out_dir=out_dir, log=log)
         save_weights(model, m, info, out_dir, {})
         figures = score_saved(m, out_dir, n=heldout_images, check_n=min(CHECK_IMAGES, heldout_images))
         entries[m] = json.loads((out_dir / "manifest.json").read_text())["models"][m]
@@ -255,10 +309,12 @@ def main(argv=None) -> int:
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--heldout-images", type=int, default=HELDOUT_IMAGES)
     p.add_argument("--threads", type=int, default=2, help="torch intra-op threads (default 2)")
+    p.add_argument("--reuse-first-phase", action="store_true",
+                   help="two-phase models: continue from an existing <id>.phase1.pt instead of retraining it")
     args = p.parse_args(argv)
     try:
         train(args.model, args.steps, args.out, args.seed, args.heldout_images,
-              log=lambda s: print(s, flush=True), threads=args.threads)
+              log=lambda s: print(s, flush=True), threads=args.threads, reuse_first=args.reuse_first_phase)
     except UserError as exc:
         print(f"speedbench: error: {exc}", file=sys.stderr)
         return 2
