@@ -147,8 +147,13 @@ def _file_digest(path: Path) -> str:
 
 
 def _accuracy(graph: Path, point, profile, dataset, cache: Path, info: GraphInfo) -> dict:
-    """mAP of one graph over the dataset; cached by (graph bytes, dataset, limit)."""
-    key = hashlib.sha256(json.dumps([_file_digest(graph), dataset_fingerprint(dataset), profile.limit])
+    """mAP of one graph over the dataset; cached by (graph bytes, dataset, limit, runtime version).
+
+    The runtime version is part of the key so that an upgrade which changes what the
+    graph outputs shows up as an accuracy change instead of being served from the cache.
+    """
+    ort = _ort_version()
+    key = hashlib.sha256(json.dumps([_file_digest(graph), dataset_fingerprint(dataset), profile.limit, ort])
                          .encode()).hexdigest()[:20]
     path = Path(cache) / "accuracy" / f"{key}.json"
     if path.exists():
@@ -161,7 +166,7 @@ def _accuracy(graph: Path, point, profile, dataset, cache: Path, info: GraphInfo
         from speedbench.evaluate import evaluate_graph
 
         result = evaluate_graph(graph, dataset, model=point.graph_key[0], limit=profile.limit or None,
-                                intra_threads=_cores(), cache_dir=Path(cache) / "detections",
+                                intra_threads=_cores(), cache_dir=Path(cache) / "detections" / f"ort-{ort}",
                                 check_threads=check_threads)
     except UserError as exc:
         info.notes.append(f"accuracy not measured: {exc}")
@@ -181,6 +186,15 @@ def _accuracy(graph: Path, point, profile, dataset, cache: Path, info: GraphInfo
                                for k, v in acc.items()}))
     os.replace(tmp, path)
     return acc
+
+
+def _ort_version() -> str:
+    from importlib import metadata
+
+    try:
+        return metadata.version("onnxruntime")
+    except metadata.PackageNotFoundError:
+        return "none"
 
 
 def _metric(value) -> float:
