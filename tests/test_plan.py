@@ -130,3 +130,13 @@ def test_estimate_counts_only_missing_points():
     part = estimate_seconds(plan, prof, done)
     assert part["points"] == 3 and part["measure_s"] == pytest.approx(full["measure_s"] / 2)
     assert part["total_s"] < full["total_s"]
+
+
+def test_sizes_below_a_models_minimum_are_skipped_with_note():
+    import dataclasses
+
+    specs = {**SPECS, "small": dataclasses.replace(SPECS["one"], id="small", min_size=256)}
+    p = expand_plan(profile('[sweep]\nsizes = [128, 320]\n[[models]]\nid = "small"\n[[threads]]\nintra = 1\n'),
+                    get_spec=specs.__getitem__, concurrency_supported=True, cores=4)
+    assert [pt.config["size"] for pt in p.points] == [320]
+    assert any("skipped small at size 128: below its minimum input size 256 px" in n for n in p.notes)

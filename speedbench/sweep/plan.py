@@ -121,6 +121,13 @@ def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool | N
             raise UserError(f"{profile.source}: models[{mi}].id: unknown model {entry.id!r} "
                             f"(list them with `speedbench models`)") from None
         sizes = _dedupe(spec.native_size if s == "native" else s for s in (entry.sizes or profile.sizes))
+        min_size = getattr(spec, "min_size", 0) or 0
+        too_small = [s for s in sizes if s < min_size]
+        if too_small:
+            # e.g. a backbone whose feature maps vanish below a minimum input size
+            notes[f"skipped {entry.id} at size {', '.join(map(str, too_small))}: "
+                  f"below its minimum input size {min_size} px"] += 1
+            sizes = [s for s in sizes if s >= min_size]
         wanted = entry.proposals or profile.proposals
         if spec.default_proposals == 0:
             if any(p != "default" for p in wanted):
