@@ -90,13 +90,25 @@ def test_macs_equal_torchvision_meta_slow(model_id):
 
 @SLOW
 @pytest.mark.parametrize("model_id,ops", [("fasterrcnn_resnet50_fpn", 134.38),
-                                          ("fasterrcnn_resnet50_fpn_v2", 280.371)])
+                                          ("fasterrcnn_resnet50_fpn_v2", 280.371),
+                                          ("maskrcnn_resnet50_fpn", 134.38)])
 def test_two_stage_resnet_macs_equal_meta(model_id, ops):
-    # The meta figure is reached when all 1000 RPN proposals reach the ROI head, which
+    # The meta figure is reached when all 1000 RPN proposals reach the box head, which
     # happens with untrained weights on a uniform-noise image (noise only here: counting).
+    # Mask R-CNN's meta equals Faster R-CNN's: it was counted with no detection reaching
+    # the mask head; a score threshold of 1.0 reproduces that, and any detection adds MACs.
+    from speedbench.export.facts import count_macs
+
     torch.manual_seed(0)
-    facts = _gmacs(model_id, image=torch.rand(3, 800, 800))
+    image = torch.rand(3, 800, 800)
+    model = build_model(model_id)
+    facts = count_macs(model, get_spec(model_id), image)
     assert facts["rois"] == 1000
+    if model_id.startswith("maskrcnn"):
+        configure(model, None, None, score_thresh=1.0)
+        with_masks, facts = facts, count_macs(model, get_spec(model_id), image)
+        assert facts["detections"] == 0 and facts["rois"] == 1000
+        assert with_masks["detections"] == 0 or with_masks["gmacs"] > facts["gmacs"]
     assert round(facts["gmacs"], 3) == pytest.approx(ops, abs=5e-4)
 
 

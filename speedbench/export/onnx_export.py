@@ -225,7 +225,7 @@ def export_onnx(model_id, size=None, proposals=None, weights="none", opset=DEFAU
             _export_into(record, model, spec, onnx_path, opset, size)
         if record.ok and verify:
             _verify_into(record, model, spec, onnx_path, opset, size, proposals)
-        if kind == "none" and not record.notes:
+        if kind == "none" and not any(n.startswith("untrained") for n in record.notes):
             record.notes.append("untrained weights: accuracy is not reported, and postprocess/NMS time is "
                                 "unrepresentative (untrained scores flood NMS)")
         record.seconds = round(time.perf_counter() - started, 2)
@@ -311,6 +311,9 @@ def _verify_into(record, model, spec, onnx_path, opset, size, proposals) -> None
                             "max_unmatched_fraction": parity.MAX_UNMATCHED_FRACTION}
     result["images"] = [list(s) for s in parity.SHAPES]
     record.parity = result
+    record.notes.append(f"parity was checked on {len(images)} generated images: it shows ONNX Runtime "
+                        "computes what torch computes for this graph, not that its detections are accurate; "
+                        "check accuracy on your own data before a safety-relevant deployment")
     if not result["passed"]:
         record.ok = False
         record.reason = "ONNX Runtime diverges from torch eager: " + (
