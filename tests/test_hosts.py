@@ -257,3 +257,24 @@ def test_report_over_hosts_warns_about_a_shared_machine(tmp_path):
     assert "Which host and configuration" in md and "cheapest" in md.lower()
     assert main(["report", str(out), "-o", str(tmp_path / "c.html"), "--budget-ms", "10",
                  "--price-table", str(tmp_path / "prices.toml")]) == 0
+
+
+def test_combining_a_combined_table_again_changes_nothing(fleet_out):
+    data = combine(load_runs([fleet_out]))
+    again = combine(data.points)
+    assert sorted(again.host_names) == sorted(data.host_names)
+    cols = ["host", "point_id", "label", "config_label"]
+    key = ["host", "point_id"]
+    assert again.points[cols].sort_values(key).reset_index(drop=True).equals(
+        data.points[cols].sort_values(key).reset_index(drop=True))
+
+
+def test_same_cpu_under_two_labels_is_pointed_out(tmp_path, capsys):
+    a = write_run(tmp_path / "a", "box-1", ENV_A, rows_for(1.0))
+    b = write_run(tmp_path / "b", "box-2", ENV_A, rows_for(2.0))
+    data = combine(load_runs([a, b]))
+    assert data.multi_host and data.warnings() == [
+        "hosts box-1, box-2 report the same CPU (Example Edge CPU, 4 logical cores): differences between them "
+        "come from run conditions (load, frequency, neighbours) or the machine itself, not the CPU type"]
+    assert main(["pick", str(a), str(b), "--budget-ms", "10"]) == 0
+    assert "WARNING: hosts box-1, box-2 report the same CPU" in capsys.readouterr().out

@@ -109,6 +109,24 @@ class Combined:
     def multi_host(self) -> bool:
         return len(self.hosts) > 1
 
+    def warnings(self) -> list[str]:
+        """Everything a reader comparing these hosts must see first."""
+        return self.shared_machine_warnings() + self.same_cpu_notes()
+
+    def same_cpu_notes(self) -> list[str]:
+        """Hosts with the same CPU model and core count: their differences are run conditions, not hardware."""
+        out = []
+        known = self.hosts.dropna(subset=list(FINGERPRINT))
+        for _, g in known.groupby(list(FINGERPRINT), sort=False):
+            if len(g) > 1:
+                names = ", ".join(g["host"])
+                cores = g["cores_logical"].iloc[0]
+                cores = int(cores) if isinstance(cores, (int, float)) and cores == int(cores) else cores
+                out.append(f"hosts {names} report the same CPU ({g['cpu_model'].iloc[0]}, "
+                           f"{cores} logical cores): differences between them come from "
+                           "run conditions (load, frequency, neighbours) or the machine itself, not the CPU type")
+        return out
+
     def shared_machine_warnings(self) -> list[str]:
         out = []
         for r in self.hosts.itertuples():
@@ -130,6 +148,7 @@ def combine(runs) -> Combined:
     runs = [as_run(r) for r in (runs if isinstance(runs, (list, tuple)) else [runs])]
     if not runs:
         raise UserError("no run given")
+    runs = [part for r in runs for part in _split_hosts(r)]
     keys = []
     for k, r in enumerate(runs):
         keys.append(host_key(r) or (Path(r.path).name if r.path else f"run{k + 1}"))
@@ -159,6 +178,37 @@ def combine(runs) -> Combined:
     samples = pd.concat(smp, ignore_index=True) if smp else pd.DataFrame(columns=["point_id", "i", "ms"])
     table = pd.DataFrame(list(hosts.values()), columns=["host", *FINGERPRINT, "runs", "points", "shares_machine_with"])
     return Combined(points=points, samples=samples, hosts=table, runs=runs)
+
+
+def _split_hosts(run: Run) -> list[Run]:
+    """A bare table that already holds several hosts (e.g. Combined.points) -> one Run per host.
+
+    Tags added by an earlier combine (``@host`` on ids, `` [host]`` on labels) are taken off,
+    so combining a combined table again gives the same result.
+    """
+    if run.meta or "host" not in run.points.columns:
+        return [run]
+    hosts = [h for h in pd.unique(run.points["host"].astype(str)) if h]
+    if len(hosts) < 2:
+        return [run]
+    parts = []
+    for h in hosts:
+        p = run.points[run.points["host"].astype(str) == h].copy()
+        tag = f"@{h}"
+        old_ids = set(p["point_id"].astype(str)) if "point_id" in p.columns else set()
+        if "point_id" in p.columns:
+            p["point_id"] = [i.removesuffix(tag) if isinstance(i, str) else i for i in p["point_id"]]
+        if "config_label" in p.columns:
+            p["label"] = p["config_label"]
+        s = None
+        if run.samples is not None and len(old_ids):
+            s = run.samples[run.samples["point_id"].astype(str).isin(old_ids)].copy()
+            s["point_id"] = s["point_id"].astype(str).str.removesuffix(tag)
+        shared = sorted({x.strip() for v in p.get("shares_machine_with", pd.Series(dtype=str))
+                         if isinstance(v, str) for x in v.split(",") if x.strip()})
+        parts.append(Run(points=p.drop(columns=["shares_machine_with"], errors="ignore"), samples=s,
+                         meta={"host": h, "fleet": {"shares_machine_with": shared}}, path=f"{run.name} [{h}]"))
+    return parts
 
 
 def _check_same_key(runs: list[Run], keys: list[str]) -> None:

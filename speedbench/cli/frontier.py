@@ -46,7 +46,7 @@ def run(args) -> int:
         overall["in_thread_setting"] = overall["point_id"].map(dict(zip(per["point_id"], per["frontier_status"])))
         print(format_table(overall, x, show_all=args.all))
     else:
-        for w in data.shared_machine_warnings():
+        for w in data.warnings():
             print(f"WARNING: {w}")
         by_host = frontier(pts, x=x, minimize_x=minimize, by="host")
         per = frontier(pts, x=x, minimize_x=minimize, by=["host", "intra_threads", "inter_threads"])

@@ -34,7 +34,7 @@ def run(args) -> int:
         if unknown:
             print(f"note: {args.price_table}: no run for host(s) {', '.join(unknown)}; "
                   f"hosts in these runs: {', '.join(data.host_names)}")
-    for w in data.shared_machine_warnings():
+    for w in data.warnings():
         print(f"WARNING: {w}")
     result = pick(data.points, args.budget_ms, latency=args.latency, threads=args.threads,
                   max_memory_mb=args.max_memory_mb, min_map=args.min_map, prices=prices)

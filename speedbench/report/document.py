@@ -70,7 +70,7 @@ def build(runs, budget_ms=None, latency: str = "p50", title: str | None = None,
     else:
         q += f", trading {stat} latency against accuracy?"
     blocks.append(("p", q))
-    for w in data.shared_machine_warnings():
+    for w in data.warnings():
         blocks.append(("warn", w[0].upper() + w[1:] + "."))
     blocks.extend(_answer(ok, budget_ms, latency, col, trained, prices, multi))
     safety = SAFETY_HOSTS if multi else SAFETY

@@ -133,11 +133,15 @@ def plot_host_frontiers(df: pd.DataFrame, path=None, x: str = "lat_p50_ms", y: s
         g = f[f["host"].astype(str) == host]
         if ranking:
             _host_ranking(ax, g, x, minimize_x, colour)
-        else:
+        elif g["accuracy_available"].any():
             _host_panel(ax, g[g["accuracy_available"]], x, y, minimize_x, colour)
+        else:
+            ax.text(0.5, 0.5, "accuracy unavailable on this host\n(untrained weights): no frontier to draw",
+                    transform=ax.transAxes, ha="center", va="center", fontsize=8, color="#a00")
         ax.set_title(_text((titles or {}).get(host, host)), fontsize=9,
                      color="#a00" if "shared machine" in str((titles or {}).get(host, "")) else "black")
         ax.set_xlabel(axis_name(x), fontsize=9)
+        ax.xaxis.set_tick_params(labelbottom=True)  # shared x: keep the numbers on every panel
         ax.grid(alpha=0.3)
     if not ranking:
         for ax in axes[::ncols]:
