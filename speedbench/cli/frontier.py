@@ -66,9 +66,10 @@ def run(args) -> int:
               "(latency from different machines; each run's conditions apply)")
     if args.output:
         from speedbench.report import plot_frontier, plot_host_frontiers
+        from speedbench.report.plots import host_titles
 
         if data.multi_host:
-            plot_host_frontiers(pts, args.output, x=x, minimize_x=minimize, titles=host_titles(data))
+            plot_host_frontiers(pts, args.output, x=x, minimize_x=minimize, titles=host_titles(data.hosts))
         else:
             plot_frontier(pts, args.output, x=x, minimize_x=minimize)
         print(f"plot written to {args.output}")
@@ -79,19 +80,6 @@ def host_line(h) -> str:
     cpu = h.cpu_model or "CPU model not recorded"
     cores = f", {h.cores_logical} logical cores" if h.cores_logical == h.cores_logical and h.cores_logical else ""
     return f"{cpu}{cores} ({len(h.runs)} run(s), {h.points} point(s))"
-
-
-def host_titles(data) -> dict:
-    """Panel titles for per-host plots: the label, the CPU, and a warning for a shared machine."""
-    out = {}
-    for h in data.hosts.itertuples():
-        t = f"{h.host}\n{h.cpu_model or 'CPU not recorded'}"
-        if h.cores_logical == h.cores_logical and h.cores_logical:
-            t += f", {h.cores_logical} cores"
-        if h.shares_machine_with:
-            t += "\nshared machine: not for hardware comparison"
-        out[h.host] = t
-    return out
 
 
 def format_table(f, x: str, show_all: bool = False) -> str:

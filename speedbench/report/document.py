@@ -6,8 +6,6 @@ Everything is plain text here; the renderers escape it.
 """
 from __future__ import annotations
 
-from pathlib import Path
-
 import numpy as np
 import pandas as pd
 
@@ -121,8 +119,11 @@ def build(runs, budget_ms=None, latency: str = "p50", title: str | None = None,
                          _num(r.get("rss_peak_mib"), 0), r["tied_with"]] for _, r in keep.iterrows()]))
         blocks.append(("p", f"{int((f['frontier_status'] == 'dominated').sum())} dominated configuration(s) "
                             "are not listed here; they appear in the table of all points."))
-    draw = (lambda x, **kw: plots.plot_host_frontiers(ok, x=x, titles=_titles(data), **kw)) if multi else \
-        (lambda x, **kw: plots.plot_frontier(ok, x=x, **kw))
+    def draw(x, **kw):  # several hosts: side-by-side panels, never one mixed cloud of points
+        if multi:
+            return plots.plot_host_frontiers(ok, x=x, titles=plots.host_titles(data.hosts), **kw)
+        return plots.plot_frontier(ok, x=x, **kw)
+
     if len(ok) and "rss_peak_mib" in ok.columns and ok["rss_peak_mib"].notna().any():
         blocks.append(("figure", "frontier_memory", draw("rss_peak_mib"), "Frontier on peak memory."))
     if len(ok) and "fps" in ok.columns and ok["fps"].notna().any():
@@ -212,18 +213,6 @@ def _host_summary(g, col, trained) -> str:
     return text + "; accuracy unavailable)"
 
 
-def _titles(data) -> dict:
-    out = {}
-    for h in data.hosts.itertuples():
-        t = f"{h.host}\n{h.cpu_model or 'CPU not recorded'}"
-        if _num(h.cores_logical, 0):
-            t += f", {_num(h.cores_logical, 0)} cores"
-        if h.shares_machine_with:
-            t += "\nshared machine: not for hardware comparison"
-        out[h.host] = t
-    return out
-
-
 def _hosts_section(data, prices) -> list:
     rows = []
     for h in data.hosts.itertuples():
@@ -240,7 +229,7 @@ def _hosts_section(data, prices) -> list:
 
 
 def _host_frontier_blocks(ok, data, col, stat) -> list:
-    blocks = [("figure", "frontier", plots.plot_host_frontiers(ok, x=col, titles=_titles(data)),
+    blocks = [("figure", "frontier", plots.plot_host_frontiers(ok, x=col, titles=plots.host_titles(data.hosts)),
                f"Per-host frontiers on {stat} latency, side by side with shared axes. Marker: one-stage "
                "(circle) or two-stage (square); colour: model. Filled: on that host's frontier; black edge: "
                "tied within noise; hollow: dominated.")]

@@ -158,6 +158,20 @@ def plot_host_frontiers(df: pd.DataFrame, path=None, x: str = "lat_p50_ms", y: s
     return _done(fig, path, svg)
 
 
+def host_titles(hosts: pd.DataFrame) -> dict:
+    """Panel titles from a Combined.hosts table: label, CPU, and a warning for a shared machine."""
+    out = {}
+    for h in hosts.itertuples():
+        t = f"{h.host}\n{h.cpu_model or 'CPU not recorded'}"
+        cores = pd.to_numeric(pd.Series([h.cores_logical]), errors="coerce").iloc[0]
+        if cores == cores and cores:
+            t += f", {int(cores)} cores"
+        if h.shares_machine_with:
+            t += "\nshared machine: not for hardware comparison"
+        out[h.host] = t
+    return out
+
+
 def _host_panel(ax, g: pd.DataFrame, x: str, y: str, minimize_x: bool, colour: dict) -> None:
     xv, xlo, xhi = bounds(g, x)
     yv, ylo, yhi = bounds(g, y)
