@@ -128,6 +128,7 @@ def test_cost_per_million_frames_worked_by_hand(fleet_out):
     text = p.to_text()
     assert "Cheapest within p50 <= 10 ms" in text and "on host cloud-b" in text
     assert "$0.9259 per million frames" in text and "tput_fps" in text
+    assert any("throughput point" in n and "2 workers run at once" in n for n in p.notes)
     # A host missing from the price table is left out, with the reason.
     p = pick(pts, 10.0, prices={"cloud-b": 0.80})
     assert p.best["host"] == "cloud-b"

@@ -194,6 +194,10 @@ def pick(df: pd.DataFrame, budget_ms: float, latency: str = "p50", threads=None,
             cov = best.get("lat_cov")
             spread = f" (CoV {cov:.0%})" if cov is not None and pd.notna(cov) else ""
             notes.append(f"the pick was flagged noisy{spread}: remeasure it on a quiet machine before relying on it")
+        k = best.get("concurrency", 1)
+        if k == k and k is not None and int(k) > 1:
+            notes.append(f"the pick is a throughput point: its {stat} is per request while {int(k)} workers run "
+                         "at once on the host, and it holds only at that load")
         shared = best.get("shares_machine_with", "")
         if isinstance(shared, str) and shared:
             notes.insert(0, f"the pick's host {best.get('host', '')} shared its machine with {shared} while it was "
