@@ -250,7 +250,7 @@ def test_report_over_hosts_warns_about_a_shared_machine(tmp_path):
     warn = '<div class="warn"><strong>Caution.</strong> Host edge-a shared its machine with edge-c'
     assert warn in html and html.index(warn) < html.index("<pre>") < html.index("<h2>Hosts")
     assert "Per-host frontiers" in html and html.count("<img") >= 1
-    assert "Cost per million frames" in html
+    assert "Cost per million frames" in html and "<td>edge-a (shared machine!)</td>" in html
     # The cheapest answer is on the shared host: the pick itself says it is not fit to compare hardware.
     assert "the pick&#x27;s host edge-a shared its machine with edge-c" in html
     assert "per-host comparisons are only as good as each host&#x27;s run conditions" in html

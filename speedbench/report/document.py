@@ -243,7 +243,7 @@ def _host_frontier_blocks(ok, data, col, stat) -> list:
     keep = by_host[by_host["frontier_status"] != "dominated"]
     blocks.append(("table", ["host", "status on its host", "across hosts", "in its thread setting", "configuration",
                              f"{stat} ms [CI]", "mAP [CI]", "peak MiB"],
-                   [[r["host"], r["frontier_status"], across.get(r["point_id"], ""), within.get(r["point_id"], ""),
+                   [[_host_cell(r), r["frontier_status"], across.get(r["point_id"], ""), within.get(r["point_id"], ""),
                      r["config_label"], _ms_ci(r, col), _map_ci(r), _num(r.get("rss_peak_mib"), 0)]
                     for _, r in keep.iterrows()]))
     blocks.append(("p", f"{int((by_host['frontier_status'] == 'dominated').sum())} configuration(s) dominated on "
@@ -251,6 +251,11 @@ def _host_frontier_blocks(ok, data, col, stat) -> list:
                         "\"Across hosts\" marks a point against every host's points: latencies from different "
                         "machines, each under its own run's conditions."))
     return blocks
+
+
+def _host_cell(r) -> str:
+    shared = r.get("shares_machine_with", "")
+    return f"{r['host']} (shared machine!)" if isinstance(shared, str) and shared else str(r["host"])
 
 
 def _cost_blocks(ok, prices, col, stat, multi) -> list:
@@ -266,7 +271,7 @@ def _cost_blocks(ok, prices, col, stat, multi) -> list:
                         "idle and so overstates the cost on a host with many cores. Each row says which."))
     blocks.append(("table", ["host", "configuration", f"{stat} ms", "mAP", "frames/s", "frame rate from",
                              "USD / h", "USD / million frames"],
-                   [[r["host"], r.get("config_label") or r["label"], _num(r[col], 2), _num(r.get("map"), 3),
+                   [[_host_cell(r), r.get("config_label") or r["label"], _num(r[col], 2), _num(r.get("map"), 3),
                      _num(r["frames_per_s"], 1), r["fps_source"], f"{r['usd_per_hour']:g}",
                      f"{r['usd_per_mframe']:.4g}"] for _, r in c.head(30).iterrows()]))
     missing = sorted(set(ok["host"].astype(str)) - set(prices))
