@@ -305,3 +305,131 @@ def test_text_calls_out_noise_and_untrained_weights():
     assert a["scaling_eff"] == pytest.approx(1.1) and a["untrained"]
     text = render_text(out, with_p99=False, with_cost=False)
     assert "above 1 is measurement noise" in text and "untrained weights" in text
+
+
+# --------------------------------------------------------------------------- several hosts
+# Two hosts with different fingerprints, written through the sweep's RunDir (as tests/test_hosts.py
+# does). Invented numbers chosen for easy arithmetic:
+# edge-a (4 logical cores): A as in table(): K=1 25 fps, K=2 45 fps -> 22.5 fps/core; C: 10 fps/core, mAP 0.50.
+# big-b (16 logical cores): A: K=1 50 fps, K=4 180 fps -> 45 fps/core, efficiency 180 / (4 x 50) = 0.9.
+EDGE = {"cpu_model": "Example Edge CPU", "cores_logical": 4}
+BIG = {"cpu_model": "Example Server CPU", "cores_logical": 16}
+
+
+def write_host_run(path, host, env, rows):
+    from speedbench.sweep import RunDir
+
+    rd = RunDir.create(path, "# test\n", {"profile_name": "t", "host": host, "env": env})
+    for r in rows:
+        rd.write_point({k: v for k, v in dict(r, host=host).items() if v is not None}, [1.0, 2.0])
+    rd.finish()
+    rd.close()
+    return path
+
+
+def edge_rows():
+    return [row("a", 1, 1, 25.0, 60.0, 40.0, map_=0.40, host_cores=4),
+            row("a", 2, 1, 45.0, 80.0, 44.4, host_cores=4),
+            row("c", 1, 1, 10.0, 120.0, 100.0, map_=0.50, host_cores=4)]
+
+
+def big_rows():
+    return [row("a", 1, 1, 50.0, 30.0, 20.0, map_=0.40, host_cores=16),
+            row("a", 4, 1, 180.0, 40.0, 22.0, host_cores=16)]
+
+
+@pytest.fixture(scope="module")
+def two_hosts(tmp_path_factory):
+    out = tmp_path_factory.mktemp("hosts")
+    write_host_run(out / "edge-a", "edge-a", EDGE, edge_rows())
+    write_host_run(out / "big-b", "big-b", BIG, big_rows())
+    prices = out / "prices.csv"
+    # USD per whole host-hour: edge-a 0.40 for 4 cores (0.10 per core-hour), big-b 2.40 for 16 (0.15)
+    prices.write_text("host,usd_per_hour\nedge-a,0.40\nbig-b,2.40\n")
+    return out
+
+
+def test_two_hosts_sized_each_on_its_own_frontier(two_hosts):
+    from speedbench.analyse import combine, frontier, load_runs
+
+    data = combine(load_runs([two_hosts]))
+    configs, _ = scaling_summary(data.points)
+    # One frontier over both hosts would drop edge-a's A (22.5 fps/core) behind big-b's A (45, same mAP) ...
+    one = frontier(configs.drop(columns=["curve", "paced"]), x="per_core_fps", y="map", minimize_x=False)
+    assert one.loc[one["label"] == "a @ 320 / - / 1t [edge-a]", "frontier_status"].iloc[0] == "dominated"
+    # ... so sizing uses one frontier per host and edge-a keeps A.
+    out = size(data, 40, 10, server_cores=[8, 16], core_hour_cost=0.05,
+               prices={"edge-a": 0.40, "big-b": 2.40})
+    assert sorted(set(zip(out["host"], out["model"]))) == [("big-b", "a"), ("edge-a", "a"), ("edge-a", "c")]
+    assert out["label"].str.endswith("]").all()  # every label names its host
+
+    def one_row(host, model, shape):
+        got = out[(out["host"] == host) & (out["model"] == model) & (out["server_cores"] == shape)]
+        assert len(got) == 1
+        return got.iloc[0]
+
+    e8, b8, b16 = one_row("edge-a", "a", 8), one_row("big-b", "a", 8), one_row("big-b", "a", 16)
+    # edge-a A, 8 cores: 8 x 22.5 = 180 fps per server; ceil(400 / 126) = 4 servers, 32 cores.
+    # usd_per_mframe: 0.40 / 4 cores = 0.10 per core-hour; 8-core server 0.80 /h;
+    # 4 x 0.80 / (400 x 3600) x 1e6 = 3.2 / 1.44 = 2.222
+    assert e8["servers"] == 4 and e8["priced_host_cores"] == 4
+    assert e8["usd_per_server_hour"] == pytest.approx(0.80)
+    assert e8["usd_per_mframe"] == pytest.approx(3.2 / 1.44)
+    # big-b A, 8 cores: 8 x 45 = 360 fps; ceil(400 / 252) = 2 servers, 16 cores; 2.40 / 16 = 0.15 per
+    # core-hour, 8-core server 1.20 /h; 2 x 1.20 / 1.44e6 x 1e6 = 1.667
+    assert b8["servers"] == 2 and b8["per_core_fps"] == pytest.approx(45.0)
+    assert b8["scaling_eff"] == pytest.approx(0.9)
+    assert b8["usd_per_mframe"] == pytest.approx(2.4 / 1.44)
+    # big-b A, 16 cores (its measured host size, 4 cores used): 720 fps, ceil(400 / 504) = 1 server,
+    # priced as the whole host: 1 x 2.40 / 1.44 = 1.667
+    assert b16["servers"] == 1 and b16["usd_per_server_hour"] == pytest.approx(2.40)
+    assert b16["usd_per_mframe"] == pytest.approx(2.4 / 1.44)
+    # --core-hour-cost stays a per-core price, the same on both hosts: 0.05 x 32 / 1.44 = 1.111 on
+    # edge-a, 0.05 x 16 / 1.44 = 0.556 on big-b; it does not mix with the host prices.
+    assert e8["cost_per_mframe"] == pytest.approx(1.6 / 1.44)
+    assert b8["cost_per_mframe"] == pytest.approx(0.8 / 1.44)
+    assert "2 hosts (edge-a, big-b)" in out.attrs["caution"] or "2 hosts (big-b, edge-a)" in out.attrs["caution"]
+    assert "one host" not in out.attrs["caution"]
+
+
+def test_host_price_falls_back_to_recorded_cores_and_names_unpriced_hosts():
+    # a bare table, one host, no fingerprint: N = host_cores of its load rows (2 in table());
+    # 0.20 USD per host-hour -> 0.10 per core-hour; A on 8 cores: 4 servers x 0.80 /h / 1.44 = 2.222
+    out = size(table(), 40, 10, server_cores=[8], prices={"testhost": 0.20})
+    a8 = pick(out, "a", 8)
+    assert a8["priced_host_cores"] == 2 and a8["usd_per_mframe"] == pytest.approx(3.2 / 1.44)
+    unpriced = size(table(), 40, 10, server_cores=[8], prices={"other": 1.0})
+    assert unpriced["usd_per_mframe"].isna().all()
+    assert "testhost has no price" in unpriced.attrs["price_notes"][0]
+
+
+def test_cli_two_hosts_with_price_table(two_hosts, capsys):
+    code = main(["size", str(two_hosts / "edge-a"), str(two_hosts / "big-b"), "--streams", "40", "--fps", "10",
+                 "--server-cores", "8", "--price-table", str(two_hosts / "prices.csv")])
+    out = capsys.readouterr().out
+    assert code == 0
+    assert "[edge-a]" in out and "[big-b]" in out and "usd_per_mframe" in out
+    assert "2.222" in out and "1.667" in out           # the hand-worked figures above
+    assert "price big-b: 2.4 USD per hour for its 16 logical cores" in out
+    assert "each sized from its own measurements" in out and "safety-relevant" in out
+    # a parent directory works too; --json records carry the host
+    assert main(["size", str(two_hosts), "--streams", "40", "--fps", "10", "--server-cores", "8", "--json"]) == 0
+    recs = pd.read_json(__import__("io").StringIO(capsys.readouterr().out))
+    assert sorted(set(recs["host"])) == ["big-b", "edge-a"]
+
+
+def test_cli_several_hosts_bad_input(two_hosts, tmp_path, capsys):
+    # no run at all
+    assert main(["size", str(tmp_path / "missing"), "--streams", "1", "--fps", "1"]) == 2
+    assert "not found" in capsys.readouterr().err
+    # a second machine under the label edge-a (other CPU): the hosts module refuses it, one line
+    write_host_run(tmp_path / "impostor", "edge-a", BIG, big_rows())
+    assert main(["size", str(two_hosts / "edge-a"), str(tmp_path / "impostor"),
+                 "--streams", "1", "--fps", "1"]) == 2
+    err = capsys.readouterr().err
+    assert "two machines under one label" in err and err.count("\n") == 1
+    # a broken price table names the file
+    bad = tmp_path / "prices.csv"
+    bad.write_text("host,usd_per_hour\nedge-a,free\n")
+    assert main(["size", str(two_hosts), "--streams", "1", "--fps", "1", "--price-table", str(bad)]) == 2
+    assert "prices.csv: line 2" in capsys.readouterr().err

@@ -11,6 +11,10 @@ Public face (all take pandas DataFrames of points, which may carry a `host` colu
 - load_runs(paths) -> [Run]: run directories, or parents holding run directories (fleet OUT/<label>/)
 - combine(runs) -> Combined: one points table keyed by host (label, else CPU model + cores)
 - load_prices(path) -> {host: usd_per_hour}; add_costs(df, prices) -> df with usd_per_mframe
+- size(df_or_combined, streams, fps, p99_ms=None, server_cores=(8, 16, 32, 64), headroom=0.7,
+  core_hour_cost=None, use_frontier=True, prices=None, host_cores=None) -> DataFrame:
+  servers per (configuration, host, server shape) from throughput rows, per-host frontiers
+- scaling_summary(df) -> (configs, excluded): per-configuration (and host) scaling basis of size
 - label(row): "model @ size / proposals / threads"
 """
 from speedbench.analyse.common import label
@@ -20,6 +24,8 @@ from speedbench.analyse.hosts import Combined, combine, load_runs
 from speedbench.analyse.pick import Pick, pick
 from speedbench.analyse.prices import add_costs, load_prices
 from speedbench.analyse.runs import Run, as_run
+from speedbench.analyse.sizing import scaling_summary, size
 
 __all__ = ["frontier", "pick", "Pick", "compare", "Comparison", "bootstrap_ratio", "env_diff",
-           "Run", "as_run", "load_runs", "combine", "Combined", "load_prices", "add_costs", "label"]
+           "Run", "as_run", "load_runs", "combine", "Combined", "load_prices", "add_costs", "label",
+           "size", "scaling_summary"]

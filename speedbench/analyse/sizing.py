@@ -30,6 +30,21 @@ Textbook operational laws the output satisfies (checked in tests/test_sizing.py)
 utilisation law U = X S (S = 1 / per-core fps core-seconds per frame, X = required fps,
 divided by the provisioned cores) and Little's law L = lambda W (``in_flight`` = frames being
 processed on average across the fleet).
+
+Several hosts (a combined table with a ``host`` column, or a speedbench.analyse.Combined):
+every host is sized from its own measurements only, its frontier is its own (a slower
+host's configurations are not dropped for being beaten by a faster host), and rows name
+the host. Two prices, kept apart:
+
+- core_hour_cost (any currency, per core-hour, the same for every host):
+  cost_per_mframe = servers x C x core_hour_cost / (required fps x 3600) x 1e6.
+- prices {host: USD per host-hour} (speedbench.analyse.load_prices): the price of the whole
+  measured host of N logical cores (env.cores_logical of its run, else the cores its load test
+  could use). A C-core server of that host type is assumed to cost usd_per_hour x C / N per
+  hour (price linear in cores), so
+  usd_per_mframe = servers x C x usd_per_hour / N / (required fps x 3600) x 1e6.
+  This is the cost of the provisioned fleet (headroom included) per frame delivered, so it is
+  higher than prices.add_costs' figure for one host running flat out.
 """
 from __future__ import annotations
 
@@ -54,46 +69,102 @@ THROUGHPUT_COLUMNS = ("tput_fps", "tput_p50_ms", "tput_p90_ms", "tput_p99_ms", "
 CONFIG_KEY = tuple(c for c in CONFIG_COLUMNS if c != "concurrency")
 
 SIZE_COLUMNS = [
-    "label", "model", "size", "proposals", "backend", "intra_threads", "map", "frontier_status",
+    "label", "host", "model", "size", "proposals", "backend", "intra_threads", "map", "frontier_status",
     "required_fps", "per_core_fps", "measured_cores", "scaling_eff", "cores_needed",
     "server_cores", "workers_per_server", "servers", "provisioned_cores", "capacity_fps",
     "utilisation", "in_flight", "expected_p99_ms", "p99_at_util", "p99_beyond_measured",
-    "meets_p99", "cost_per_mframe", "extrapolated", "assumption", "p99_note", "k1_source",
+    "meets_p99", "cost_per_mframe", "usd_per_hour", "priced_host_cores", "usd_per_server_hour",
+    "usd_per_mframe", "extrapolated", "assumption", "p99_note", "k1_source",
     "measured_cpu_util", "untrained",
 ]
 
 
-def size(df: pd.DataFrame, streams, fps, p99_ms=None, server_cores=(8, 16, 32, 64), headroom=0.7,
-         core_hour_cost=None, use_frontier: bool = True) -> pd.DataFrame:
-    """Servers needed for ``streams`` x ``fps`` frames/s, one row per (configuration, server shape).
+def size(df, streams, fps, p99_ms=None, server_cores=(8, 16, 32, 64), headroom=0.7,
+         core_hour_cost=None, use_frontier: bool = True, prices=None, host_cores=None) -> pd.DataFrame:
+    """Servers needed for ``streams`` x ``fps`` frames/s, one row per (configuration, host, server shape).
 
-    df: a run's points table (speedbench.load_run) holding throughput rows (tput_fps ...).
+    df: a points table holding throughput rows (tput_fps ...): one run's (speedbench.load_run),
+    several hosts' (Combined.points, with a ``host`` column) or a Combined itself.
     use_frontier: size only the configurations on the throughput-vs-accuracy frontier
-    (per-core fps maximised, mAP maximised; ties within noise are kept); False sizes all.
+    (per-core fps maximised, mAP maximised; ties within noise are kept), one frontier per
+    host when there are several; False sizes all.
+    prices: {host: USD per host-hour} for usd_per_mframe; host_cores: {host: logical cores of
+    that host} (taken from a Combined's hosts table when df is one). See the module docstring
+    for both cost formulas.
     Configurations left out and why are in ``result.attrs["excluded"]``; ``attrs["caution"]``
-    is the text a report must carry next to these figures.
-    Columns: see SIZE_COLUMNS; cost_per_mframe is NaN without core_hour_cost.
+    is the text a report must carry next to these figures; ``attrs["price_notes"]`` says which
+    hosts could not be priced and why.
+    Columns: see SIZE_COLUMNS; cost_per_mframe is NaN without core_hour_cost, usd_per_mframe
+    without a price for the row's host.
     """
+    if hasattr(df, "points") and hasattr(df, "hosts"):   # a Combined: its fingerprints give the cores
+        known = {str(h.host): h.cores_logical for h in df.hosts.itertuples()}
+        host_cores = {**known, **(host_cores or {})}
+        df = df.points
     streams, fps, p99_ms, shapes, headroom, core_hour_cost = _check_args(
         streams, fps, p99_ms, server_cores, headroom, core_hour_cost)
     required = streams * fps
     configs, excluded = scaling_summary(df)
+    hosts = _hosts(configs)
     if use_frontier:
-        configs = _frontier(configs)
+        configs = _frontier(configs, by_host=len(hosts) > 1)
     if configs.empty:
         raise UserError("size: the frontier is empty (no configuration with throughput data survived)")
+    price_of, price_notes = _host_prices(configs, prices, host_cores)
     rows = []
     for cfg in configs.to_dict("records"):
         for shape in shapes:
-            rows.append(_size_one(cfg, shape, required, p99_ms, headroom, core_hour_cost))
+            rows.append(_size_one(cfg, shape, required, p99_ms, headroom, core_hour_cost,
+                                  price_of.get(cfg.get("host"))))
     out = pd.DataFrame(rows, columns=SIZE_COLUMNS)
     out.attrs["excluded"] = excluded
     out.attrs["required_fps"] = required
     out.attrs["headroom"] = headroom
-    out.attrs["caution"] = ("Estimates from one host's measurements; figures beyond the measured core count "
-                            "rest on the stated assumption. A safety-relevant deployment needs its own "
-                            "validation at the planned load.")
+    out.attrs["hosts"] = hosts
+    out.attrs["price_notes"] = price_notes
+    if len(hosts) > 1:
+        out.attrs["caution"] = (
+            f"Estimates from {len(hosts)} hosts ({', '.join(hosts)}), each sized from its own measurements "
+            "only: a host's figures hold for that machine under the conditions it was measured in (other load, "
+            "frequency, neighbours), so differences between hosts are only as good as those conditions were "
+            "alike; figures beyond a host's measured core count rest on the stated assumption. A "
+            "safety-relevant deployment needs its own validation on the chosen hardware at the planned load.")
+    else:
+        out.attrs["caution"] = ("Estimates from one host's measurements; figures beyond the measured core count "
+                                "rest on the stated assumption. A safety-relevant deployment needs its own "
+                                "validation at the planned load.")
     return out
+
+
+def _hosts(configs: pd.DataFrame) -> list[str]:
+    if "host" not in configs.columns:
+        return []
+    return [str(h) for h in pd.unique(configs["host"].dropna()) if str(h)]
+
+
+def _host_prices(configs: pd.DataFrame, prices, host_cores) -> tuple[dict, list[str]]:
+    """{host: (usd_per_hour, N cores it buys)} for every host that can be priced, and notes for the rest."""
+    if not prices:
+        return {}, []
+    out, notes = {}, []
+    for h in _hosts(configs) or [None]:
+        if h is None or h not in prices:
+            notes.append(f"host {h or '(unnamed)'} has no price in the price table: no usd_per_mframe for it")
+            continue
+        n = _number((host_cores or {}).get(h))
+        if not n > 0:   # no fingerprint: the cores the load test could use on that host
+            n = _number(configs.loc[configs["host"] == h, "recorded_host_cores"].max())
+        if not n > 0:
+            notes.append(f"host {h}: its logical core count is unknown (no env.cores_logical, no host_cores "
+                         "in its load rows), so its host price cannot be split per core: no usd_per_mframe")
+            continue
+        out[h] = (float(prices[h]), n)
+    return out, notes
+
+
+def _number(v) -> float:
+    v = pd.to_numeric(pd.Series([v]), errors="coerce").iloc[0]
+    return float(v) if v == v else math.nan
 
 
 def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
@@ -146,7 +217,7 @@ def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
             k1_source = "single-stream latency (X(1) = 1 / mean latency)"
         x1 = float(base["tput_fps"].iloc[0])
         measured = measured.sort_values(["cores_used", "concurrency"], kind="stable")
-        host_cores = measured["host_cores"].max()
+        host_cores = recorded = measured["host_cores"].max()
         if not np.isfinite(host_cores) or host_cores <= 0:
             host_cores = measured["cores_used"].max()  # unknown host: assume the largest load filled it
         curve = [(float(r.cores_used) / host_cores, float(r.tput_p99_ms), float(r.tput_mean_ms),
@@ -165,6 +236,7 @@ def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
             "scaling_eff": float(top["tput_fps"]) / (k_top * x1),
             "x1_fps": x1,
             "host_cores": float(host_cores),
+            "recorded_host_cores": float(recorded),
             "curve": curve,
             "k1_source": k1_source,
             "measured_cpu_util": float(pd.to_numeric(top.get("tput_cpu_util", np.nan), errors="coerce")),
@@ -172,9 +244,18 @@ def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
             "untrained": bool(acc_src.get("untrained", False) is True or str(acc_src.get("weights")) == "none"),
         })
     cols = [*_IDENT, "host", "map", "map_ci_lo", "map_ci_hi", "point_id", "per_core_fps", "measured_cores",
-            "measured_k", "scaling_eff", "x1_fps", "host_cores", "curve", "k1_source",
+            "measured_k", "scaling_eff", "x1_fps", "host_cores", "recorded_host_cores", "curve", "k1_source",
             "measured_cpu_util", "paced", "untrained"]
-    return pd.DataFrame(configs, columns=cols), pd.DataFrame(excluded, columns=[*_IDENT, "reason"])
+    configs = pd.DataFrame(configs, columns=cols)
+    excluded = pd.DataFrame(excluded, columns=[*_IDENT, "host", "reason"])
+    if configs["host"].dropna().astype(str).replace("", np.nan).nunique() > 1:
+        # One configuration measured on two hosts stays two rows: labels name the host, ids are unique.
+        for t in (configs, excluded):
+            named = t["host"].notna() & (t["host"].astype(str) != "")
+            t.loc[named, "label"] = t.loc[named, "label"] + " [" + t.loc[named, "host"].astype(str) + "]"
+        configs["point_id"] = [pid if str(pid).endswith(f"@{h}") else f"{pid}@{h}"
+                               for pid, h in zip(configs["point_id"], configs["host"])]
+    return configs, excluded
 
 
 _IDENT = ("label", *CONFIG_KEY)
@@ -200,15 +281,20 @@ def _ident(row) -> dict:
     return out
 
 
-def _frontier(configs: pd.DataFrame) -> pd.DataFrame:
-    """Keep configurations on the (per-core fps, mAP) frontier, ties within noise included."""
+def _frontier(configs: pd.DataFrame, by_host: bool = False) -> pd.DataFrame:
+    """Keep configurations on the (per-core fps, mAP) frontier, ties within noise included.
+
+    by_host: one frontier per host; otherwise a faster host would push every configuration of
+    a slower one off the frontier, and that host could not be sized at all.
+    """
     if configs.empty:
         return configs
     try:
         from speedbench.analyse.frontier import frontier
     except ImportError:  # frontier module not available: size every configuration
         return configs.assign(frontier_status="not computed")
-    marked = frontier(configs.drop(columns=["curve", "paced"]), x="per_core_fps", y="map", minimize_x=False)
+    marked = frontier(configs.drop(columns=["curve", "paced"]), x="per_core_fps", y="map", minimize_x=False,
+                      by="host" if by_host else None)
     keep = marked[marked["frontier_status"].isin(["frontier", "tied"])]
     status = dict(zip(keep["point_id"], keep["frontier_status"]))
     out = configs[configs["point_id"].isin(status)].copy()
@@ -216,13 +302,13 @@ def _frontier(configs: pd.DataFrame) -> pd.DataFrame:
     return out
 
 
-def _size_one(cfg: dict, shape: int, required: float, p99_ms, headroom: float, cost) -> dict:
+def _size_one(cfg: dict, shape: int, required: float, p99_ms, headroom: float, cost, host_price=None) -> dict:
     threads = max(int(cfg["intra_threads"] or 1), 1)
     per_core = cfg["per_core_fps"]
     measured_cores = cfg["measured_cores"]
     cores_needed = required / (per_core * headroom)
     workers = shape // threads
-    row = {k: cfg.get(k) for k in ("label", "model", "size", "proposals", "backend", "intra_threads",
+    row = {k: cfg.get(k) for k in ("label", "host", "model", "size", "proposals", "backend", "intra_threads",
                                    "map", "frontier_status", "per_core_fps", "measured_cores", "scaling_eff",
                                    "k1_source", "measured_cpu_util", "untrained")}
     row.update(required_fps=required, cores_needed=cores_needed, server_cores=shape,
@@ -231,6 +317,7 @@ def _size_one(cfg: dict, shape: int, required: float, p99_ms, headroom: float, c
         row.update(servers=np.nan, provisioned_cores=np.nan, capacity_fps=np.nan, utilisation=np.nan,
                    in_flight=np.nan, expected_p99_ms=np.nan, p99_at_util=np.nan, p99_beyond_measured=True,
                    meets_p99=False if p99_ms is not None else None, cost_per_mframe=np.nan,
+                   usd_per_hour=np.nan, priced_host_cores=np.nan, usd_per_server_hour=np.nan, usd_per_mframe=np.nan,
                    assumption=f"a {shape}-core server cannot host one worker of {threads} threads",
                    p99_note="")
         return row
@@ -248,12 +335,23 @@ def _size_one(cfg: dict, shape: int, required: float, p99_ms, headroom: float, c
         expected_p99_ms=p99, p99_at_util=at_util, p99_beyond_measured=beyond,
         meets_p99=None if p99_ms is None else bool(p99 <= p99_ms),
         cost_per_mframe=np.nan if cost is None else cost * provisioned / (required * 3600.0) * 1e6,
+        **_host_cost(host_price, servers, shape, required),
         assumption=_assumption(cfg, shape),
         p99_note=((f"paced-arrival p99 at utilisation {at_util:.2f} (queueing included)" if paced else
                    f"closed-loop p99 at utilisation {at_util:.2f} (no queueing)")
                   + ("; deployed utilisation is beyond the highest measured" if beyond else "")),
     )
     return row
+
+
+def _host_cost(host_price, servers: int, shape: int, required: float) -> dict:
+    """usd_per_mframe from a whole-host price: a C-core server costs usd_per_hour x C / N per hour."""
+    if host_price is None:
+        return dict(usd_per_hour=np.nan, priced_host_cores=np.nan, usd_per_server_hour=np.nan, usd_per_mframe=np.nan)
+    usd_per_hour, n = host_price
+    per_server = usd_per_hour * shape / n
+    return dict(usd_per_hour=usd_per_hour, priced_host_cores=n, usd_per_server_hour=per_server,
+                usd_per_mframe=servers * per_server / (required * 3600.0) * 1e6)
 
 
 def _paced_curve(value) -> list:

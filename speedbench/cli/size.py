@@ -1,4 +1,4 @@
-"""`speedbench size RUN --streams S --fps F`: servers needed per frontier configuration."""
+"""`speedbench size RUN [RUN ...] --streams S --fps F`: servers needed per frontier configuration (and host)."""
 from __future__ import annotations
 
 
@@ -7,35 +7,62 @@ def add_parser(subparsers):
         "size", help="servers needed for S streams at F frames/s, from measured throughput",
         description="For each frontier configuration of RUN with throughput data (speedbench load): "
                     "required frames/s, cores, servers per shape, utilisation, expected p99 under load "
-                    "and cost. Figures beyond the measured core count are flagged with the assumption used.")
-    p.add_argument("run_dir", metavar="RUN", help="run directory with throughput rows")
+                    "and cost. Figures beyond the measured core count are flagged with the assumption used. "
+                    "With several runs (one per host, or a parent directory of them) every host is sized "
+                    "from its own measurements, on its own frontier, and rows name the host.")
+    p.add_argument("run_dirs", nargs="+", metavar="RUN",
+                   help="run directory with throughput rows; several, or a parent of several "
+                        "(a fleet sweep's output), to size each host")
     p.add_argument("--streams", required=True, help="number of camera streams")
     p.add_argument("--fps", required=True, help="frames per second per stream")
     p.add_argument("--p99-ms", default=None, help="p99 latency target per frame (ms)")
     p.add_argument("--server-cores", default="8,16,32,64", help="server shapes in cores (default 8,16,32,64)")
     p.add_argument("--headroom", default="0.7", help="highest planned utilisation, in (0, 1] (default 0.7)")
-    p.add_argument("--core-hour-cost", default=None, help="price of one core for one hour (any currency)")
+    p.add_argument("--core-hour-cost", default=None,
+                   help="price of one core for one hour (any currency, same for every host): cost_per_mframe = "
+                        "servers x C x price / (required fps x 3600) x 1e6, C = server cores")
+    p.add_argument("--price-table", metavar="FILE",
+                   help="USD per host-hour for each whole measured host (TOML `[prices] label = 0.34` or CSV "
+                        "`host,usd_per_hour`). A host of N logical cores (its run's fingerprint) prices a C-core "
+                        "server at usd_per_hour x C / N per hour: usd_per_mframe = servers x C x usd_per_hour / N "
+                        "/ (required fps x 3600) x 1e6")
     p.add_argument("--all", action="store_true", help="size every configuration, not only the frontier")
     p.add_argument("--json", action="store_true", help="print the table as JSON records")
     p.set_defaults(run=run)
 
 
 def run(args) -> int:
-    from speedbench.analyse.sizing import size
-    from speedbench.sweep import load_run
+    import sys
 
-    df = load_run(args.run_dir)
+    from speedbench.analyse import combine, load_prices, load_runs
+    from speedbench.analyse.sizing import size
+
+    prices = load_prices(args.price_table) if args.price_table else None
+    data = combine(load_runs(args.run_dirs))
     shapes = [s.strip() for s in str(args.server_cores).split(",") if s.strip()]
-    table = size(df, args.streams, args.fps, p99_ms=args.p99_ms, server_cores=shapes,
-                 headroom=args.headroom, core_hour_cost=args.core_hour_cost, use_frontier=not args.all)
+    table = size(data, args.streams, args.fps, p99_ms=args.p99_ms, server_cores=shapes,
+                 headroom=args.headroom, core_hour_cost=args.core_hour_cost, use_frontier=not args.all,
+                 prices=prices)
+    # Warnings go to stderr with --json so the records stay parseable.
+    notes = [f"WARNING: {w}" for w in data.warnings()]
+    if prices is not None:
+        unknown = sorted(set(prices) - set(data.host_names))
+        if unknown:
+            notes.append(f"note: {args.price_table}: no run for host(s) {', '.join(unknown)}; "
+                         f"hosts in these runs: {', '.join(data.host_names)}")
+        notes += [f"note: {n}" for n in table.attrs["price_notes"]]
     if args.json:
+        for n in notes:
+            print(n, file=sys.stderr)
         print(table.to_json(orient="records", indent=1))
         return 0
-    print(render_text(table, args.p99_ms is not None, args.core_hour_cost is not None))
+    for n in notes:
+        print(n)
+    print(render_text(table, args.p99_ms is not None, args.core_hour_cost is not None, prices is not None))
     return 0
 
 
-def render_text(table, with_p99: bool, with_cost: bool) -> str:
+def render_text(table, with_p99: bool, with_cost: bool, with_prices: bool = False) -> str:
     from speedbench.analyse.sizing import CONTENDED_CPU_UTIL
 
     cols = ["label", "server_cores", "servers", "utilisation", "expected_p99_ms", "extrapolated"]
@@ -43,13 +70,24 @@ def render_text(table, with_p99: bool, with_cost: bool) -> str:
         cols.append("meets_p99")
     if with_cost:
         cols.append("cost_per_mframe")
+    if with_prices:
+        cols.append("usd_per_mframe")
     view = table[cols].copy()
     view["utilisation"] = view["utilisation"].map(lambda v: f"{v:.0%}" if v == v else "-")
     view["expected_p99_ms"] = view["expected_p99_ms"].map(lambda v: f"{v:.1f}" if v == v else "-")
-    if with_cost:
-        view["cost_per_mframe"] = view["cost_per_mframe"].map(lambda v: f"{v:.3f}" if v == v else "-")
+    for c in ("cost_per_mframe", "usd_per_mframe"):
+        if c in view.columns:
+            view[c] = view[c].map(lambda v: f"{v:.3f}" if v == v else "-")
     lines = [f"required: {table.attrs['required_fps']:g} frames/s, planned utilisation <= "
              f"{table.attrs['headroom']:.0%}", "", view.to_string(index=False), ""]
+    if with_prices:
+        for (host, n, usd), _ in table.dropna(subset=["usd_per_hour"]).groupby(
+                ["host", "priced_host_cores", "usd_per_hour"], sort=False):
+            lines.append(f"price {host}: {usd:g} USD per hour for its {n:g} logical cores = {usd / n:.4g} USD "
+                         "per core-hour; usd_per_mframe = servers x server cores x that / (required fps x 3600) "
+                         "x 1e6 (price assumed linear in cores)")
+    if with_cost:
+        lines.append("cost_per_mframe = servers x server cores x --core-hour-cost / (required fps x 3600) x 1e6")
     for label, group in table.groupby("label", sort=False):
         first = group.iloc[0]
         lines.append(f"{label}: {first['per_core_fps']:.3g} fps/core, scaling efficiency "
