@@ -350,8 +350,10 @@ def two_hosts(tmp_path_factory):
 
 
 def test_two_hosts_sized_each_on_its_own_frontier(two_hosts):
+    import speedbench.analyse as analyse
     from speedbench.analyse import combine, frontier, load_runs
 
+    assert analyse.size is size and analyse.scaling_summary is scaling_summary  # the public face
     data = combine(load_runs([two_hosts]))
     configs, _ = scaling_summary(data.points)
     # One frontier over both hosts would drop edge-a's A (22.5 fps/core) behind big-b's A (45, same mAP) ...

@@ -81,11 +81,14 @@ def render_text(table, with_p99: bool, with_cost: bool, with_prices: bool = Fals
     lines = [f"required: {table.attrs['required_fps']:g} frames/s, planned utilisation <= "
              f"{table.attrs['headroom']:.0%}", "", view.to_string(index=False), ""]
     if with_prices:
-        for (host, n, usd), _ in table.dropna(subset=["usd_per_hour"]).groupby(
+        for (host, n, usd), g in table.dropna(subset=["usd_per_hour"]).groupby(
                 ["host", "priced_host_cores", "usd_per_hour"], sort=False):
+            other = sorted({int(c) for c in g["server_cores"] if c != n})
             lines.append(f"price {host}: {usd:g} USD per hour for its {n:g} logical cores = {usd / n:.4g} USD "
                          "per core-hour; usd_per_mframe = servers x server cores x that / (required fps x 3600) "
-                         "x 1e6 (price assumed linear in cores)")
+                         "x 1e6" + (f"; {', '.join(map(str, other))}-core servers are priced pro rata (price "
+                                    "assumed linear in cores; check that such a shape of this host type exists "
+                                    "at that price)" if other else ""))
     if with_cost:
         lines.append("cost_per_mframe = servers x server cores x --core-hour-cost / (required fps x 3600) x 1e6")
     for label, group in table.groupby("label", sort=False):
