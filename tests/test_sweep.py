@@ -310,3 +310,4 @@ def test_concurrency_axis_measures_throughput_points(tmp_path):
     # scaling efficiency = X(2) / (2 X(1)) against the K=1 point measured just before
     assert two["scaling_eff"] > 0
     assert two["point_id"] != one["point_id"]
+

@@ -87,6 +87,12 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
     rd.update_meta(plan_points=len(plan.points), plan_notes=plan.notes)
     for note in plan.notes:
         print(f"note: {note}", file=stream)
+    orphans = orphaned_workers()
+    if orphans and todo:
+        # A killed sweep's last worker runs on in its own session until its point is done.
+        print(f"note: {orphans} orphaned measurement worker(s) of an interrupted sweep still running on "
+              f"this machine; they compete for the cores and may slow the first points (not stopped)",
+              file=stream)
     if not todo:
         rd.finish()
         return counts
@@ -131,3 +137,20 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
 def _stream_key(config: dict) -> tuple:
     return tuple(config.get(c) for c in ("model", "weights", "size", "proposals", "backend", "intra_threads",
                                           "inter_threads", "exec_mode", "opt_level", "affinity"))
+
+
+def orphaned_workers() -> int:
+    """Measurement workers whose parent process is gone (reparented to init or a subreaper)."""
+    try:
+        import psutil
+    except ImportError:
+        return 0
+    count = 0
+    for proc in psutil.process_iter(["cmdline", "ppid"]):
+        try:
+            cmd = proc.info["cmdline"] or []
+            if "speedbench.measure.worker" in cmd and proc.info["ppid"] in (0, 1):
+                count += 1
+        except (psutil.Error, OSError):
+            continue
+    return count
