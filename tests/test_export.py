@@ -180,6 +180,10 @@ def test_match_handles_reordered_near_ties():
     ours = parity._iou(ref[0][1], ref[0])
     theirs = box_iou(torch.from_numpy(ref[0][1:2]), torch.from_numpy(ref[0]))[0].numpy()
     assert np.allclose(ours, theirs)
+    # Degenerate boxes (zero width: IoU 0 even with themselves, common with untrained
+    # regressors) match when every corner agrees within the box tolerance.
+    flat = (np.array([[5, 5, 5, 30]], np.float32), np.array([0.3], np.float32), np.array([4]))
+    assert parity.compare(flat, (flat[0] + 0.01, flat[1], flat[2]), 100, 0.01)["matched"] == 1
     # A detection only one side has, far from any cut-off, fails the verdict.
     lone = (ref[0][:2], ref[1][:2], ref[2][:2])
     assert parity.summarise([parity.compare(ref, lone, 100, 0.01)])["passed"] is False

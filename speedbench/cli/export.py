@@ -13,6 +13,8 @@ def add_parser(subparsers):
                    "default: the model's native size")
     p.add_argument("--proposals", type=int, default=None, help="proposal / candidate budget; default: the model's")
     p.add_argument("--weights", default=None, help="none | torchvision | demo | file:PATH (default: the model's)")
+    p.add_argument("--num-classes", type=int, default=None,
+                   help="classes of a file:PATH checkpoint (default: read off the checkpoint)")
     p.add_argument("--opset", type=int, default=17, help="ONNX opset (default 17)")
     p.add_argument("-o", "--out", default=None, help="also copy the verified graph here (record next to it)")
     p.add_argument("--cache-dir", default=None, help="export cache (default $SPEEDBENCH_CACHE or "
@@ -34,7 +36,7 @@ def run(args) -> int:
     weights = args.weights or spec.default_weights
     record = export_onnx(args.model, size=args.size, proposals=args.proposals, weights=weights,
                          opset=args.opset, cache_dir=args.cache_dir, verify=not args.no_verify,
-                         out=args.out, force=args.force)
+                         out=args.out, force=args.force, num_classes=args.num_classes)
     if args.json:
         print(json.dumps(record.to_dict(), indent=2, default=str))
     else:

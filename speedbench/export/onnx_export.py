@@ -80,7 +80,7 @@ def _check_opset(opset) -> int:
     return value
 
 
-def export_key(model_id, size, proposals, weights, opset) -> tuple[str, str]:
+def export_key(model_id, size, proposals, weights, opset, num_classes=None) -> tuple[str, str]:
     import torch
     import torchvision
 
@@ -88,6 +88,8 @@ def export_key(model_id, size, proposals, weights, opset) -> tuple[str, str]:
     key = {"model": model_id, "weights_digest": wd, "size": size, "proposals": proposals,
            "opset": opset, "torch": torch.__version__, "torchvision": torchvision.__version__,
            "format": EXPORT_FORMAT}
+    if num_classes is not None:
+        key["num_classes"] = int(num_classes)
     return hashlib.sha256(json.dumps(key, sort_keys=True).encode()).hexdigest(), wd
 
 
@@ -189,11 +191,12 @@ def _write_record(record: ExportRecord, json_path: Path) -> None:
 
 
 def export_onnx(model_id, size=None, proposals=None, weights="none", opset=DEFAULT_OPSET, cache_dir=None,
-                verify=True, out=None, force=False) -> ExportRecord:
+                verify=True, out=None, force=False, num_classes=None) -> ExportRecord:
     """Export (or reuse) the graph of one (model, weights, size, proposals, opset); verify parity.
 
     A failed or diverging export comes back with ok=False and its reason; it is never copied
     to `out`. User mistakes (unknown model, bad size, unreadable weights) raise UserError.
+    num_classes: for file:PATH checkpoints whose class count should not be inferred.
     """
     import torch
     import torchvision
@@ -206,7 +209,7 @@ def export_onnx(model_id, size=None, proposals=None, weights="none", opset=DEFAU
     proposals = check_proposals(spec, proposals) if proposals is not None else spec.default_proposals
     opset = _check_opset(opset)
     kind, _ = parse_weights(weights)
-    digest, wdigest = export_key(model_id, size, proposals, weights, opset)
+    digest, wdigest = export_key(model_id, size, proposals, weights, opset, num_classes)
     root = Path(cache_dir) if cache_dir else default_cache_dir()
     root.mkdir(parents=True, exist_ok=True)
     stem = f"{model_id}-s{size}-p{proposals}-o{opset}-{digest[:16]}"
@@ -215,7 +218,8 @@ def export_onnx(model_id, size=None, proposals=None, weights="none", opset=DEFAU
     record = _cached(json_path, onnx_path) if not force else None
     if record is None or (verify and record.ok and not record.parity):
         started = time.perf_counter()
-        model = build_model(model_id, weights=weights, size=size, proposals=proposals or None)
+        model = build_model(model_id, weights=weights, size=size, proposals=proposals or None,
+                            num_classes=num_classes)
         if record is None:
             record = ExportRecord(
                 path=str(onnx_path), digest=digest, model_id=model_id, size=size, proposals=proposals,

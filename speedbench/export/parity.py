@@ -2,7 +2,8 @@
 
 Detections are matched, not compared by index: near-equal scores may come out in another
 order, so each eager detection (best score first) takes the unmatched ORT detection of
-the same label with the highest IoU (>= MATCH_IOU). Matched pairs give the box and score
+the same label with the highest IoU (>= MATCH_IOU, or all corners within the box tolerance
+for degenerate boxes). Matched pairs give the box and score
 differences; unmatched detections count against the verdict, except those whose score sits
 at a cut-off (within score tolerance of the score threshold or of the other side's lowest
 kept score when that side is full), where a tiny difference legitimately flips membership.
@@ -40,8 +41,20 @@ def _iou(box, boxes):
     return inter / np.maximum(area + areas - inter, 1e-9)
 
 
-def match(ref, other, score_tol=SCORE_TOL):
-    """Greedy same-label IoU matching; returns list of (i_ref, j_other)."""
+def _close(box, boxes, box_tol):
+    """IoU with each of `boxes`, and whether each counts as the same box.
+
+    Same box: IoU >= MATCH_IOU, or every coordinate within box_tol - the second test is
+    what matches degenerate (zero-width or zero-height) boxes, whose IoU is 0 even with
+    themselves; untrained regressors produce many.
+    """
+    ious = _iou(box, boxes)
+    linf = np.abs(boxes - box).max(axis=1) if len(boxes) else np.zeros(0)
+    return ious, linf, (ious >= MATCH_IOU) | (linf <= box_tol)
+
+
+def match(ref, other, box_tol=BOX_TOL_PX):
+    """Greedy same-label matching, best eager score first; returns list of (i_ref, j_other)."""
     rb, rs, rl = ref
     ob, os_, ol = other
     used = np.zeros(len(ob), bool)
@@ -50,13 +63,13 @@ def match(ref, other, score_tol=SCORE_TOL):
         cand = np.flatnonzero((ol == rl[i]) & ~used)
         if not len(cand):
             continue
-        ious = _iou(rb[i], ob[cand])
-        # Highest IoU, then closest score: identical boxes with near-tied scores pair up right.
-        key = np.lexsort((np.abs(os_[cand] - rs[i]), -np.round(ious, 4)))
-        j = cand[key[0]]
-        if ious[key[0]] >= MATCH_IOU:
-            used[j] = True
-            pairs.append((int(i), int(j)))
+        ious, linf, same = _close(rb[i], ob[cand], box_tol)
+        # Highest IoU, then nearest corners, then closest score: identical boxes with
+        # near-tied scores pair up right.
+        key = np.lexsort((np.abs(os_[cand] - rs[i]), linf, -np.round(ious, 4)))
+        if same[key[0]]:
+            used[cand[key[0]]] = True
+            pairs.append((int(i), int(cand[key[0]])))
     return pairs
 
 
@@ -68,7 +81,7 @@ def _at_cutoff(score, other_scores, other_full, score_thresh, tol):
 
 def compare(ref, other, detections_per_img, score_thresh, box_tol=BOX_TOL_PX, score_tol=SCORE_TOL):
     """Statistics of one image's eager (ref) vs ORT (other) detections."""
-    pairs = match(ref, other, score_tol)
+    pairs = match(ref, other, box_tol)
     ri = np.array([p[0] for p in pairs], int)
     oi = np.array([p[1] for p in pairs], int)
     box_diff = float(np.abs(ref[0][ri] - other[0][oi]).max()) if pairs else 0.0
@@ -78,17 +91,19 @@ def compare(ref, other, detections_per_img, score_thresh, box_tol=BOX_TOL_PX, sc
     full_o, full_r = len(other[1]) >= detections_per_img, len(ref[1]) >= detections_per_img
     hard = [i for i in un_ref if not _at_cutoff(ref[1][i], other[1], full_o, score_thresh, score_tol)]
     hard += [j for j in un_oth if not _at_cutoff(other[1][j], ref[1], full_r, score_thresh, score_tol)]
-    # Label agreement: of eager boxes with an IoU >= 0.5 partner of any label, how many of
-    # the best partners (same label preferred on equal IoU) carry the same label.
+    # Label agreement: of eager boxes with a same-box partner of any label, how many of the
+    # best partners (same label preferred on equal IoU / distance) carry the same label.
     agree = total = 0
     for i in range(len(ref[1])):
         if not len(other[1]):
             break
-        ious = _iou(ref[0][i], other[0])
-        best = ious.max()
-        if best >= MATCH_IOU:
+        ious, linf, same = _close(ref[0][i], other[0], box_tol)
+        if same.any():
             total += 1
-            agree += bool(np.any((ious >= best - 1e-6) & (other[2] == ref[2][i])))
+            best = (ious >= ious[same].max() - 1e-6) & same
+            if ious[same].max() < MATCH_IOU:
+                best = same & (linf <= linf[same].min() + 1e-6)
+            agree += bool(np.any(best & (other[2] == ref[2][i])))
     return {"n_torch": int(len(ref[1])), "n_ort": int(len(other[1])), "matched": len(pairs),
             "unmatched_at_cutoff": len(un_ref) + len(un_oth) - len(hard), "unmatched": len(hard),
             "box_max_abs_diff_px": box_diff, "score_max_abs_diff": score_diff,
