@@ -7,7 +7,6 @@ weights enum (its URL gives the cache file name under $TORCH_HOME/hub/checkpoint
 import hashlib
 import json
 import os
-import pickle
 from pathlib import Path
 
 import pytest
