@@ -16,11 +16,12 @@ from speedbench import schema
 from speedbench.errors import UserError
 from speedbench.sweep.profile import Profile
 
-# Rough costs for the dry-run estimate, measured on the 2-core development
-# machine (a fresh worker imports torch + onnxruntime; a small detector exports
-# in ~10-30 s). Rules of thumb, not promises: the estimate says so when printed.
+# Rough costs for the dry-run estimate, from the demo sweep on the shared 2-core
+# development machine (exports of the compact detectors with parity check took
+# 8-22 s, median 14 s; a point 2-11 s including its worker's start). Rules of
+# thumb, not promises: the estimate says so when printed.
 WORKER_START_S = 5.0
-EXPORT_S = 25.0
+EXPORT_S = 15.0
 EVAL_S_PER_IMAGE = 0.25
 DEFAULT_MAX_SECONDS = 10.0   # used when the profile does not set repetitions.max_seconds
 
