@@ -6,9 +6,9 @@ from dataclasses import asdict, dataclass, field, fields
 from pathlib import Path
 
 from speedbench.errors import UserError
+from speedbench.measure.backends import NAMES as BACKENDS
 from speedbench.schema import CONFIG_COLUMNS, point_id
 
-BACKENDS = ("ort", "eager", "synthetic")
 EXEC_MODES = ("sequential", "parallel")
 OPT_LEVELS = ("disable", "basic", "extended", "all")
 
