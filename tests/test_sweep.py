@@ -311,3 +311,18 @@ def test_concurrency_axis_measures_throughput_points(tmp_path):
     assert two["scaling_eff"] > 0
     assert two["point_id"] != one["point_id"]
 
+
+
+def test_cli_cluster_without_the_engine_and_hosts_without_cluster(monkeypatch, tmp_path, capsys):
+    # Simulates the fleet extra not installed, as tests/test_fleet.py does: importing `distributed` fails.
+    from speedbench.cli import main
+    from speedbench.fleet import INSTALL_HINT
+
+    prof = write_profile(tmp_path)
+    monkeypatch.setitem(sys.modules, "distributed", None)
+    assert main(["sweep", str(prof), "--cluster", "tcp://127.0.0.1:8786", "-o", str(tmp_path / "o")]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err == f"speedbench: error: {INSTALL_HINT}" and "\n" not in err
+    assert main(["sweep", str(prof), "--hosts", "a", "-o", str(tmp_path / "o")]) == 2
+    assert "--hosts: only together with --cluster" in capsys.readouterr().err
+    assert not (tmp_path / "o").exists()

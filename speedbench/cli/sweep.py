@@ -15,6 +15,8 @@ def add_parser(subparsers):
                    help="continue an interrupted run: measure only the points it does not have yet")
     p.add_argument("--retry-failed", action="store_true",
                    help="with --resume: measure the points stored as failed again as well")
+    p.add_argument("--cluster", metavar="ADDRESS", help="run on a Dask cluster (tcp://HOST:8786): each point on a worker of its host label, one run directory per host under -o (needs speedbench[fleet])")
+    p.add_argument("--hosts", metavar="A,B", help="with --cluster: only these host labels (default: every label the cluster advertises)")
     p.add_argument("--dry-run", action="store_true", help="print the plan and a time estimate; measure nothing")
     p.add_argument("-q", "--quiet", action="store_true", help="one plain line per point instead of a progress bar")
     p.set_defaults(run=run)
@@ -29,6 +31,15 @@ def run(args) -> int:
     out = Path(args.output) if args.output else profile.output_dir()
     if args.dry_run:
         print(format_plan(plan, profile, out, resume=args.resume))
+        return 0
+    if args.hosts and not args.cluster:
+        raise UserError("--hosts: only together with --cluster")
+    if args.cluster:
+        from speedbench.fleet import run_fleet_sweep
+        outs = run_fleet_sweep(args.profile, args.cluster, out_dir=args.output, resume=args.resume,
+                               hosts=args.hosts, quiet=args.quiet, retry_failed=args.retry_failed)
+        for label, path in outs.items():
+            print(f"{label}: {path}")
         return 0
     from speedbench.sweep.runner import run_sweep
 

@@ -81,12 +81,6 @@ def _stream_key(config: dict) -> tuple:
                                           "inter_threads", "exec_mode", "opt_level", "affinity"))
 
 
-def same_study(a, b) -> bool:
-    """Two profiles equal in everything but formatting, comments, the file's name and the host default."""
-    skip = {"source", "text", "host"}
-    return all(getattr(a, f) == getattr(b, f) for f in a.__dataclass_fields__ if f not in skip)
-
-
 class _Fleet:
     def __init__(self, client, profile, out_dir, resume, wanted, quiet, stream, lost_after_s, poll_s,
                  retry_failed=False):
@@ -199,6 +193,7 @@ class _Fleet:
     def _check_out(self, h: _Host) -> None:
         from speedbench.sweep.profile import parse_profile
         from speedbench.sweep.rundir import RunDir
+        from speedbench.sweep.runner import same_study
 
         is_run = (h.out / "meta.json").exists() or (h.out / "points.sqlite").exists()
         if is_run and not self.resume:
@@ -213,7 +208,7 @@ class _Fleet:
             except UserError:
                 stored = None
             env = rd.meta().get("env") or {}
-        if stored is None or not same_study(stored, self.profile):
+        if stored is None or not same_study(stored, self.profile, ignore_host=True):
             raise UserError(f"{h.out / 'profile.toml'}: the run was started with a different profile than "
                             f"{self.profile.source}; resume with that file or start a new output directory")
         new = h.setup["env"]

@@ -43,9 +43,12 @@ def run_sweep(profile_path, out_dir=None, resume: bool = False, quiet: bool = Fa
     return out
 
 
-def _same_study(a: Profile, b: Profile) -> bool:
-    """Equal in everything but formatting, comments and the file's name."""
-    skip = {"source", "text"}
+def same_study(a: Profile, b: Profile, ignore_host: bool = False) -> bool:
+    """Equal in everything but formatting, comments and the file's name.
+
+    ignore_host: also ignore run.host (a fleet fills the host in per worker label).
+    """
+    skip = {"source", "text"} | ({"host"} if ignore_host else set())
     return all(getattr(a, f) == getattr(b, f) for f in a.__dataclass_fields__ if f not in skip)
 
 
@@ -58,7 +61,7 @@ def _open_run(profile: Profile, out: Path, resume: bool) -> RunDir:
             stored = parse_profile(rd.profile_text(), str(out / "profile.toml"))
         except UserError:
             stored = None
-        if stored is None or not _same_study(stored, profile):
+        if stored is None or not same_study(stored, profile):
             rd.close()
             raise UserError(f"{out / 'profile.toml'}: the run was started with a different profile than "
                             f"{profile.source}; resume with that file or start a new run directory")
