@@ -309,6 +309,9 @@ def test_concurrency_axis_measures_throughput_points(tmp_path):
     assert two["tput_fps"] > 0 and two["n_samples"] > 0
     # scaling efficiency = X(2) / (2 X(1)) against the K=1 point measured just before
     assert two["scaling_eff"] > 0
+    # X(1) of one closed-loop stream is 1000 / mean latency (Little's law with one request in flight),
+    # the same baseline speedbench.analyse.sizing derives from the K=1 row.
+    assert two["scaling_eff"] == pytest.approx(two["tput_fps"] / (2 * 1000.0 / one["lat_mean_ms"]), rel=1e-9)
     assert two["point_id"] != one["point_id"]
 
 

@@ -110,7 +110,7 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
     progress = Progress(len(todo), quiet=quiet, stream=stream)
     graph_info: dict = {}
     # One-stream throughput of each configuration, for the scaling efficiency of K > 1 points.
-    single_fps = {_stream_key(r): r.get("fps") for r in rd.rows()
+    single_fps = {_stream_key(r): single_stream_fps(r) for r in rd.rows()
                   if r.get("concurrency") == 1 and r.get("status") == "ok"}
     try:
         for point in todo:
@@ -126,7 +126,7 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
             row, samples = steps.measure(point, info, profile, timing_images, policy,
                                          baseline_fps=single_fps.get(_stream_key(point.config)))
             if point.config["concurrency"] == 1 and row.get("status") == "ok":
-                single_fps[_stream_key(point.config)] = row.get("fps")
+                single_fps[_stream_key(point.config)] = single_stream_fps(row)
             row["wall_s"] = round(time.monotonic() - t0, 3)
             rd.write_point(row, samples)
             counts["ok" if row.get("status") == "ok" else "failed"] += 1
@@ -135,6 +135,18 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
         progress.close()
     rd.finish()
     return counts
+
+
+def single_stream_fps(row: dict):
+    """X(1) of a K = 1 row: one closed-loop stream serves 1000 / mean latency frames a second.
+
+    Not the row's `fps` (1000 / p50): on a noisy host mean and median differ a lot, and
+    speedbench.analyse.sizing derives X(1) from lat_mean_ms the same way (Little's law, L = 1).
+    """
+    mean = row.get("lat_mean_ms")
+    if isinstance(mean, (int, float)) and mean > 0:
+        return 1000.0 / mean
+    return None
 
 
 def _stream_key(config: dict) -> tuple:
