@@ -58,6 +58,11 @@ def test_sweep_writes_rows_and_keeps_failures(tmp_path):
     assert len(df) == 2 * 2 + 2 and df["point_id"].is_unique
     ok, failed = df[df.status == "ok"], df[df.status == "failed"]
     assert len(ok) == 4 and len(failed) == 2
+    # Every stored row hashes to its own id (non-ORT backends store exec_mode/opt_level blank).
+    from speedbench.schema import point_id
+
+    assert all(point_id(r) == r["point_id"] for r in df.to_dict("records"))
+    assert set(df["exec_mode"]) == {""} and set(df["opt_level"]) == {""}
     assert failed["reason"].str.contains("synthetic failure requested").all()
     assert (ok["lat_p50_ms"] > 0).all() and (ok["n_samples"] >= 3).all()
     # untrained ("none" weights): accuracy NaN and flagged

@@ -170,10 +170,12 @@ def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, conc
     if entry.id.startswith("synthetic") and backend != "synthetic":
         notes[f"skipped {entry.id} on backend {backend}: a synthetic model runs on the synthetic backend only"] += 1
         return None
-    if backend == "eager":
-        # PyTorch eager has no ORT execution mode or graph optimisation level.
+    if backend != "ort":
+        # Only ORT has an execution mode and a graph optimisation level. measure.Point blanks
+        # them for other backends, so blank them here too, before the id is taken: plan, stored
+        # row and point_id(row) then agree (runs made before this re-measure their non-ORT points).
         if len(profile.opt_levels) > 1 and opt == profile.opt_levels[0]:
-            notes["eager backend: opt_levels do not apply; measured once"] += 1
+            notes[f"{backend} backend: opt_levels do not apply; measured once"] += 1
         opt, mode = "", ""
     elif mode == "sequential" and inter != 1:
         # ORT uses its inter-op pool only in parallel execution mode.
