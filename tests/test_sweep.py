@@ -202,6 +202,13 @@ def test_ort_sweep_exports_and_evaluates_once_then_reuses_the_cache(tmp_path, mo
     assert row["params"] > 0 and row["gmacs"] > 0 and row["model_file_mib"] > 0
     assert row["lat_p50_ms"] > 0 and row["n_samples"] >= 3
     assert not row["untrained"] and row["parity_passed"]
+    # 1 vs 2 intra-op threads checked once for the graph and kept on its rows and in meta
+    assert row["threads_identical"] in (True, False) and row["threads_max_box_diff"] >= 0
+    from speedbench.sweep import load_meta
+
+    (check,) = load_meta(tmp_path / "run1")["thread_invariance"].values()
+    assert check["identical"] == row["threads_identical"]
+    assert isinstance(row["det_digest"], str) and len(row["det_digest"]) == 20
     assert len(list((tmp_path / "run1" / "exports").glob("*.onnx"))) == 1   # graph kept with the run
     assert len(list((cache / "exports").glob("*.json"))) == 1
     assert len(list((cache / "accuracy").glob("*.json"))) == 1
@@ -223,6 +230,16 @@ def test_ort_sweep_exports_and_evaluates_once_then_reuses_the_cache(tmp_path, mo
     rd.close()
     assert info.ok and info.accuracy["map"] == row["map"] and info.facts["params"] == row["params"]
     assert planned.point_id == row["point_id"]   # same configuration, same id in every run
+
+    # A second sweep of the same graph with nothing cached re-detects: the digest is unchanged.
+    monkeypatch.undo()
+    import shutil
+
+    shutil.rmtree(cache / "accuracy")
+    shutil.rmtree(cache / "detections")
+    again = load_run(run_sweep(prof, out_dir=tmp_path / "run3", quiet=True, stream=open(os.devnull, "w")))
+    assert again["det_digest"][0] == row["det_digest"]
+    assert len(list((cache / "accuracy").glob("*.json"))) == 1
 
 
 def test_failed_export_becomes_failed_rows_and_the_sweep_goes_on(tmp_path, monkeypatch):
@@ -334,3 +351,14 @@ def test_cli_cluster_without_the_engine_and_hosts_without_cluster(monkeypatch, t
     assert main(["sweep", str(prof), "--hosts", "a", "-o", str(tmp_path / "o")]) == 2
     assert "--hosts: only together with --cluster" in capsys.readouterr().err
     assert not (tmp_path / "o").exists()
+
+
+def test_detection_digest_ignores_float_noise_and_order_but_not_a_moved_box():
+    from speedbench.sweep.steps import detections_digest
+
+    a = [{"image_id": 1, "category_id": 2, "bbox": [10.0, 20.0, 30.0, 40.0], "score": 0.9},
+         {"image_id": 1, "category_id": 3, "bbox": [0.0, 0.0, 5.0, 5.0], "score": 0.5}]
+    noisy = [{**a[1], "bbox": [-1e-6, 1e-6, 5.000001, 5.0]}, {**a[0], "score": 0.9000001}]
+    moved = [a[0], {**a[1], "bbox": [0.0, 0.0, 5.5, 5.0]}]
+    assert detections_digest(a) == detections_digest(noisy)
+    assert detections_digest(a) != detections_digest(moved)

@@ -118,6 +118,7 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
             if key not in graph_info and point.config["backend"] != "synthetic":
                 progress.status(f"export {key[0]} {key[2]}px")
                 graph_info[key] = steps.prepare_graph(point, profile, dataset, rd, cache, progress)
+                _note_thread_check(rd, key, graph_info[key])
             # The synthetic backend runs no graph: an export failure does not concern it.
             synthetic = point.config["backend"] == "synthetic"
             info = steps.GraphInfo() if synthetic else graph_info[key]
@@ -135,6 +136,17 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
         progress.close()
     rd.finish()
     return counts
+
+
+def _note_thread_check(rd: RunDir, key: tuple, info) -> None:
+    """meta["thread_invariance"]: per graph, did 1 and 2 intra-op threads detect the same?"""
+    acc = info.accuracy or {}
+    if "threads_identical" not in acc:
+        return
+    checks = dict(rd.meta().get("thread_invariance") or {})
+    checks["/".join(str(k) for k in key)] = {"identical": acc["threads_identical"],
+                                             "max_box_diff": acc.get("threads_max_box_diff")}
+    rd.update_meta(thread_invariance=checks)
 
 
 def single_stream_fps(row: dict):
