@@ -115,7 +115,7 @@ def _measuring_child(pid):
     return None
 
 
-def _kill_mid_point(client, label, run_dir, pid=None, deadline_s=90, min_stored=1):
+def _kill_mid_point(client, label, run_dir, pid=None, deadline_s=240, min_stored=1):
     """Wait until `label` stored min_stored point(s) and is measuring the next, then SIGKILL its worker.
 
     Returns (killed pid, point id of the point in flight, points stored before the kill)."""

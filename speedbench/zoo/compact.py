@@ -13,6 +13,7 @@ from __future__ import annotations
 
 from functools import partial
 
+from speedbench.zoo.registry import DENSE_SCOPES, RCNN_SCOPES, SSD_SCOPES, register
 from speedbench.zoo.spec import ModelSpec
 
 SCENE_LABELS = ("__background__", "crate", "drum", "pylon")  # = speedbench.data.scenes.SCENE_CLASSES
@@ -117,33 +118,26 @@ def demo_frcnn_lite(*, weights=None, weights_backbone=None, num_classes: int = N
     return _frcnn(["12", "16"], sizes, 5, 128, num_classes, kwargs)
 
 
-# Stage scopes follow speedbench.zoo.registry's conventions for the same torchvision classes:
-# box decoding and NMS run in methods, so their nodes carry the caller's scope ("" or roi_heads).
-_FPN = {"preprocess": ("transform",), "backbone": ("backbone.body",), "neck": ("backbone.fpn",)}
-_RCNN = {**_FPN, "proposals": ("rpn",),
-         "roi_heads": ("roi_heads.box_roi_pool", "roi_heads.box_head", "roi_heads.box_predictor"),
-         "postprocess": ("roi_heads", "")}
-_DENSE = {**_FPN, "head": ("head",), "postprocess": ("anchor_generator", "")}
-_SSD = {"preprocess": ("transform",), "backbone": ("backbone", "backbone.features"),
-        "neck": ("backbone.extra",), "head": ("head",), "postprocess": ("anchor_generator", "")}
+# Stage scopes: the registry's tables for the same torchvision classes (box decoding and NMS run
+# in methods, so their nodes carry the caller's scope: "" or roi_heads).
 _COMMON = dict(native_size=NATIVE, num_classes=NUM_CLASSES, classes=SCENE_LABELS, default_weights="demo")
 
 SPECS = (
     # One-stage "proposals" = candidates kept before NMS (topk_candidates), as for torchvision's.
     ModelSpec(id="demo_ssdlite", builder="speedbench.zoo.compact.demo_ssdlite", family="one-stage",
-              detections_per_img=300, score_thresh=0.001, default_proposals=300, stage_scopes=_SSD,
+              detections_per_img=300, score_thresh=0.001, default_proposals=300, stage_scopes=SSD_SCOPES,
               arch="SSD", **_COMMON,
               notes="SSDlite320 MobileNetV3-Large trained from scratch on the synthetic yard scenes"),
     ModelSpec(id="demo_fcos", builder="speedbench.zoo.compact.demo_fcos", family="one-stage",
-              detections_per_img=100, score_thresh=0.05, default_proposals=300, stage_scopes=_DENSE,
+              detections_per_img=100, score_thresh=0.05, default_proposals=300, stage_scopes=DENSE_SCOPES,
               arch="FCOS", **_COMMON,
               notes="FCOS, 64-channel FPN on strides 8-64; backbone started from demo_ssdlite's"),
     ModelSpec(id="demo_frcnn", builder="speedbench.zoo.compact.demo_frcnn", family="two-stage",
-              detections_per_img=100, score_thresh=0.05, default_proposals=300, stage_scopes=_RCNN,
+              detections_per_img=100, score_thresh=0.05, default_proposals=300, stage_scopes=RCNN_SCOPES,
               arch="FasterRCNN", **_COMMON,
               notes="Faster R-CNN, FPN strides 8-64, small box head; backbone started from demo_ssdlite's"),
     ModelSpec(id="demo_frcnn_lite", builder="speedbench.zoo.compact.demo_frcnn_lite", family="two-stage",
-              detections_per_img=100, score_thresh=0.05, default_proposals=300, stage_scopes=_RCNN,
+              detections_per_img=100, score_thresh=0.05, default_proposals=300, stage_scopes=RCNN_SCOPES,
               arch="FasterRCNN", **_COMMON,
               notes="Faster R-CNN without the stride-8 level, 5x5 RoIs, 128-wide head; "
                     "backbone started from demo_ssdlite's"),
@@ -153,19 +147,5 @@ BUILDERS = {"demo_ssdlite": demo_ssdlite, "demo_fcos": demo_fcos,
             "demo_frcnn": demo_frcnn, "demo_frcnn_lite": demo_frcnn_lite}
 
 
-def _register_all():
-    # The registry lands separately; until it does, the specs are still importable from here.
-    try:
-        from speedbench.zoo.registry import register
-    except ImportError:
-        return
-    except Exception as exc:  # a registry mid-edit must not stop the builders importing
-        import warnings
-
-        warnings.warn(f"speedbench.zoo.registry failed to import ({exc}); demo specs not registered")
-        return
-    for spec in SPECS:
-        register(spec)
-
-
-_register_all()
+for _spec in SPECS:
+    register(_spec)

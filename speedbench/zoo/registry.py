@@ -25,15 +25,17 @@ from speedbench.zoo.spec import ModelSpec
 
 _REGISTRY: dict[str, ModelSpec] = {}
 
-_FPN = {"preprocess": ("transform",), "backbone": ("backbone.body",), "neck": ("backbone.fpn",)}
-_RCNN = {**_FPN, "proposals": ("rpn",),
+# Stage scope tables by module layout; reuse them for a new model with the same layout.
+
+FPN_SCOPES = {"preprocess": ("transform",), "backbone": ("backbone.body",), "neck": ("backbone.fpn",)}
+RCNN_SCOPES = {**FPN_SCOPES, "proposals": ("rpn",),
          "roi_heads": ("roi_heads.box_roi_pool", "roi_heads.box_head", "roi_heads.box_predictor"),
          "postprocess": ("roi_heads", "")}
-_MASK = {**_RCNN, "roi_heads": _RCNN["roi_heads"] + (
+MASK_SCOPES = {**RCNN_SCOPES, "roi_heads": RCNN_SCOPES["roi_heads"] + (
     "roi_heads.mask_roi_pool", "roi_heads.mask_head", "roi_heads.mask_predictor")}
-_DENSE = {**_FPN, "head": ("head",), "postprocess": ("anchor_generator", "")}
+DENSE_SCOPES = {**FPN_SCOPES, "head": ("head",), "postprocess": ("anchor_generator", "")}
 # SSD: the base network's layers are the backbone, the extra layers play the neck's part.
-_SSD = {"preprocess": ("transform",), "backbone": ("backbone", "backbone.features"),
+SSD_SCOPES = {"preprocess": ("transform",), "backbone": ("backbone", "backbone.features"),
         "neck": ("backbone.extra",), "head": ("head",), "postprocess": ("anchor_generator", "")}
 
 
@@ -48,24 +50,24 @@ def _tv(id, weights, family, native, dets, thresh, props, scopes, arch, notes=""
 # the built models so a torchvision upgrade that changes them is caught.
 TORCHVISION_SPECS = (
     _tv("fasterrcnn_resnet50_fpn", "FasterRCNN_ResNet50_FPN_Weights", "two-stage", 800, 100, 0.05, 1000,
-        _RCNN, "FasterRCNN"),
+        RCNN_SCOPES, "FasterRCNN"),
     _tv("fasterrcnn_resnet50_fpn_v2", "FasterRCNN_ResNet50_FPN_V2_Weights", "two-stage", 800, 100, 0.05, 1000,
-        _RCNN, "FasterRCNN"),
+        RCNN_SCOPES, "FasterRCNN"),
     _tv("fasterrcnn_mobilenet_v3_large_fpn", "FasterRCNN_MobileNet_V3_Large_FPN_Weights", "two-stage", 800,
-        100, 0.05, 1000, _RCNN, "FasterRCNN"),
+        100, 0.05, 1000, RCNN_SCOPES, "FasterRCNN"),
     _tv("fasterrcnn_mobilenet_v3_large_320_fpn", "FasterRCNN_MobileNet_V3_Large_320_FPN_Weights", "two-stage",
-        320, 100, 0.05, 150, _RCNN, "FasterRCNN"),
+        320, 100, 0.05, 150, RCNN_SCOPES, "FasterRCNN"),
     _tv("maskrcnn_resnet50_fpn", "MaskRCNN_ResNet50_FPN_Weights", "two-stage", 800, 100, 0.05, 1000,
-        _MASK, "MaskRCNN", notes="extra output: masks [N, 1, H, W] in input-image pixels"),
+        MASK_SCOPES, "MaskRCNN", notes="extra output: masks [N, 1, H, W] in input-image pixels"),
     _tv("retinanet_resnet50_fpn", "RetinaNet_ResNet50_FPN_Weights", "one-stage", 800, 300, 0.05, 1000,
-        _DENSE, "RetinaNet"),
+        DENSE_SCOPES, "RetinaNet"),
     _tv("retinanet_resnet50_fpn_v2", "RetinaNet_ResNet50_FPN_V2_Weights", "one-stage", 800, 300, 0.05, 1000,
-        _DENSE, "RetinaNet"),
-    _tv("fcos_resnet50_fpn", "FCOS_ResNet50_FPN_Weights", "one-stage", 800, 100, 0.2, 1000, _DENSE, "FCOS"),
+        DENSE_SCOPES, "RetinaNet"),
+    _tv("fcos_resnet50_fpn", "FCOS_ResNet50_FPN_Weights", "one-stage", 800, 100, 0.2, 1000, DENSE_SCOPES, "FCOS"),
     # Below 268 px the last unpadded 3x3 extra layers of SSD300 have nothing left to convolve.
-    _tv("ssd300_vgg16", "SSD300_VGG16_Weights", "one-stage", 300, 200, 0.01, 400, _SSD, "SSD", min_size=268),
+    _tv("ssd300_vgg16", "SSD300_VGG16_Weights", "one-stage", 300, 200, 0.01, 400, SSD_SCOPES, "SSD", min_size=268),
     _tv("ssdlite320_mobilenet_v3_large", "SSDLite320_MobileNet_V3_Large_Weights", "one-stage", 320, 300,
-        0.001, 300, _SSD, "SSD"),
+        0.001, 300, SSD_SCOPES, "SSD"),
 )
 
 # How the sweep's knobs land on each torchvision class (shown by `speedbench models`).
