@@ -95,10 +95,24 @@ def test_markdown_from_a_bare_frame(run_dir, tmp_path):
     df = pd.read_csv(run_dir / "points.csv")
     md = render_markdown(df, tmp_path / "r.md")
     text = md.read_text()
-    assert "<script" not in text and "&lt;script&gt;" in text
+    # Backslash escapes, not HTML entities (CommonMark spec, "Backslash escapes": an escaped
+    # ASCII punctuation character is literal text, so the tag stays inert but reads as typed).
+    assert "&lt;" not in text and "&#x27;" not in text and "&amp;" not in text
+    assert "\\<script\\>alert(1)\\</script\\>det" in text
+    prose = re.sub(r"```.*?```", "", text, flags=re.S)   # code blocks show text verbatim
+    assert not re.search(r"(?<!\\)[<&]", prose), "an unescaped < or & outside code blocks"
     pngs = sorted((tmp_path / "r_files").glob("*.png"))
     assert len(pngs) >= 6 and all(f"r_files/{p.name}" in text for p in pngs)
     assert "## Frontier" in text and "> **Caution.**" in text
+
+
+def test_markdown_escape_of_names():
+    from speedbench.report.render import _cell, _md
+
+    # CommonMark: a leading "#", "-" or "1." starts a heading / list; "|" splits a table cell.
+    assert _md("# not a heading") == "\\# not a heading" and _md("1. x") == "1\\. x"
+    assert _md("a|b") == "a\\|b" and _cell("a|b\nc") == "a\\|b c"
+    assert _md("it's 3.2 ms") == "it's 3.2 ms"   # nothing Markdown interprets: left as written
 
 
 def test_cli(run_dir, tmp_path, capsys):

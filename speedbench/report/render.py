@@ -8,6 +8,7 @@ from __future__ import annotations
 import base64
 import html
 import io
+import re
 from importlib import resources
 from pathlib import Path
 
@@ -110,13 +111,24 @@ def render_markdown(run_paths_or_frames, out_path, budget_ms=None, latency: str 
     return out
 
 
+# Characters Markdown (or the HTML it passes through) would interpret anywhere in a line;
+# the backslash first, so the escapes added here are not themselves undone.
+_MD_ANYWHERE = re.compile(r"([\\`<>&|\[\]])")
+# At the start of a line: headings, block quotes, list bullets, ordered lists ("1." / "1)").
+_MD_LEADING = re.compile(r"^(\s*)([#>*+-]|\d+(?=[.)]))", re.M)
+
+
 def _md(text) -> str:
-    # Markdown passes raw HTML through; escape it so a name cannot inject markup.
-    return esc(str(text))
+    """Escape text for Markdown with backslashes, not HTML entities (which show up literally
+    in a Markdown viewer). CommonMark, "Backslash escapes": any ASCII punctuation may be
+    backslash-escaped and is then literal text, so an escaped <script> tag renders as text, inert."""
+    out = _MD_ANYWHERE.sub(r"\\\1", str(text))
+    return _MD_LEADING.sub(lambda m: m.group(1) + (m.group(2) + "\\" if m.group(2)[0].isdigit()
+                                                     else "\\" + m.group(2)), out)
 
 
 def _cell(text) -> str:
-    return _md(text).replace("|", "\\|").replace("\n", " ")
+    return _md(text).replace("\n", " ")  # _md already escapes "|"
 
 
 def _write(out: Path, text: str) -> None:
