@@ -465,24 +465,15 @@ def _write_json(path: Path, obj) -> None:
 
 
 # --------------------------------------------------------------------------- worker side
-def _watch_parent(parent_pid: int) -> None:
-    """Exit this worker if the parent goes away (killed with SIGKILL, nobody left to stop us)."""
-    import threading
-
-    def watch():
-        while True:
-            if os.getppid() != parent_pid:
-                os._exit(3)
-            time.sleep(0.5)
-
-    threading.Thread(target=watch, daemon=True).start()
-
-
 def _worker_main(spec_path: str) -> int:
     spec = _read_json(spec_path)
     result_path = Path(spec["result"])
     if spec.get("parent_pid"):
-        _watch_parent(int(spec["parent_pid"]))
+        # Each load worker runs in its own session (start_new_session), so the watch ending
+        # its process group ends this worker alone.
+        from speedbench.measure.worker import watch_parent
+
+        watch_parent(int(spec["parent_pid"]))
     try:
         if spec.get("cores"):
             os.sched_setaffinity(0, spec["cores"])
