@@ -80,13 +80,34 @@ def _check_opset(opset) -> int:
     return value
 
 
-def export_key(model_id, size, proposals, weights, opset, num_classes=None) -> tuple[str, str]:
-    import torch
-    import torchvision
+def installed_version(dist: str) -> str:
+    """`dist.__version__` without importing it (importing torch costs seconds on a cache hit).
 
+    The package's version.py holds the full version with its local label (2.14.1+cu130);
+    importlib.metadata gives only the public part (2.14.1), so it is the fallback. Reading the
+    file keeps the cache key exactly what `torch.__version__` was, so existing entries still hit.
+    """
+    import re
+    from importlib import metadata
+
+    try:
+        dist_info = metadata.distribution(dist)
+    except metadata.PackageNotFoundError:
+        return "none"
+    try:
+        text = Path(dist_info.locate_file(f"{dist}/version.py")).read_text()
+        found = re.search(r"^__version__\s*(?::\s*str\s*)?=\s*['\"]([^'\"]+)['\"]", text, re.M)
+        if found:
+            return found.group(1)
+    except OSError:
+        pass
+    return dist_info.version
+
+
+def export_key(model_id, size, proposals, weights, opset, num_classes=None) -> tuple[str, str]:
     wd = weights_digest(model_id, weights)
     key = {"model": model_id, "weights_digest": wd, "size": size, "proposals": proposals,
-           "opset": opset, "torch": torch.__version__, "torchvision": torchvision.__version__,
+           "opset": opset, "torch": installed_version("torch"), "torchvision": installed_version("torchvision"),
            "format": EXPORT_FORMAT}
     if num_classes is not None:
         key["num_classes"] = int(num_classes)
@@ -198,9 +219,6 @@ def export_onnx(model_id, size=None, proposals=None, weights="none", opset=DEFAU
     to `out`. User mistakes (unknown model, bad size, unreadable weights) raise UserError.
     num_classes: for file:PATH checkpoints whose class count should not be inferred.
     """
-    import torch
-    import torchvision
-
     from speedbench.zoo.build import build_model, check_proposals, check_size
     from speedbench.zoo.weights import parse_weights
 
@@ -225,7 +243,7 @@ def export_onnx(model_id, size=None, proposals=None, weights="none", opset=DEFAU
                 path=str(onnx_path), digest=digest, model_id=model_id, size=size, proposals=proposals,
                 weights=str(weights), opset=opset, parity={}, facts={}, ok=True, reason="",
                 weights_digest=wdigest, untrained=kind == "none",
-                versions={"torch": torch.__version__, "torchvision": torchvision.__version__})
+                versions={"torch": installed_version("torch"), "torchvision": installed_version("torchvision")})
             _export_into(record, model, spec, onnx_path, opset, size)
         if record.ok and verify:
             _verify_into(record, model, spec, onnx_path, opset, size, proposals)
