@@ -48,8 +48,17 @@ def test_demo_budget_must_be_positive(capsys):
 
 
 def test_sweep_dry_run_of_shipped_profiles(capsys):
-    root = Path(demo_profile_path()).parent
+    root = Path(__file__).resolve().parents[1] / "profiles"
     for name in ("cpu-budget", "upgrade-check", "full-study"):
         assert main(["sweep", str(root / f"{name}.toml"), "--dry-run"]) == 0
         out = capsys.readouterr().out
         assert f"profile {name!r}" in out and "estimate" in out
+
+
+def test_demo_profile_ships_as_package_data_without_a_second_copy():
+    from importlib import resources
+
+    shipped = Path(str(resources.files("speedbench.demo") / "demo.toml"))
+    checkout = Path(__file__).resolve().parents[1] / "profiles" / "demo.toml"
+    assert shipped.is_symlink() and shipped.resolve() == checkout.resolve()
+    assert demo_profile_path() == checkout.resolve()

@@ -13,12 +13,26 @@ from pathlib import Path
 
 from speedbench.errors import UserError
 
+# The checkout's copy; speedbench/demo/demo.toml is a symlink to it, which a wheel build
+# turns into package data (one file to edit, no second copy to keep in sync).
 DEMO_PROFILE = Path(__file__).resolve().parents[2] / "profiles" / "demo.toml"
 
 
 def demo_profile_path() -> Path:
+    """The demo profile: the installed package's demo.toml, else the source checkout's."""
+    from importlib import resources
+
+    try:
+        shipped = resources.files("speedbench.demo") / "demo.toml"
+        if shipped.is_file():
+            # A real file on disk for a normal install (wheel or editable); resolve() follows
+            # the checkout's symlink, so relative neighbours (profiles/*.toml) stay reachable.
+            return Path(str(shipped)).resolve()
+    except (ModuleNotFoundError, OSError, TypeError):
+        pass
     if not DEMO_PROFILE.is_file():
-        raise UserError(f"{DEMO_PROFILE}: demo profile not found (is this a source checkout of speedbench?)")
+        raise UserError(f"{DEMO_PROFILE}: demo profile not found (neither installed with speedbench "
+                        f"nor in a source checkout)")
     return DEMO_PROFILE
 
 
