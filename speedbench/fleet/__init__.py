@@ -6,7 +6,7 @@ Public face:
 - INSTALL_HINT: what to install when the optional engine (dask[distributed]) is missing
 
 Importing this package does not import Dask; run_fleet_sweep raises a one-line
-UserError naming what to install when it is absent. See FLEET.md.
+UserError naming what to install when it is absent. See README.md, "Fleet sweeps".
 """
 from speedbench.fleet.engine import INSTALL_HINT
 

@@ -282,7 +282,7 @@ class RunDir:
         return out
 
     def points(self):
-        """The points table as a DataFrame (see COLUMNS.md)."""
+        """The points table as a DataFrame (columns: README.md, "Python API: the points table")."""
         return rows_to_frame(self.rows())
 
     def samples(self):
@@ -360,7 +360,7 @@ def _version() -> str:
 
 # ----------------------------------------------------------------- public loaders
 def load_run(path):
-    """Load a run directory's points table: one row per point (see COLUMNS.md)."""
+    """Load a run directory's points table: one row per point (columns: README.md, "Python API: the points table")."""
     with RunDir.open(path) as rd:
         return rd.points()
 
