@@ -13,3 +13,33 @@ def heldout_scenes(tmp_path_factory):
     from speedbench.data import make_scenes
 
     return make_scenes(tmp_path_factory.mktemp("scenes"), count=8, seed=3, split="heldout")
+
+
+@pytest.fixture
+def children_outlive_launcher():
+    """Run `script` in a launcher process, kill the launcher once it has started a child, and
+    return the children still alive after a grace period (they should be none)."""
+    import subprocess
+    import sys
+    import time
+
+    import psutil
+
+    def run(script: str, grace_s: float = 15) -> list:
+        launcher = subprocess.Popen([sys.executable, "-c", script])
+        try:
+            deadline = time.monotonic() + 60
+            children = []
+            while not children and time.monotonic() < deadline:
+                children = psutil.Process(launcher.pid).children()
+                time.sleep(0.1)
+            assert children, "the launcher never started a worker"
+        finally:
+            launcher.kill()
+            launcher.wait()
+        _, alive = psutil.wait_procs(children, timeout=grace_s)
+        for p in alive:  # clean up before the caller fails
+            p.kill()
+        return alive
+
+    return run

@@ -220,33 +220,14 @@ def test_hung_worker_times_out():
     assert measure_load(synthetic(work_ms=1.0), IMAGES, k=1, policy=FAST, seconds=0.2).ok
 
 
-def test_workers_exit_when_the_parent_is_killed():
-    import subprocess
-    import sys
-    import time
-
-    psutil = pytest.importorskip("psutil")
+def test_workers_exit_when_the_parent_is_killed(children_outlive_launcher):
     script = ("import numpy as np\n"
               "from speedbench.measure.point import Point\n"
               "from speedbench.measure.load import measure_load\n"
               "p = Point(model='synthetic', backend='synthetic', intra_threads=1,"
               " options={'fail': 'hang', 'fail_at': 'load'})\n"
               "measure_load(p, [np.zeros((8, 8, 3), np.uint8)], k=1, seconds=0.2, timeout_s=120)\n")
-    parent = subprocess.Popen([sys.executable, "-c", script])
-    try:
-        deadline = time.monotonic() + 30
-        children = []
-        while not children and time.monotonic() < deadline:
-            children = psutil.Process(parent.pid).children()
-            time.sleep(0.1)
-        assert children, "the load worker never started"
-    finally:
-        parent.kill()
-        parent.wait()
-    gone, alive = psutil.wait_procs(children, timeout=10)
-    for p in alive:  # clean up before failing
-        p.kill()
-    assert not alive, "orphaned load workers kept running after their parent died"
+    assert not children_outlive_launcher(script), "orphaned load workers kept running after their parent died"
 
 
 @pytest.mark.parametrize("kwargs, text", [

@@ -173,32 +173,12 @@ def test_cli_measure_synthetic_and_bad_input(tmp_path, capsys):
     assert main(["measure", "--backend", "synthetic", "--model", "s", "--threads", "-2"]) == 2
 
 
-def test_worker_ends_itself_when_its_launcher_dies():
+def test_worker_ends_itself_when_its_launcher_dies(children_outlive_launcher):
     """A sweep killed mid-point (or a lost cluster worker) must not leave its measurement running:
     the worker runs in its own session, so only its parent watch can end it."""
-    import subprocess
-    import sys
-    import time
-
-    import psutil
-
     script = ("import numpy as np\n"
               "from speedbench.measure import Point, Policy, measure_point\n"
               "p = Point(model='synthetic', backend='synthetic', intra_threads=1,"
               " options={'fail': 'hang', 'fail_at': 'load'})\n"
               "measure_point(p, [np.zeros((8, 8, 3), np.uint8)], timeout_s=120)\n")
-    launcher = subprocess.Popen([sys.executable, "-c", script])
-    try:
-        deadline = time.monotonic() + 60
-        children = []
-        while not children and time.monotonic() < deadline:
-            children = psutil.Process(launcher.pid).children()
-            time.sleep(0.1)
-        assert children, "the measurement worker never started"
-    finally:
-        launcher.kill()
-        launcher.wait()
-    gone, alive = psutil.wait_procs(children, timeout=15)
-    for p in alive:  # clean up before failing
-        p.kill()
-    assert not alive, "the measurement worker outlived its launcher"
+    assert not children_outlive_launcher(script), "the measurement worker outlived its launcher"
