@@ -24,6 +24,7 @@ from speedbench.sweep import expand_plan, load_meta, load_profile, load_run
 from speedbench.schema import CONFIG_COLUMNS
 
 import psutil
+from helpers import stored_points
 
 PROFILE = """
 [run]
@@ -86,17 +87,6 @@ def cluster():
         yield cl, client
 
 
-def _rows(db):
-    try:
-        con = sqlite3.connect(db, timeout=5)
-        try:
-            return con.execute("SELECT COUNT(*) FROM points").fetchone()[0]
-        finally:
-            con.close()
-    except sqlite3.OperationalError:
-        return 0
-
-
 def _worker_pid(client, label):
     from speedbench.fleet.engine import workers_by_label
 
@@ -123,7 +113,7 @@ def _kill_mid_point(client, label, run_dir, pid=None, deadline_s=240, min_stored
     deadline = time.monotonic() + deadline_s
     while True:
         assert time.monotonic() < deadline, f"host {label} made no progress"
-        stored = _rows(run_dir / "points.sqlite")
+        stored = stored_points(run_dir / "points.sqlite")
         child = _measuring_child(pid) if stored >= min_stored else None
         if child is not None:
             try:
@@ -387,7 +377,7 @@ def test_killed_client_keeps_what_it_stored_and_resume_finishes_without_duplicat
            "-o", str(out), "--hosts", "a", "-q"]
     sweep = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
     deadline = time.monotonic() + 90
-    while _rows(out / "a" / "points.sqlite") < 1:
+    while stored_points(out / "a" / "points.sqlite") < 1:
         assert sweep.poll() is None, sweep.stderr.read().decode()
         assert time.monotonic() < deadline, "fleet sweep made no progress"
         time.sleep(0.05)

@@ -10,6 +10,7 @@ import time
 import pytest
 
 from speedbench.sweep import expand_plan, load_profile, load_run, load_samples, run_sweep
+from helpers import stored_points
 
 PROFILE = """
 [run]
@@ -106,17 +107,6 @@ def test_resume_with_a_different_profile_is_refused(tmp_path):
         run_sweep(prof, out_dir=tmp_path / "run", resume=True, quiet=True)
 
 
-def _done(db):
-    try:
-        con = sqlite3.connect(db, timeout=5)
-        try:
-            return con.execute("SELECT COUNT(*) FROM points").fetchone()[0]
-        finally:
-            con.close()
-    except sqlite3.OperationalError:
-        return 0
-
-
 def test_resume_after_sigkill_of_parent_gives_full_set_without_duplicates(tmp_path):
     # Slow enough per point (~0.5 s of timed work + worker start) to kill the parent mid-sweep.
     prof = write_profile(tmp_path, sizes="[64, 96, 128, 160]", work_ms=100.0)
@@ -126,7 +116,7 @@ def test_resume_after_sigkill_of_parent_gives_full_set_without_duplicates(tmp_pa
     cmd = [sys.executable, "-m", "speedbench", "sweep", str(prof), "-o", str(run), "--quiet"]
     proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
     deadline = time.monotonic() + 120
-    while _done(run / "points.sqlite") < 2:
+    while stored_points(run / "points.sqlite") < 2:
         assert proc.poll() is None, proc.stderr.read().decode()
         assert time.monotonic() < deadline, "sweep made no progress"
         time.sleep(0.05)

@@ -1,0 +1,14 @@
+"""Small helpers shared by several test modules (tests/ is on sys.path under pytest)."""
+import sqlite3
+
+
+def stored_points(db) -> int:
+    """Rows in a run directory's points.sqlite, or 0 while it does not exist yet (a sweep starting)."""
+    try:
+        con = sqlite3.connect(db, timeout=5)
+        try:
+            return con.execute("SELECT COUNT(*) FROM points").fetchone()[0]
+        finally:
+            con.close()
+    except sqlite3.OperationalError:
+        return 0
