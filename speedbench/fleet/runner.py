@@ -91,7 +91,7 @@ class _Fleet:
         self.address = client.scheduler.address
         self.token = uuid.uuid4().hex[:8]
         self.running: dict[str, str] = {}     # label -> point id whose start event came last
-        self.started: set = set()             # (label, point id) that began at least once
+        self.started: set = set()             # task keys (one per attempt) whose run_point began
         self.hosts: dict[str, _Host] = {}
         self.progress = None
         self._checked = 0.0                   # when the scheduler was last asked which labels are alive
@@ -116,7 +116,7 @@ class _Fleet:
         # Every fleet sweep on the cluster logs to the topic; only this sweep's tasks count.
         if isinstance(msg, dict) and "label" in msg and str(msg.get("key", "")).endswith(self.token):
             self.running[msg["label"]] = msg["point_id"]
-            self.started.add((msg["label"], msg["point_id"]))
+            self.started.add(msg["key"])
 
     def _resources(self, label: str) -> dict:
         return {f"{task.LABEL_PREFIX}{label}": 1}
@@ -311,7 +311,7 @@ class _Fleet:
             got = fut.result()
             self._store(h, got["row"], got["samples"])
         elif fut.status == "error" and _killed_worker(fut):
-            if (h.label, planned.point_id) in self.started:
+            if fut.key in self.started:
                 reason = f"host {h.label} lost during the point (its worker died while running it: {_reason(fut)})"
                 self._store(h, self._failed_row(h, planned, reason), [])
             elif h.resubmits.get(planned.point_id, 0) < MAX_RESUBMITS:
