@@ -473,7 +473,7 @@ def _worker_main(spec_path: str) -> int:
         # its process group ends this worker alone.
         from speedbench.measure.worker import watch_parent
 
-        watch_parent(int(spec["parent_pid"]))
+        watch_parent(int(spec["parent_pid"]), leftovers=os.path.dirname(os.path.abspath(spec_path)))
     try:
         if spec.get("cores"):
             os.sched_setaffinity(0, spec["cores"])

@@ -98,14 +98,17 @@ THREAD_VARS = ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS", "VE
                "NUMEXPR_NUM_THREADS", "BLIS_NUM_THREADS")
 
 
-def watch_parent(parent_pid: int, every_s: float = 1.0) -> None:
+def watch_parent(parent_pid: int, every_s: float = 1.0, leftovers: str | None = None) -> None:
     """End this worker (and its process group) if the process that launched it dies.
 
     The worker runs in its own session so the parent can kill the whole group on a
     timeout; the price is that it would outlive a parent that is itself killed (a
     sweep killed mid-point, a lost cluster worker) and disturb whatever runs next.
     A daemon thread that wakes once a second costs nothing measurable.
+    leftovers: the launcher's temporary point directory; nobody will read it now,
+    so it is removed (only a directory named speedbench-*, the launchers' prefix).
     """
+    import shutil
     import signal
     import threading
     import time
@@ -115,6 +118,8 @@ def watch_parent(parent_pid: int, every_s: float = 1.0) -> None:
             time.sleep(every_s)
             if os.getppid() != parent_pid:
                 try:
+                    if leftovers and os.path.basename(leftovers).startswith("speedbench-"):
+                        shutil.rmtree(leftovers, ignore_errors=True)
                     os.killpg(os.getpgrp(), signal.SIGKILL)
                 finally:
                     os._exit(1)
@@ -127,7 +132,7 @@ def main(argv=None) -> int:
     with open(argv[0]) as f:
         spec = json.load(f)
     if spec.get("parent_pid"):
-        watch_parent(int(spec["parent_pid"]))
+        watch_parent(int(spec["parent_pid"]), leftovers=os.path.dirname(os.path.abspath(argv[0])))
     try:
         out = run_worker(spec)
     except BaseException as exc:  # report every failure to the parent, then exit non-zero
