@@ -77,7 +77,7 @@ def test_two_phase_chain_writes_weights_manifest_and_backbone_source(tmp_path, m
     from speedbench.demo import train as tr
 
     small = {k: {**v, "steps": 2, "batch": 2} for k, v in tr.RECIPES.items()}
-    small["demo_ssdlite"]["second"] = {"steps": 2, "lr": 1e-3}
+    small["demo_ssdlite"]["second"] = {"steps": 2, "lr": 1e-3, "sizes": [256, 288]}
     monkeypatch.setattr(tr, "RECIPES", small)
     tr.train(["demo_ssdlite", "demo_frcnn_lite"], out_dir=tmp_path, heldout_images=2, threads=2,
              log=lambda s: None)
@@ -87,8 +87,30 @@ def test_two_phase_chain_writes_weights_manifest_and_backbone_source(tmp_path, m
     assert [p["recipe"]["steps"] for p in ssd["phases"]] == [2, 2] and ssd["recipe"]["steps"] == 4
     assert ssd["phases"][1]["recipe"]["first_scene"] == 4  # phase 2 sees new scenes
     assert (tmp_path / ssd["recipe"]["phase1_file"]).is_file()
+    assert ssd["recipe"]["train_sizes"] == [256, 288] and "256/288 px" in ssd["recipe"]["augment"]
     lite = manifest["demo_frcnn_lite"]
     assert "demo_ssdlite.phase1" in lite["recipe"]["init"]
     for e in manifest.values():
         assert e["heldout"]["n_images"] == 2 and e["heldout_check"]["n_images"] == 2
         assert (tmp_path / e["file"]).is_file()
+
+
+@pytest.mark.parametrize("model_id", ["demo_ssdlite", "demo_fcos", "demo_frcnn_lite"])
+def test_multi_size_training_resizes_through_the_models_own_transform(model_id):
+    # Multi-scale training (common practice for detectors) sets the size each batch; the
+    # transform (torchvision's GeneralizedRCNNTransform) must then produce that size.
+    from speedbench.demo.train import _set_input_size
+
+    model = compact.BUILDERS[model_id]().eval()
+    image = [torch.rand(3, 320, 320)]
+    for size in (256, 352, compact.NATIVE):
+        _set_input_size(model, size)
+        batch, _ = model.transform(image)
+        assert tuple(batch.tensors.shape[-2:]) == (size, size), size
+
+
+def test_multi_size_training_records_its_sizes_and_returns_a_native_size_model():
+    # batch 2: BatchNorm needs two values per channel at SSDlite's 1x1 level
+    model, info = train_model("demo_ssdlite", steps=2, batch=2, seed=0, sizes=[256])
+    assert info["recipe"]["train_sizes"] == [256]
+    assert model.transform.fixed_size == (compact.NATIVE, compact.NATIVE)
