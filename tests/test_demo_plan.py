@@ -62,3 +62,26 @@ def test_demo_profile_ships_as_package_data_without_a_second_copy():
     checkout = Path(__file__).resolve().parents[1] / "profiles" / "demo.toml"
     assert shipped.is_symlink() and shipped.resolve() == checkout.resolve()
     assert demo_profile_path() == checkout.resolve()
+
+
+def test_family_table_keeps_the_fastest_point_of_each_family_per_size_and_threads():
+    # Worked by hand: at 320 px / 1 thread the one-stage minimum is 10 ms (b), the two-stage
+    # minimum 25 ms (c at 50 proposals), so two-stage is 2.5x the fastest; the failed point
+    # and the other size/thread groups do not mix in.
+    import pandas as pd
+
+    from speedbench.demo.run import family_table
+
+    rows = [("a", "one-stage", 320, 1, 300, 12.0, 0.40, "ok"), ("b", "one-stage", 320, 1, 300, 10.0, 0.30, "ok"),
+            ("c", "two-stage", 320, 1, 50, 25.0, 0.35, "ok"), ("c", "two-stage", 320, 1, 300, 40.0, 0.45, "ok"),
+            ("d", "two-stage", 320, 1, 300, 5.0, None, "failed"),
+            ("c", "two-stage", 256, 1, 50, 15.0, 0.30, "ok"), ("c", "two-stage", 320, 2, 50, 14.0, 0.35, "ok")]
+    df = pd.DataFrame(rows, columns=["model", "family", "size", "intra_threads", "proposals", "lat_p50_ms",
+                                     "map", "status"])
+    df.loc[df["status"] == "failed", "lat_p50_ms"] = None
+    t = family_table(df)
+    assert list(zip(t["size"], t["intra_threads"], t["family"], t["model"], t["proposals"])) == [
+        (256, 1, "two-stage", "c", 50), (320, 1, "one-stage", "b", 300), (320, 1, "two-stage", "c", 50),
+        (320, 2, "two-stage", "c", 50)]
+    assert t["vs_fastest"].tolist() == [1.0, 1.0, 2.5, 1.0]
+    assert len(family_table(df[df["status"] == "failed"])) == 0

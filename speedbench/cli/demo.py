@@ -33,6 +33,7 @@ def run(args) -> int:
         print(format_plan(expand_plan(profile), profile, out, resume=True))
         return 0
     paths = run_demo(args.output, quiet=args.quiet, budget_ms=args.budget_ms)
+    _print_tables(paths["run"])
     print(f"run directory:    {paths['run']} ({paths['points_ok']} point(s) measured, "
           f"{paths['points_failed']} failed)")
     print(f"frontier plot:    {paths['frontier']}")
@@ -40,3 +41,23 @@ def run(args) -> int:
     print(f"report (Markdown): {paths['report_md']}")
     print(f"in Python:        speedbench.load_run({str(paths['run'])!r})")
     return 0
+
+
+def _print_tables(run_dir) -> None:
+    """The frontier and the fastest point of each family per size, as `speedbench frontier` prints them."""
+    import pandas as pd
+
+    from speedbench.analyse import frontier
+    from speedbench.cli.frontier import format_table
+    from speedbench.demo.run import family_table
+    from speedbench.sweep import load_run
+
+    df = load_run(run_dir)
+    print("Accuracy-latency frontier (p50 ms, mAP on the held-out scenes):")
+    print(format_table(frontier(df), "lat_p50_ms"))
+    table = family_table(df)
+    if len(table):
+        print("\nFastest configuration of each family at equal input size and threads:")
+        with pd.option_context("display.width", 120):
+            print(table.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
+    print()

@@ -56,6 +56,26 @@ def run_demo(out_dir=None, quiet: bool = False, budget_ms: float | None = None, 
     return {"run": out, "points_ok": ok, "points_failed": len(df) - ok, **render(out, df, budget_ms)}
 
 
+def family_table(df):
+    """Per input size and thread setting: the fastest measured one-stage and two-stage configuration.
+
+    The demo's "one-stage vs two-stage at equal size" view: one row per (size, intra_threads,
+    family) with that family's lowest-p50 point, its mAP, and its p50 relative to the
+    fastest point of the same size and threads.
+    """
+    import pandas as pd
+
+    ok = df[(df["status"] == "ok") & df["lat_p50_ms"].notna()]
+    if not len(ok):
+        return pd.DataFrame(columns=["size", "intra_threads", "family", "model", "proposals", "lat_p50_ms",
+                                     "map", "vs_fastest"])
+    best = ok.loc[ok.groupby(["size", "intra_threads", "family"])["lat_p50_ms"].idxmin()]
+    best = best[["size", "intra_threads", "family", "model", "proposals", "lat_p50_ms", "map"]].copy()
+    fastest = best.groupby(["size", "intra_threads"])["lat_p50_ms"].transform("min")
+    best["vs_fastest"] = (best["lat_p50_ms"] / fastest).round(2)
+    return best.sort_values(["size", "intra_threads", "lat_p50_ms"]).reset_index(drop=True)
+
+
 def render(out: Path, df, budget_ms: float | None = None) -> dict:
     """Frontier plot + HTML and Markdown reports of a finished run directory."""
     from speedbench.report import plot_frontier, render_html, render_markdown
