@@ -351,7 +351,11 @@ def _caveats(ok, trained, hosts, priced=False) -> list[str]:
     out += [
            "No extrapolation: sizes, proposal counts and thread settings that were not measured are not "
            "covered; latency is not linear in input size or thread count.",
-           "The machine may be shared: points flagged noisy, and ties on the frontier, can swap on a rerun."]
+           "The machine may be shared: points flagged noisy, and ties on the frontier, can swap on a rerun.",
+           "Latency intervals describe the runs of one worker process. The same configuration measured again "
+           "in a new process can land outside them (thread placement, other tenants of a virtual machine): "
+           "rerun the sweep and check the two runs with `speedbench compare` before relying on a small "
+           "difference."]
     untrained = ok["untrained"].fillna(False).astype(bool).any() if "untrained" in ok.columns else not trained
     if untrained or not trained:
         out.append("Untrained weights: accuracy is unavailable for those points, and their latency may not "
