@@ -36,6 +36,27 @@ def _data_markers(ax):
     return out
 
 
+def test_frontier_labels_in_a_crowded_cluster_do_not_overlap():
+    # Ten configurations within 1 ms and 0.01 mAP of each other (ties, as in a real demo run):
+    # each gets its own label and no two label texts overlap once rendered.
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.text import Text
+
+    df = _df()
+    crowd = pd.concat([df.iloc[[0]]] * 10, ignore_index=True)
+    crowd["size"] = [224 + 8 * k for k in range(10)]
+    crowd["point_id"] = [f"p{k}" for k in range(10)]
+    crowd["lat_p50_ms"] = 10 + 0.1 * np.arange(10)
+    crowd["lat_p50_ci_lo_ms"], crowd["lat_p50_ci_hi_ms"] = crowd["lat_p50_ms"] - 1, crowd["lat_p50_ms"] + 1
+    crowd["map"] = 0.30 + 0.001 * np.arange(10)
+    fig = plot_frontier(pd.concat([df, crowd], ignore_index=True))
+    ax = fig.axes[0]
+    renderer = FigureCanvasAgg(fig).get_renderer()
+    boxes = [Text.get_window_extent(t, renderer) for t in ax.texts]
+    assert len({t.get_text() for t in ax.texts}) == len(ax.texts) >= 10
+    assert not [(i, j) for i in range(len(boxes)) for j in range(i + 1, len(boxes)) if boxes[i].overlaps(boxes[j])]
+
+
 def test_frontier_plot_markers_line_and_labels(tmp_path):
     df = _df()
     fig = plot_frontier(df, tmp_path / "f.png", svg=True)

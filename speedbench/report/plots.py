@@ -208,22 +208,43 @@ def _host_ranking(ax, g: pd.DataFrame, x: str, minimize_x: bool, colour: dict) -
     ax.invert_yaxis()
 
 
+# Label positions tried in turn, in points from the marker: right/left of it, then further up/down
+# and sideways (with a leader line), so a crowded cluster still gets one free spot per label.
+_OFFSETS = [(dx, dy) for dy in (4, -11, 14, -21, 24, -31, 34, -41, 44, -51, 54, -61, 64, -71)
+            for dx in (5, -5, 40, -40)]
+
+
 def _place_labels(ax, rows: pd.DataFrame, x: str, y: str) -> None:
-    """Annotate points, stepping a label down when it would sit on top of an earlier one."""
+    """Annotate points (frontier first), each at the first offset where its text overlaps no earlier label.
+
+    Overlap is checked on the rendered text boxes, so it holds whatever the axis ranges; a label
+    with no free spot goes to the last offset with a leader line rather than being dropped.
+    """
     if not len(rows):
         return
-    xs, ys = rows[x].astype(float).to_numpy(), rows[y].astype(float).to_numpy()
-    xr = max(np.ptp(xs), 1e-9)
-    yr = max(np.ptp(ys), 1e-9)
-    placed: list[tuple[float, float, int]] = []
-    for (_, r), px, py in zip(rows.iterrows(), xs, ys):
-        step = 0
-        # Another label anchored within ~25 % of the x range and ~5 % of the y range collides.
-        while any(abs(px - qx) / xr < 0.25 and abs(py - qy) / yr < 0.05 and s == step for qx, qy, s in placed):
-            step += 1
-        placed.append((px, py, step))
-        ax.annotate(_text(r["label"]), (px, py), xytext=(5, 4 - 10 * step), textcoords="offset points",
-                    fontsize=7, arrowprops={"arrowstyle": "-", "lw": 0.4, "color": "grey"} if step else None)
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.text import Text
+
+    renderer = FigureCanvasAgg(ax.figure).get_renderer()
+    ax.autoscale_view()
+    frame = ax.get_window_extent(renderer)
+    order = rows.assign(_first=(rows["frontier_status"] != "frontier").astype(int)).sort_values("_first", kind="stable")
+    placed = []
+    for _, r in order.iterrows():
+        for n, (dx, dy) in enumerate(_OFFSETS):
+            last = n == len(_OFFSETS) - 1
+            a = ax.annotate(_text(r["label"]), (float(r[x]), float(r[y])), xytext=(dx, dy),
+                            textcoords="offset points", fontsize=7, ha="left" if dx > 0 else "right",
+                            arrowprops={"arrowstyle": "-", "lw": 0.4, "color": "grey"} if abs(dy) > 11 or abs(dx) > 5
+                            else None)
+            a.update_positions(renderer)
+            box = Text.get_window_extent(a, renderer)   # the text alone, not its leader line
+            free = not any(box.overlaps(b) for b in placed) and frame.contains(box.x0, box.y0) \
+                and frame.contains(box.x1, box.y1)
+            if free or last:
+                placed.append(box)
+                break
+            a.remove()
 
 
 def _ranking(f, x, minimize_x, title, path, svg) -> Figure:
