@@ -143,3 +143,26 @@ def test_renders_in_headless_chromium(html_report, tmp_path):
     assert img.shape[1] == 1280
     # Not a blank page: rendered text and figures give plenty of distinct grey levels.
     assert img[..., :3].std() > 0.05 and len(np.unique((img[..., 0] * 255).astype(int))) > 50
+
+
+def test_caveat_for_sizes_outside_the_weights_training_sizes():
+    # The shipped demo manifest records the training sizes (recipe.train_sizes, else
+    # recipe.image_size): demo_ssdlite 256-352 px, demo_fcos 320 px only.
+    import json
+
+    from speedbench.report.document import _outside_training
+    from speedbench.zoo import trained_sizes
+    from speedbench.zoo.weights import DEMO_ROOT
+
+    manifest = json.loads((DEMO_ROOT / "manifest.json").read_text())["models"]
+    assert trained_sizes("demo_ssdlite", "demo") == sorted(manifest["demo_ssdlite"]["recipe"]["train_sizes"])
+    assert trained_sizes("demo_fcos", "demo") == [320]
+    assert trained_sizes("demo_fcos", "file:x.pt") is None   # no record for a user's checkpoint
+
+    ok = pd.DataFrame({"model": ["demo_ssdlite", "demo_ssdlite", "demo_ssdlite", "demo_fcos", "ssd300_vgg16"],
+                       "weights": ["demo", "demo", "demo", "demo", "torchvision"],
+                       "size": [192, 256, 352, 320, 128]})
+    (line,) = _outside_training(ok)
+    assert "demo_ssdlite at 192 px (its demo weights were trained at 256-352 px)" in line
+    assert "demo_fcos" not in line and "ssd300" not in line      # inside its range / no record
+    assert _outside_training(ok[ok["model"] == "demo_fcos"]) == []

@@ -367,7 +367,32 @@ def _caveats(ok, trained, hosts, priced=False) -> list[str]:
     if trained:
         out.append("Accuracy comes from a small held-out set: mind the confidence intervals; differences "
                    "inside them are not evidence. Images from another domain can change the ranking.")
+    out += _outside_training(ok)
     return out
+
+
+def _outside_training(ok) -> list[str]:
+    """A caveat per model measured at input sizes outside those its weights were trained at."""
+    from speedbench.zoo import trained_sizes
+
+    if not len(ok) or not {"model", "weights", "size"} <= set(ok.columns):
+        return []
+    found = []
+    for (model, weights), g in ok.groupby(["model", "weights"], sort=True):
+        sizes = trained_sizes(str(model), str(weights))
+        if not sizes:
+            continue
+        lo, hi = min(sizes), max(sizes)
+        outside = sorted({int(s) for s in pd.to_numeric(g["size"], errors="coerce").dropna() if not lo <= s <= hi})
+        if outside:
+            trained_at = f"{lo} px" if lo == hi else f"{lo}-{hi} px"
+            found.append(f"{model} at {', '.join(map(str, outside))} px (its {weights} weights were trained at "
+                         f"{trained_at})")
+    if not found:
+        return []
+    return ["Measured outside the input sizes the weights were trained at: " + "; ".join(found) + ". Their "
+            "accuracy there is measured, not assumed, but nothing in training prepared the model for those "
+            "sizes, which can explain a sharp drop."]
 
 
 def _num(v, digits) -> str:

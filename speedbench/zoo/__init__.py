@@ -4,7 +4,7 @@ Public face:
 - get_spec(id) -> ModelSpec, list_specs(), register(spec)
 - build_model(model_id, weights="none", size=None, proposals=None, num_classes=None)
 - configure(model, size, proposals), describe_knobs(spec), stage_of_scope(spec, scope)
-- weights_digest(model_id, weights)
+- weights_digest(model_id, weights); trained_sizes(model_id, weights): sizes the weights were trained at
 - pattern_image(h, w, seed): structured test image (numpy)
 
 Weights sources: "none" (seeded random init, see build.UNTRAINED_RECIPE), "torchvision"
@@ -16,7 +16,13 @@ from speedbench.zoo.spec import ModelSpec
 
 __all__ = ["ModelSpec", "get_spec", "list_specs", "register", "build_model", "configure",
            "describe_knobs", "stage_of_scope", "scope_to_path", "weights_digest", "pattern_image",
-           "parse_weights"]
+           "parse_weights", "trained_sizes"]
+
+
+def trained_sizes(model_id, weights="none"):
+    from speedbench.zoo.weights import trained_sizes as _sizes
+
+    return _sizes(model_id, weights)
 
 
 def build_model(model_id, weights="none", size=None, proposals=None, num_classes=None, device="cpu"):

@@ -124,6 +124,19 @@ def demo_manifest() -> tuple[Path, dict]:
         raise UserError(f"{path}: not valid JSON ({exc})") from None
 
 
+def trained_sizes(model_id: str, weights: str) -> list[int] | None:
+    """Input sizes the weights were trained at, where their manifest records it (demo weights); else None."""
+    if weights != "demo":
+        return None        # torchvision's and users' checkpoints carry no such record here
+    try:
+        _, manifest = demo_manifest()
+    except UserError:
+        return None
+    recipe = (manifest.get("models", {}).get(model_id) or {}).get("recipe") or {}
+    sizes = recipe.get("train_sizes") or ([max(recipe["image_size"])] if recipe.get("image_size") else [])
+    return sorted({int(s) for s in sizes}) or None
+
+
 def demo_entry(model_id: str) -> tuple[Path, dict]:
     root, manifest = demo_manifest()
     entry = manifest.get("models", {}).get(model_id)
