@@ -16,9 +16,14 @@ def heldout_scenes(tmp_path_factory):
 
 
 @pytest.fixture
-def children_outlive_launcher():
+def children_outlive_launcher(tmp_path):
     """Run `script` in a launcher process, kill the launcher once it has started a child, and
-    return the children still alive after a grace period (they should be none)."""
+    return the children still alive after a grace period (they should be none).
+
+    The launcher's TMPDIR is a fresh directory; `run.leftovers()` lists the speedbench-*
+    temporary directories still in it (the launcher's own, which nobody removes if the
+    worker does not)."""
+    import os
     import subprocess
     import sys
     import time
@@ -26,7 +31,7 @@ def children_outlive_launcher():
     import psutil
 
     def run(script: str, grace_s: float = 15) -> list:
-        launcher = subprocess.Popen([sys.executable, "-c", script])
+        launcher = subprocess.Popen([sys.executable, "-c", script], env={**os.environ, "TMPDIR": str(tmp_path)})
         try:
             deadline = time.monotonic() + 60
             children = []
@@ -42,4 +47,5 @@ def children_outlive_launcher():
             p.kill()
         return alive
 
+    run.leftovers = lambda: sorted(tmp_path.glob("speedbench-*"))
     return run

@@ -220,8 +220,7 @@ def test_hung_worker_times_out():
     assert measure_load(synthetic(work_ms=1.0), IMAGES, k=1, policy=FAST, seconds=0.2).ok
 
 
-def test_workers_exit_when_the_parent_is_killed(children_outlive_launcher, tmp_path, monkeypatch):
-    monkeypatch.setenv("TMPDIR", str(tmp_path))   # where the launcher's tempfile puts the load directory
+def test_workers_exit_when_the_parent_is_killed(children_outlive_launcher):
     script = ("import numpy as np\n"
               "from speedbench.measure.point import Point\n"
               "from speedbench.measure.load import measure_load\n"
@@ -229,7 +228,7 @@ def test_workers_exit_when_the_parent_is_killed(children_outlive_launcher, tmp_p
               " options={'fail': 'hang', 'fail_at': 'load'})\n"
               "measure_load(p, [np.zeros((8, 8, 3), np.uint8)], k=1, seconds=0.2, timeout_s=120)\n")
     assert not children_outlive_launcher(script), "orphaned load workers kept running after their parent died"
-    assert not list(tmp_path.glob("speedbench-load-*")), "the load directory outlived its parent"
+    assert not children_outlive_launcher.leftovers(), "the load directory outlived its parent"
 
 
 @pytest.mark.parametrize("kwargs, text", [

@@ -173,15 +173,14 @@ def test_cli_measure_synthetic_and_bad_input(tmp_path, capsys):
     assert main(["measure", "--backend", "synthetic", "--model", "s", "--threads", "-2"]) == 2
 
 
-def test_worker_ends_itself_when_its_launcher_dies(children_outlive_launcher, tmp_path, monkeypatch):
+def test_worker_ends_itself_when_its_launcher_dies(children_outlive_launcher):
     """A sweep killed mid-point (or a lost cluster worker) must not leave its measurement running:
     the worker runs in its own session, so only its parent watch can end it. Nor its point
     directory: the launcher that would have removed it is gone."""
-    monkeypatch.setenv("TMPDIR", str(tmp_path))   # where the launcher's tempfile puts the point directory
     script = ("import numpy as np\n"
               "from speedbench.measure import Point, Policy, measure_point\n"
               "p = Point(model='synthetic', backend='synthetic', intra_threads=1,"
               " options={'fail': 'hang', 'fail_at': 'load'})\n"
               "measure_point(p, [np.zeros((8, 8, 3), np.uint8)], timeout_s=120)\n")
     assert not children_outlive_launcher(script), "the measurement worker outlived its launcher"
-    assert not list(tmp_path.glob("speedbench-point-*")), "the point directory outlived its launcher"
+    assert not children_outlive_launcher.leftovers(), "the point directory outlived its launcher"

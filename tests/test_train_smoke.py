@@ -97,14 +97,14 @@ def test_two_phase_chain_writes_weights_manifest_and_backbone_source(tmp_path, m
 
 @pytest.mark.parametrize("model_id", ["demo_ssdlite", "demo_fcos", "demo_frcnn_lite"])
 def test_multi_size_training_resizes_through_the_models_own_transform(model_id):
-    # Multi-scale training (common practice for detectors) sets the size each batch; the
-    # transform (torchvision's GeneralizedRCNNTransform) must then produce that size.
-    from speedbench.demo.train import _set_input_size
+    # Multi-scale training (common practice for detectors) sets the size each batch through the
+    # zoo's size knob; the transform (torchvision's GeneralizedRCNNTransform) must then produce it.
+    from speedbench.zoo.build import configure
 
     model = compact.BUILDERS[model_id]().eval()
     image = [torch.rand(3, 320, 320)]
     for size in (256, 352, compact.NATIVE):
-        _set_input_size(model, size)
+        configure(model, size=size)
         batch, _ = model.transform(image)
         assert tuple(batch.tensors.shape[-2:]) == (size, size), size
 

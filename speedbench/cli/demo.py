@@ -33,7 +33,7 @@ def run(args) -> int:
         print(format_plan(expand_plan(profile), profile, out, resume=True))
         return 0
     paths = run_demo(args.output, quiet=args.quiet, budget_ms=args.budget_ms)
-    _print_tables(paths["run"])
+    _print_tables(paths["points"])
     print(f"run directory:    {paths['run']} ({paths['points_ok']} point(s) measured, "
           f"{paths['points_failed']} failed)")
     print(f"frontier plot:    {paths['frontier']}")
@@ -43,16 +43,14 @@ def run(args) -> int:
     return 0
 
 
-def _print_tables(run_dir) -> None:
+def _print_tables(df) -> None:
     """The frontier and the fastest point of each family per size, as `speedbench frontier` prints them."""
     import pandas as pd
 
     from speedbench.analyse import frontier
     from speedbench.cli.frontier import format_table
     from speedbench.demo.run import family_table
-    from speedbench.sweep import load_run
 
-    df = load_run(run_dir)
     print("Accuracy-latency frontier (p50 ms, mAP on the held-out scenes):")
     print(format_table(frontier(df), "lat_p50_ms"))
     table = family_table(df)

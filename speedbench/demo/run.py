@@ -37,7 +37,7 @@ def demo_profile_path() -> Path:
 
 
 def run_demo(out_dir=None, quiet: bool = False, budget_ms: float | None = None, stream=None) -> dict:
-    """Run (or resume) the demo sweep, then plot and report. Returns the paths written."""
+    """Run (or resume) the demo sweep, then plot and report. Returns the paths written and the points."""
     from speedbench.sweep import load_profile, load_run
     from speedbench.sweep.runner import run_sweep
 
@@ -53,7 +53,7 @@ def run_demo(out_dir=None, quiet: bool = False, budget_ms: float | None = None, 
 
     df = load_run(out)
     ok = int((df["status"] == "ok").sum())
-    return {"run": out, "points_ok": ok, "points_failed": len(df) - ok, **render(out, df, budget_ms)}
+    return {"run": out, "points": df, "points_ok": ok, "points_failed": len(df) - ok, **render(out, df, budget_ms)}
 
 
 def family_table(df):

@@ -101,6 +101,7 @@ def train_model(model_id: str, steps: int | None = None, batch: int | None = Non
     """
     import torch
 
+    from speedbench.zoo.build import configure
     from speedbench.zoo.compact import BUILDERS, NUM_CLASSES
 
     if model_id not in RECIPES:
@@ -150,8 +151,8 @@ def train_model(model_id: str, steps: int | None = None, batch: int | None = Non
     losses = []
     wall0, cpu0 = time.perf_counter(), time.process_time()
     for step in range(recipe["steps"]):
-        if sizes:
-            _set_input_size(model, int(rng_size.choice(sizes)))
+        if sizes:   # the zoo's own size knob: the model's transform resizes every image of the batch
+            configure(model, size=int(rng_size.choice(sizes)))
         images, targets = batch_targets(rng_flip, seed, first_scene + step * recipe["batch"], recipe["batch"])
         loss = sum(model(images, targets).values())
         opt.zero_grad(set_to_none=True)
@@ -164,21 +165,11 @@ def train_model(model_id: str, steps: int | None = None, batch: int | None = Non
             log(f"{model_id} step {step + 1}/{recipe['steps']} loss {np.mean(losses[-20:]):.3f} "
                 f"({time.perf_counter() - wall0:.0f} s)")
     if sizes:
-        from speedbench.zoo.compact import NATIVE
-
-        _set_input_size(model, NATIVE)
+        configure(model)    # back to the native size
     info = {"recipe": recipe, "losses": losses,
             "train_seconds": round(time.perf_counter() - wall0, 1),
             "train_cpu_seconds": round(time.process_time() - cpu0, 1)}
     return model.eval(), info
-
-
-def _set_input_size(model, size: int) -> None:
-    """Make the model's own transform resize every image to size x size (SSD) or size (others)."""
-    tr = model.transform
-    tr.min_size, tr.max_size = (size,), size
-    if getattr(tr, "fixed_size", None) is not None:
-        tr.fixed_size = (size, size)
 
 
 def save_weights(model, model_id: str, info: dict, out_dir, heldout: dict) -> dict:
