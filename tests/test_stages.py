@@ -230,7 +230,9 @@ def test_real_ssdlite_stages_reconcile():
     # everything the exporter scoped or ORT fused got a scope
     assert res.stages.get("unattributed", 0) < 0.1 * res.profiled_ms
     row = res.to_row()
-    assert row["stage_backbone_ms"] == res.stages["backbone"] and row["profiled_ms"] == res.profiled_ms
+    assert row["stage_backbone_profiled_ms"] == res.stages["backbone"] and row["profiled_ms"] == res.profiled_ms
+    # the row's stage ms: the profiled split scaled onto the unprofiled median (issue 18)
+    assert sum(row[f"stage_{s}_ms"] for s in res.stages) == pytest.approx(res.measurement.median)
     assert np.isfinite(row["profiling_overhead"])
     assert row["model_file_mib"] == pytest.approx(os.path.getsize(point.graph) / 2**20)
 

@@ -132,10 +132,11 @@ def _print_summary(res) -> None:
         print("  NOISY: the spread is high or the CI target was not reached; do not rank on this point alone")
     if res.stages:
         total = sum(res.stages.values())
-        print(f"  stages (profiled run {res.profiled_ms:.2f} ms, profiling overhead "
-              f"{res.profiling_overhead * 100:+.0f}%):")
+        print(f"  stages: share of a profiled run ({res.profiled_ms:.2f} ms, profiling overhead "
+              f"{res.profiling_overhead * 100:+.0f}%) x unprofiled p50 {m.median:.2f} ms:")
         for stage, ms in sorted(res.stages.items(), key=lambda kv: -kv[1]):
-            print(f"    {stage:<13} {ms:9.2f} ms  {ms / total * 100:5.1f}%")
+            print(f"    {stage:<13} {ms / total * m.median:9.2f} ms  {ms / total * 100:5.1f}%  "
+                  f"(profiled {ms:.2f} ms)")
     mem = res.memory
     print(f"  memory MiB: after imports {mem.get('rss_imports_mib', 0):.0f}, loaded {mem.get('rss_loaded_mib', 0):.0f}, "
           f"peak {mem.get('rss_peak_mib', 0):.0f} ({mem.get('peak_scope')}); model file {mem.get('model_file_mib', 0):.1f}")

@@ -6,7 +6,7 @@ from dataclasses import dataclass, field
 
 from speedbench.measure.point import Point
 from speedbench.measure.stats import Measurement
-from speedbench.schema import STAGES, stage_column
+from speedbench.measure.timebase import stage_columns
 
 MEMORY_COLUMNS = ("rss_imports_mib", "rss_loaded_mib", "rss_peak_mib", "model_file_mib")
 LATENCY_COLUMNS = ("n_samples", "lat_min_ms", "lat_mean_ms", "lat_std_ms", "lat_cov",
@@ -20,7 +20,7 @@ class PointResult:
     status: str = "ok"                      # "ok" | "failed"
     reason: str = ""
     measurement: Measurement | None = None
-    stages: dict = field(default_factory=dict)      # stage -> ms per run (profiled pass)
+    stages: dict = field(default_factory=dict)      # stage -> ms per run of the profiled pass
     profiled_ms: float = NAN                # mean wall time of a profiled run
     profiling_overhead: float = NAN         # profiled median / unprofiled median - 1
     memory: dict = field(default_factory=dict)      # MEMORY_COLUMNS (+ details) in MiB
@@ -41,8 +41,9 @@ class PointResult:
             row.update(self.measurement.summary())
             p50 = row["lat_p50_ms"]
             row["fps"] = 1000.0 / p50 if p50 > 0 else NAN
-        for stage in STAGES:
-            row[stage_column(stage)] = float(self.stages[stage]) if stage in self.stages else NAN
+        # stage_X_ms in the unprofiled time base; the profiled pass's own ms under stage_X_profiled_ms
+        median = self.measurement.median if self.measurement is not None else NAN
+        row.update(stage_columns(self.stages, median))
         row["profiled_ms"] = self.profiled_ms
         row["profiling_overhead"] = self.profiling_overhead
         for col in MEMORY_COLUMNS:

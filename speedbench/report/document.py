@@ -13,6 +13,7 @@ from speedbench.analyse import add_costs, combine, frontier, pick
 from speedbench.analyse.common import latency_col, split_ok
 from speedbench.analyse.runs import Run
 from speedbench.report import plots
+from speedbench.schema import STAGES
 
 SAFETY = ("These are benchmark figures from one machine and a small held-out image set. They are no "
           "guarantee of latency or detection quality in a safety-relevant deployment (people, vehicles, "
@@ -133,8 +134,7 @@ def build(runs, budget_ms=None, latency: str = "p50", title: str | None = None,
         blocks.extend(_cost_blocks(ok, prices, col, stat, multi))
 
     blocks.append(("h2", "Stage breakdown"))
-    blocks.append(("figure", "stages", plots.plot_stages(ok), "Per-stage time from a separate profiled pass; "
-                   "the tick marks the unprofiled median. Time not tied to a stage is shown hatched."))
+    blocks.append(("figure", "stages", plots.plot_stages(ok), _stage_caption(ok)))
 
     blocks.append(("h2", "Latency distributions"))
     blocks.append(("figure", "latency", plots.plot_latency_distributions(samples, ok), "Raw samples per configuration."))
@@ -331,7 +331,8 @@ def _noise_lines(ok) -> list[str]:
                  "statistics); accuracy intervals are bootstrap intervals over the held-out images.")
     if "profiling_overhead" in ok.columns and ok["profiling_overhead"].notna().any():
         lines.append(f"Profiling overhead of the stage pass: median {ok['profiling_overhead'].median():.1%} "
-                     "(stage times come from that pass, not from the timed runs).")
+                     "(the stage split comes from that pass; stage milliseconds are scaled onto the timed runs' "
+                     "median, see the stage breakdown).")
     return lines
 
 
@@ -420,3 +421,26 @@ def _map_ci(r) -> str:
 def _flag(v) -> bool:
     # A flag column may hold numpy booleans, Python booleans or NaN (not recorded).
     return isinstance(v, (bool, np.bool_)) and bool(v)
+
+
+def _stage_caption(ok) -> str:
+    """How the stage times were obtained and how far they add up to the unprofiled median."""
+    cols = [f"stage_{s}_ms" for s in STAGES if f"stage_{s}_ms" in ok.columns]
+    text = ("Per-stage time in the timed runs' own time base: each stage's share of the node time of a "
+            "separate profiled pass, times the unprofiled median (the profiler's own milliseconds are "
+            "inflated, so they are kept only as stage_*_profiled_ms). The tick marks the unprofiled median; "
+            "time not tied to a stage is hatched.")
+    if not cols or "lat_p50_ms" not in ok.columns:
+        return text
+    total = ok[cols].apply(pd.to_numeric, errors="coerce").sum(axis=1, min_count=1)
+    ratio = (total / pd.to_numeric(ok["lat_p50_ms"], errors="coerce")).dropna()
+    if len(ratio):
+        text += f" Stage sum / p50: {ratio.min():.0%} to {ratio.max():.0%} over {len(ratio)} point(s)."
+    methods = sorted({m for m in ok.get("stage_method", pd.Series(dtype=str)).astype(str) if m})
+    if methods:
+        text += " Method: " + "; ".join(methods) + "."
+    if "subgraph_residual" in ok.columns and pd.to_numeric(ok["subgraph_residual"], errors="coerce").notna().any():
+        r = pd.to_numeric(ok["subgraph_residual"], errors="coerce").dropna()
+        text += (f" Independent check (stage sub-graphs timed alone): sum of sub-graphs vs whole graph "
+                 f"{r.min():+.0%} to {r.max():+.0%}.")
+    return text

@@ -32,6 +32,7 @@ from pathlib import Path
 
 from speedbench import schema
 from speedbench.errors import UserError
+from speedbench.measure.timebase import upgrade_frame
 
 META_FILE = "meta.json"
 PROFILE_FILE = "profile.toml"
@@ -42,7 +43,7 @@ EXPORTS_DIR = "exports"
 
 # Columns that hold text; every other schema column is numeric (NaN when missing).
 TEXT_COLUMNS = {"model", "weights", "backend", "exec_mode", "opt_level",
-                "point_id", "host", "family", "status", "reason"}
+                "point_id", "host", "family", "status", "reason", "stage_method"}
 BOOL_COLUMNS = {"noisy", "untrained"}
 
 _SCHEMA_SQL = """
@@ -349,7 +350,7 @@ def rows_to_frame(rows: list[dict]):
                                   else (v if isinstance(v, str) else json.dumps(v, default=_json_default)))
         elif len(values) == 0:
             df[col] = pd.to_numeric(df[col], errors="coerce").astype("float64")
-    return df
+    return upgrade_frame(df)
 
 
 def _version() -> str:
