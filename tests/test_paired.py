@@ -98,3 +98,47 @@ def test_results_on_different_images_are_refused():
     gt2, b, _ = _scenario(n_images=12)
     with pytest.raises(UserError, match="same images"):
         paired_map_diff(per_image_results(gt, a), per_image_results(gt2, b))
+
+
+def _rows(tmp_path, with_files=True):
+    import pandas as pd
+
+    gt, a, b = _scenario()
+    rows = []
+    for name, dets, ms in (("a", a, 10.0), ("b", b, 12.0)):
+        r = per_image_results(gt, dets)
+        f = tmp_path / f"{name}.npz"
+        r.save(f)
+        lo, hi = unpaired_interval(r)
+        rows.append({"model": name, "size": 320, "proposals": 0, "intra_threads": 1, "status": "ok",
+                     "lat_p50_ms": ms, "lat_p50_ci_lo_ms": ms - 0.1, "lat_p50_ci_hi_ms": ms + 0.1,
+                     "map": r.map(), "map_ci_lo": lo, "map_ci_hi": hi,
+                     "per_image_file": str(f) if with_files else ""})
+    return pd.DataFrame(rows)
+
+
+def test_frontier_pick_and_compare_use_the_paired_difference(tmp_path):
+    from speedbench.analyse import frontier, pick
+    from speedbench.analyse.compare import _accuracy_delta
+
+    # b is slower and worse on every image, but its own mAP interval overlaps a's
+    unpaired = frontier(_rows(tmp_path, with_files=False)).set_index("model")
+    assert unpaired.loc["b", "frontier_status"] == "tied"
+    df = _rows(tmp_path)
+    paired = frontier(df).set_index("model")
+    assert paired.loc["b", "frontier_status"] == "dominated" and paired.loc["a", "frontier_status"] == "frontier"
+
+    p = pick(df, budget_ms=20)
+    assert p.best["model"] == "a"
+    r = p.runners_up.iloc[0]
+    assert r["map_vs_best_paired"] and not r["map_vs_best_tied"] and r["map_vs_best_ci_hi"] < 0
+    assert not any("tied with the pick" in n for n in p.notes)
+    assert "paired CI" in p.to_text()
+
+    base, new = df.iloc[0].to_dict(), df.iloc[1].to_dict()
+    d = _accuracy_delta(base, new)
+    assert d["accuracy"] == "lower" and d["map_delta_method"].startswith("paired") and d["map_delta_ci_hi"] < 0
+    base["per_image_file"] = new["per_image_file"] = ""
+    wide = _accuracy_delta(base, new)     # without per-image results: the unpaired fallback
+    assert wide["map_delta_method"].startswith("unpaired")
+    assert wide["map_delta_ci_hi"] - wide["map_delta_ci_lo"] > 3 * (d["map_delta_ci_hi"] - d["map_delta_ci_lo"])

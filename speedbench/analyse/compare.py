@@ -18,6 +18,7 @@ import pandas as pd
 
 from speedbench.analyse.common import as_float as _f
 from speedbench.analyse.common import require_columns, with_ids
+from speedbench.analyse.paired import paired_diff
 from speedbench.analyse.comparison import Comparison
 from speedbench.analyse.rundiff import env_diff, load_notes, thread_change_notes
 from speedbench.analyse.runs import Run, as_run
@@ -169,8 +170,15 @@ def _accuracy_delta(rb, rn) -> dict:
     if not (np.isfinite(mb) and np.isfinite(mn)):
         return {"map_delta": math.nan, "map_delta_ci_lo": math.nan, "map_delta_ci_hi": math.nan,
                 "accuracy": "n/a"}
+    paired = paired_diff(rn, rb)
+    if paired is not None:
+        # Both runs scored their graph on the same images: a paired bootstrap of the difference.
+        lo, hi = paired["ci_lo"], paired["ci_hi"]
+        verdict = "lower" if hi < 0 else ("higher" if lo > 0 else "unchanged")
+        return {"map_delta": paired["diff"], "map_delta_ci_lo": lo, "map_delta_ci_hi": hi,
+                "accuracy": verdict, "map_delta_method": "paired bootstrap over the same images"}
     d = mn - mb
-    # Half-widths of the two CIs combined in quadrature: an approximation that treats the two
+    # Not paired (no per-image results, or other images). Half-widths of the two CIs combined in quadrature: an approximation that treats the two
     # runs' bootstrap intervals as independent and roughly symmetric.
     hb = (_f(rb.get("map_ci_hi")) - _f(rb.get("map_ci_lo"))) / 2
     hn = (_f(rn.get("map_ci_hi")) - _f(rn.get("map_ci_lo"))) / 2
@@ -180,7 +188,8 @@ def _accuracy_delta(rb, rn) -> dict:
         return {"map_delta": d, "map_delta_ci_lo": math.nan, "map_delta_ci_hi": math.nan, "accuracy": verdict}
     h = math.sqrt(hb * hb + hn * hn)
     verdict = "lower" if d + h < 0 else ("higher" if d - h > 0 else "unchanged")
-    return {"map_delta": d, "map_delta_ci_lo": d - h, "map_delta_ci_hi": d + h, "accuracy": verdict}
+    return {"map_delta": d, "map_delta_ci_lo": d - h, "map_delta_ci_hi": d + h, "accuracy": verdict,
+            "map_delta_method": "unpaired intervals in quadrature"}
 
 
 def _drift(rb, rn) -> str:

@@ -5,7 +5,10 @@ the two metrics the other point is either equal (the same graph gives exactly th
 same mAP at every thread setting) or better with non-overlapping confidence
 intervals, and on at least one metric it is strictly better. A point that is beaten
 on the point estimates but only within noise is *tied*: it stays in the table,
-because a rerun could well swap the order.
+because a rerun could well swap the order. For accuracy, "beyond noise" is
+decided by a paired bootstrap of the mAP difference over the shared images when
+both rows have per-image results (analyse.paired), so a tie means
+"indistinguishable on these images"; otherwise by disjoint unpaired intervals.
 """
 from __future__ import annotations
 
@@ -13,6 +16,7 @@ import numpy as np
 import pandas as pd
 
 from speedbench.analyse.common import bounds, has_accuracy, require_columns, split_ok
+from speedbench.analyse.paired import better_matrix
 
 STATUS_ORDER = {"frontier": 0, "tied": 1, "dominated": 2}
 
@@ -62,7 +66,11 @@ def _mark_group(g: pd.DataFrame, x: str, y: str, minimize_x: bool, with_y: bool)
     else:
         yv = ylo = yhi = np.zeros(len(g))  # latency only: accuracy unknown, treated as equal
     on_front = _nondominated(xv, yv)
-    beats = _beats_beyond_noise((xv, xlo, xhi), (yv, ylo, yhi))
+    # mAP of two graphs scored on the same images: beaten beyond noise means the paired
+    # bootstrap interval of the difference excludes 0 (overlap of the two unpaired
+    # intervals is kept only for pairs without per-image results).
+    paired = better_matrix(g) if with_y and y == "map" else None
+    beats = _beats_beyond_noise((xv, xlo, xhi), (yv, ylo, yhi, paired))
     classic = _classic_matrix(xv, yv)
     labels = g["label"].tolist()
     ids = g["point_id"].tolist()
@@ -112,12 +120,18 @@ def _classic_matrix(xv, yv) -> np.ndarray:
 
 
 def _beats_beyond_noise(*metrics) -> np.ndarray:
-    """B[i, j]: on every metric i equals j or is better with disjoint CIs, and strictly on one."""
+    """B[i, j]: on every metric i equals j or is better with disjoint CIs, and strictly on one.
+
+    A metric may come with a fourth item (better, mask): where mask holds, better[i, j]
+    replaces the CI-overlap test (the paired accuracy comparison).
+    """
     ok = None
     strict = None
-    for v, lo, hi in metrics:
+    for v, lo, hi, *override in metrics:
         eq = np.abs(v[:, None] - v[None, :]) <= 1e-12 * np.maximum(np.abs(v[:, None]), np.abs(v[None, :]))
         better = hi[:, None] < lo[None, :]
+        if override and override[0] is not None:   # (better, where it applies): a paired comparison
+            better = np.where(override[0][1], override[0][0], better)
         ok = (eq | better) if ok is None else ok & (eq | better)
         strict = better if strict is None else strict | better
     return ok & strict

@@ -7,6 +7,7 @@ import numpy as np
 import pandas as pd
 
 from speedbench.analyse.common import bounds, has_accuracy, latency_col, require_columns, split_ok
+from speedbench.analyse.paired import paired_diff
 from speedbench.analyse.prices import SINGLE, add_costs
 from speedbench.errors import UserError
 
@@ -63,7 +64,7 @@ class Pick:
             lines.append("Runners-up:")
             for _, r in self.runners_up.head(5).iterrows():
                 cost = f", {_cost(r, short=True)}" if self.priced else ""
-                lines.append(f"  {r['label']}: {stat} {r[self.latency]:.2f} ms{_acc(r)}{cost}")
+                lines.append(f"  {r['label']}: {stat} {r[self.latency]:.2f} ms{_acc(r)}{_vs_best(r)}{cost}")
         if len(self.excluded):
             lines.append(f"Excluded ({len(self.excluded)}):")
             for _, r in self.excluded.iterrows():
@@ -88,6 +89,16 @@ def _cost(r, short: bool = False) -> str:
         return f"${c:.4g} per million frames"
     return (f"cost ${c:.4g} per million frames (host ${r['usd_per_hour']:g}/h, {r['frames_per_s']:.1f} frames/s "
             f"from {r['fps_source']})")
+
+
+def _vs_best(r) -> str:
+    d = r.get("map_vs_best")
+    if d is None or pd.isna(d):
+        return ""
+    lo, hi = r.get("map_vs_best_ci_lo"), r.get("map_vs_best_ci_hi")
+    if r.get("map_vs_best_paired") and pd.notna(lo):
+        return f", {d:+.3f} vs pick (paired CI {lo:+.3f} to {hi:+.3f})"
+    return f", {d:+.3f} vs pick"
 
 
 def _acc(r) -> str:
@@ -181,10 +192,16 @@ def pick(df: pd.DataFrame, budget_ms: float, latency: str = "p50", threads=None,
                          "which says nothing about detection quality")
         best = fits.iloc[0]
         runners = fits.iloc[1:].drop(columns=["reason"])
-        if prices is None and acc and len(runners) and "map_ci_hi" in runners.columns and pd.notna(best.get("map_ci_lo")):
-            close = runners[pd.to_numeric(runners["map_ci_hi"], errors="coerce") >= best["map_ci_lo"]]
+        if acc and len(runners):
+            runners = _versus_best(runners, best)
+        if prices is None and acc and len(runners) and pd.notna(best.get("map_ci_lo")):
+            close = runners[runners["map_vs_best_tied"]]
             if len(close):
-                notes.append(f"{len(close)} runner(s)-up have mAP within the best one's CI; "
+                how = ("paired bootstrap of the mAP difference over the same images includes 0"
+                       if close["map_vs_best_paired"].all() else
+                       "mAP within noise of the best one's (paired where per-image results exist, "
+                       "else overlapping intervals)")
+                notes.append(f"{len(close)} runner(s)-up are tied with the pick on accuracy ({how}); "
                              "the accuracy ranking between them is within noise")
         if best["_hi"] > budget_ms:
             notes.append(f"the {stat} CI of the pick reaches {best['_hi']:.2f} ms, past the budget: "
@@ -209,6 +226,26 @@ def pick(df: pd.DataFrame, budget_ms: float, latency: str = "p50", threads=None,
                 runners_up=runners, excluded=excluded.reset_index(drop=True),
                 closest_misses=misses.reset_index(drop=True), accuracy_available=acc, notes=notes,
                 per_host=_per_host(ok, fits, col, stat, prices is not None), priced=prices is not None)
+
+
+def _versus_best(runners: pd.DataFrame, best) -> pd.DataFrame:
+    """Each runner-up's mAP minus the pick's, with a paired interval where both have per-image results."""
+    runners = runners.copy()
+    d, lo, hi, paired, tied = [], [], [], [], []
+    bm = pd.to_numeric(pd.Series([best.get("map")]), errors="coerce").iloc[0]
+    for r in runners.to_dict("records"):
+        p = paired_diff(r, best)
+        m = pd.to_numeric(pd.Series([r.get("map")]), errors="coerce").iloc[0]
+        if p is not None:
+            d.append(p["diff"]); lo.append(p["ci_lo"]); hi.append(p["ci_hi"]); paired.append(True)
+            tied.append(not p["distinct"])
+        else:
+            d.append(m - bm); lo.append(np.nan); hi.append(np.nan); paired.append(False)
+            r_hi = pd.to_numeric(pd.Series([r.get("map_ci_hi")]), errors="coerce").iloc[0]
+            tied.append(bool(pd.notna(r_hi) and pd.notna(best.get("map_ci_lo")) and r_hi >= best["map_ci_lo"]))
+    runners["map_vs_best"], runners["map_vs_best_ci_lo"], runners["map_vs_best_ci_hi"] = d, lo, hi
+    runners["map_vs_best_paired"], runners["map_vs_best_tied"] = paired, tied
+    return runners
 
 
 def _per_host(ok: pd.DataFrame, fits: pd.DataFrame, col: str, stat: str, priced: bool) -> pd.DataFrame | None:

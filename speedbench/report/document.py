@@ -329,6 +329,10 @@ def _noise_lines(ok) -> list[str]:
     lines.append(f"{noisy} point(s) flagged noisy (high spread): treat their figures with extra care.")
     lines.append("Latency intervals are distribution-free confidence intervals of each percentile (order "
                  "statistics); accuracy intervals are bootstrap intervals over the held-out images.")
+    if "per_image_file" in ok.columns and ok["per_image_file"].astype(str).ne("").any():
+        lines.append("Accuracy comparisons between configurations (dominated / tied, the pick's runners-up) use a "
+                     "paired bootstrap of the mAP difference over the same images; \"tied\" on accuracy means "
+                     "indistinguishable on these images, not that two wide intervals overlap.")
     if "profiling_overhead" in ok.columns and ok["profiling_overhead"].notna().any():
         lines.append(f"Profiling overhead of the stage pass: median {ok['profiling_overhead'].median():.1%} "
                      "(the stage split comes from that pass; stage milliseconds are scaled onto the timed runs' "

@@ -40,6 +40,7 @@ DB_FILE = "points.sqlite"
 CSV_FILE = "points.csv"
 PARQUET_FILE = "points.parquet"
 EXPORTS_DIR = "exports"
+PER_IMAGE_DIR = "per_image"   # per-image accuracy results of each graph (<per_image_key>.npz)
 
 # Columns that hold text; every other schema column is numeric (NaN when missing).
 TEXT_COLUMNS = {"model", "weights", "backend", "exec_mode", "opt_level",
@@ -284,7 +285,13 @@ class RunDir:
 
     def points(self):
         """The points table as a DataFrame (columns: README.md, "Python API: the points table")."""
-        return rows_to_frame(self.rows())
+        df = rows_to_frame(self.rows())
+        if "per_image_key" in df.columns:
+            # where this run keeps each graph's per-image results (paired accuracy comparisons)
+            files = [str(self.path / PER_IMAGE_DIR / f"{k}.npz") if isinstance(k, str) and k else ""
+                     for k in df["per_image_key"]]
+            df["per_image_file"] = [f if f and os.path.isfile(f) else "" for f in files]
+        return df
 
     def samples(self):
         import pandas as pd

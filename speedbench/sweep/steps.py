@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from speedbench.errors import UserError
+from speedbench.sweep.rundir import PER_IMAGE_DIR
 
 NAN = float("nan")
 ACCURACY_COLUMNS = ("map", "map50", "map75", "map_small", "map_medium", "map_large", "mar_100",
@@ -108,6 +109,9 @@ def prepare_graph(point, profile, dataset, rd, cache: Path, progress) -> GraphIn
         return info
     progress.status(f"accuracy {model} {size}px")
     info.accuracy = _accuracy(Path(record.path), point, profile, dataset, cache, info)
+    if info.accuracy.get("per_image_key"):
+        _link_into_run(Path(cache) / "accuracy" / f"{info.accuracy['per_image_key']}.npz",
+                       rd.path / PER_IMAGE_DIR)
     return info
 
 
@@ -159,7 +163,8 @@ def _accuracy(graph: Path, point, profile, dataset, cache: Path, info: GraphInfo
     if path.exists():
         try:
             cached = json.loads(path.read_text())
-            if "det_digest" in cached:  # entries written before the digest existed are redone
+            # entries written before the digest / the per-image results existed are redone
+            if "det_digest" in cached and path.with_suffix(".npz").is_file():
                 return cached
         except (OSError, json.JSONDecodeError):
             pass  # a damaged cache entry is recomputed
@@ -188,6 +193,13 @@ def _accuracy(graph: Path, point, profile, dataset, cache: Path, info: GraphInfo
         acc["threads_max_box_diff"] = float(inv["max_box_diff"])
     acc["det_digest"] = detections_digest(dets)
     path.parent.mkdir(parents=True, exist_ok=True)
+    # Per-image results (what a paired comparison of two graphs resamples), kept per graph.
+    from speedbench.evaluate.paired import per_image_results
+
+    npz = path.with_suffix(f".{os.getpid()}.tmp.npz")
+    per_image_results(scored.coco, dets).save(npz)
+    os.replace(npz, path.with_suffix(".npz"))
+    acc["per_image_key"] = key
     tmp = path.with_suffix(f".{os.getpid()}.tmp")
     tmp.write_text(json.dumps({k: (None if isinstance(v, float) and not math.isfinite(v) else v)
                                for k, v in acc.items()}))
