@@ -199,6 +199,10 @@ def test_ort_sweep_exports_and_evaluates_once_then_reuses_the_cache(tmp_path, mo
     (check,) = load_meta(tmp_path / "run1")["thread_invariance"].values()
     assert check["identical"] == row["threads_identical"]
     assert isinstance(row["det_digest"], str) and len(row["det_digest"]) == 20
+    # per-image results kept with the run, for paired accuracy comparisons (issue 18)
+    from speedbench.evaluate.paired import PerImage
+
+    assert PerImage.load(row["per_image_file"]).map() == pytest.approx(row["map"], abs=1e-9)
     assert len(list((tmp_path / "run1" / "exports").glob("*.onnx"))) == 1   # graph kept with the run
     assert len(list((cache / "exports").glob("*.json"))) == 1
     assert len(list((cache / "accuracy").glob("*.json"))) == 1
