@@ -94,7 +94,7 @@ def build(runs, budget_ms=None, latency: str = "p50", title: str | None = None,
             try:
                 from speedbench.sweep import RunDir
 
-                with RunDir.open(r.path) as rd:
+                with RunDir.open(r.path, readonly=True) as rd:
                     blocks.append(("details", f"Profile of {r.name}", rd.profile_text()))
             except Exception:  # the profile copy is a courtesy; its absence must not stop the report
                 pass
