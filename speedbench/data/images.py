@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import struct
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -21,7 +22,11 @@ def read_image(path, max_pixels: int = DEFAULT_MAX_PIXELS) -> np.ndarray:
 
     path = Path(path)
     try:
-        with Image.open(path) as im:
+        with warnings.catch_warnings():
+            # PIL warns above its own limit; ours (max_pixels) is checked right below instead.
+            warnings.simplefilter("ignore", Image.DecompressionBombWarning)
+            im = Image.open(path)
+        with im:
             w, h = im.size
             if w * h > max_pixels:
                 raise UserError(f"{path}: image is {w}x{h} = {w * h} pixels, above the limit of {max_pixels} "

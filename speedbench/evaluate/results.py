@@ -48,11 +48,11 @@ def parse_detections(dets, gt: GroundTruth, source: str = "detections") -> Detec
             if len(dets):
                 raise ValueError
             box = box.reshape(0, 4)
-    except (KeyError, TypeError, ValueError, OverflowError):
+        img_f, cat_f = np.array(img, float), np.array(cat, float)
+        score = np.array(score, np.float64)
+    except (KeyError, TypeError, ValueError, OverflowError):   # OverflowError: an int beyond float range
         _raise_first_bad(dets, source)
         raise  # pragma: no cover - _raise_first_bad always raises
-    img_f, cat_f = np.array(img, float), np.array(cat, float)
-    score = np.array(score, np.float64)
     checks = [
         (~np.isfinite(img_f) | (img_f != np.round(img_f)), "image_id must be an integer"),
         (~np.isin(img_f, gt.image_ids), "image_id is not an image of the ground truth"),

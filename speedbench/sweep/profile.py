@@ -211,6 +211,10 @@ def parse_profile(text: str, source: str = "<profile>") -> Profile:
         doc = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise UserError(f"{source}: TOML syntax error: {exc}") from None
+    except RecursionError:
+        raise UserError(f"{source}: TOML nested too deeply; refused") from None
+    except ValueError as exc:   # e.g. an integer literal with more digits than Python converts
+        raise UserError(f"{source}: TOML value refused ({exc})") from None
     c = _Checker(source)
     c.table(doc, "", {"run", "dataset", "sweep", "models", "threads", "repetitions", "synthetic"},
             {"run", "dataset", "models", "threads"})
