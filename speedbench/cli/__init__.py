@@ -65,7 +65,10 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
-    args = parser.parse_args(argv)
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:   # --help, --version, or a refused argument (already printed, one line)
+        return exc.code if isinstance(exc.code, int) else 2
     if not getattr(args, "run", None):
         parser.print_help()
         return 2

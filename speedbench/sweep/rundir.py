@@ -61,6 +61,7 @@ EXPORTS_DIR = "exports"
 PER_IMAGE_DIR = "per_image"   # per-image accuracy results of each graph (<per_image_key>.npz)
 LOCK_FILE = ".lock"
 KEPT = "points stored so far are kept; make room, then continue with --resume"
+UNDONE = "nothing was measured: the incomplete run directory was removed, start again once the problem is fixed"
 
 # Columns that hold text; every other schema column is numeric (NaN when missing).
 TEXT_COLUMNS = {"model", "weights", "backend", "exec_mode", "opt_level",
@@ -183,7 +184,7 @@ class RunDir:
             raise storage_error(exc, path, "cannot create the run directory") from None
         rd = cls(path)
         try:
-            rd._lock()
+            rd._lock(hint=UNDONE)
         except BaseException:
             if made:
                 shutil.rmtree(path, ignore_errors=True)
@@ -196,8 +197,7 @@ class RunDir:
         except BaseException as exc:
             rd._undo_create(made)
             if isinstance(exc, UserError):
-                raise UserError(f"{exc}; nothing was measured: the incomplete run directory was removed, "
-                                f"start again once the problem is fixed") from None
+                raise UserError(f"{exc}; {UNDONE}") from None
             raise
         return rd
 
@@ -257,13 +257,15 @@ class RunDir:
                 pass
 
     # ----------------------------------------------------------------- the lock
-    def _lock(self) -> None:
+    def _lock(self, hint: str = KEPT) -> None:
         """Take the run directory's exclusive lock (fcntl.flock) or say who holds it."""
         lock_path = self.path / LOCK_FILE
         try:
             io_step("write", lock_path)
             fd = os.open(lock_path, os.O_RDWR | os.O_CREAT, 0o644)
         except OSError as exc:
+            if exc.errno in (errno.ENOSPC, errno.EDQUOT):
+                raise storage_error(exc, lock_path, hint) from None
             raise storage_error(exc, self.path, "a run directory must be writable to add points to it") from None
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
@@ -355,9 +357,13 @@ class RunDir:
 
     def close(self) -> None:
         try:
-            if self._db is not None:
-                if self._copies_stale and not self.readonly:
+            if self._db is not None and self._copies_stale and not self.readonly:
+                try:
                     self._export_tables()
+                except UserError:
+                    # A full disk: the copies lag (SQLite holds every point); the error that
+                    # stopped the sweep, if any, is the one to report, not this one.
+                    pass
         finally:
             if self._db is not None:
                 self._db.close()
