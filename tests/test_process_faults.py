@@ -136,3 +136,37 @@ def test_cluster_where_nothing_answers_is_one_line_without_noise_at_exit(tmp_pat
         lines = res.stderr.strip().splitlines()
         assert len(lines) == 1 and lines[0].startswith(f"speedbench: error: --cluster {address}: cannot "), lines
     assert not (tmp_path / "out").exists()
+
+
+MID_COMMIT = r"""
+import sys, time
+from speedbench.sweep.rundir import RunDir
+rd = RunDir.open(sys.argv[1])
+db = rd._db
+db.execute("PRAGMA cache_size = 1")          # spill to the file: a hot journal exists from here on
+db.execute("BEGIN IMMEDIATE")
+for i in range(5000):
+    db.execute("INSERT INTO samples (point_id, i, ms) VALUES ('half-written', ?, 1.0)", (i,))
+db.execute("INSERT INTO points (point_id, seq, row) VALUES ('half-written', 99, '{}')")
+print("mid-commit", flush=True)
+time.sleep(600)
+"""
+
+
+def test_reader_after_a_writer_killed_mid_commit_sees_the_committed_state(tmp_path):
+    # The killed writer leaves a hot journal; a read-only connection cannot roll it back
+    # (SQLITE_READONLY_ROLLBACK), so the reader lets SQLite restore the last commit.
+    from speedbench.sweep import RunDir, load_run, load_samples
+
+    run = tmp_path / "run"
+    with RunDir.create(run, "", {"env": {}}) as rd:
+        rd.write_point({"point_id": "kept", "status": "ok", "n_samples": 3}, [1.0, 2.0, 3.0])
+    before = stored(run)
+    proc = subprocess.Popen([sys.executable, "-c", MID_COMMIT, str(run)], stdout=subprocess.PIPE, text=True)
+    assert proc.stdout.readline().strip() == "mid-commit"
+    proc.kill()
+    proc.wait()
+    assert (run / "points.sqlite-journal").exists()
+    df, s = load_run(run), load_samples(run)          # readers first, before anything else opens it
+    assert list(df.point_id) == ["kept"] and list(s.ms) == [1.0, 2.0, 3.0]
+    assert stored(run) == before
