@@ -62,11 +62,11 @@ def test_dataset_image_above_the_pixel_limit_names_the_file_and_the_profile_key(
 
 
 def test_bomb_in_a_dataset_is_exit_2_in_measure(tmp_path, capsys):
-    from speedbench.cli import main
+    from helpers import cli
 
     ann = coco_folder(tmp_path, width=50_000, height=50_000,
                       image=lambda p: png_header_only(p, 50_000, 50_000))
-    code = main(["measure", "--backend", "synthetic", "--model", "synthetic", "--dataset", str(ann)])
+    code = cli(["measure", "--backend", "synthetic", "--model", "synthetic", "--dataset", str(ann)])
     err = capsys.readouterr().err.strip()
     assert code == 2 and len(err.splitlines()) == 1
     assert "annotations.json" in err and "max_pixels" in err
@@ -114,7 +114,7 @@ def test_annotation_numbers_checked_per_field(tmp_path):
 
 @pytest.mark.parametrize("entry, field", [
     ({"image_id": 10**30, "category_id": 1, "bbox": [1, 2, 3, 4], "score": 0.5}, "out of range"),
-    ({"image_id": 1, "category_id": 1, "bbox": [1, 2, 3, 4], "score": "1e400"}, "not finite"),
+    ({"image_id": 1, "category_id": 1, "bbox": [1, 2, 3, 4], "score": "1e400"}, "score must be a finite number"),
 ])
 def test_detections_huge_numbers(tmp_path, entry, field):
     from speedbench.evaluate import load_detections

@@ -120,7 +120,7 @@ def test_cluster_that_is_not_an_address_fails_at_once_in_one_line(tmp_path):
                              capture_output=True, text=True, timeout=120)
         assert res.returncode == 2
         assert res.stderr.strip().splitlines() == [
-            f"speedbench sweep: error: argument --cluster: {address!r} is not a scheduler address such as "
+            f"speedbench: error: argument --cluster: {address!r} is not a scheduler address such as "
             f"tcp://HOST:8786 (see speedbench sweep --help)"]
     assert not (tmp_path / "runs").exists()
 

@@ -18,7 +18,7 @@ import time
 
 import pytest
 
-from speedbench.cli import main
+from helpers import cli
 from speedbench.errors import UserError
 from speedbench.sweep import rundir
 from speedbench.sweep.rundir import RunDir
@@ -51,7 +51,7 @@ def one_line_error(capsys) -> str:
 
 
 def sweep(prof, run, *extra):
-    return main(["sweep", str(prof), "-o", str(run), "-q", *extra])
+    return cli(["sweep", str(prof), "-o", str(run), "-q", *extra])
 
 
 class Fault:
@@ -175,12 +175,12 @@ def test_reading_a_run_never_writes_to_it(tmp_path, monkeypatch, capsys):
         raise AssertionError(f"a reader wrote: {step} {path}")
 
     monkeypatch.setattr(rundir, "io_step", no_writes)
-    assert main(["frontier", str(run)]) == 0
-    assert main(["pick", str(run), "--budget-ms", "1000"]) in (0, 1)
-    assert main(["report", str(run), "-o", str(tmp_path / "r.html")]) == 0
-    assert main(["compare", str(run), str(run)]) in (0, 1)
-    assert main(["size", str(run), "--streams", "2", "--fps", "5"]) in (0, 2)
-    assert main(["sweep", str(prof), "-o", str(run), "--resume", "--dry-run"]) == 0
+    assert cli(["frontier", str(run)]) == 0
+    assert cli(["pick", str(run), "--budget-ms", "1000"]) in (0, 1)
+    assert cli(["report", str(run), "-o", str(tmp_path / "r.html")]) == 0
+    assert cli(["compare", str(run), str(run)]) in (0, 1)
+    assert cli(["size", str(run), "--streams", "2", "--fps", "5"]) in (0, 2)
+    assert cli(["sweep", str(prof), "-o", str(run), "--resume", "--dry-run"]) == 0
     capsys.readouterr()
     from speedbench.sweep import load_meta, load_run, load_samples
 
@@ -207,7 +207,7 @@ def test_output_into_a_read_only_or_missing_folder_is_refused_before_work(tmp_pa
     _, run = finished_run(tmp_path)
     suffix = ".html" if command == "report" else ".png"
     # A folder that does not exist: refused while parsing the arguments.
-    assert main([command, str(run), "-o", str(tmp_path / "nowhere" / f"x{suffix}")]) == 2
+    assert cli([command, str(run), "-o", str(tmp_path / "nowhere" / f"x{suffix}")]) == 2
     err = one_line_error(capsys)
     assert "does not exist" in err and "-o" in err
     # A folder that cannot be written (a read-only file system reports EROFS even to root).
@@ -215,7 +215,7 @@ def test_output_into_a_read_only_or_missing_folder_is_refused_before_work(tmp_pa
     monkeypatch.setattr(os, "access", lambda p, mode, **k: False if str(p) == str(tmp_path / "ro")
                         else real_access(p, mode, **k))
     (tmp_path / "ro").mkdir()
-    assert main([command, str(run), "-o", str(tmp_path / "ro" / f"x{suffix}")]) == 2
+    assert cli([command, str(run), "-o", str(tmp_path / "ro" / f"x{suffix}")]) == 2
     assert "not writable" in one_line_error(capsys)
 
 
@@ -228,7 +228,7 @@ def test_write_failing_late_in_a_read_only_place_is_one_line(tmp_path, monkeypat
         raise OSError(errno.EROFS, "Read-only file system", str(tmp_path / "r.html"))
 
     monkeypatch.setattr(report, "render_html", refuse)
-    assert main(["report", str(run), "-o", str(tmp_path / "r.html")]) == 2
+    assert cli(["report", str(run), "-o", str(tmp_path / "r.html")]) == 2
     assert one_line_error(capsys) == f"speedbench: error: {tmp_path / 'r.html'}: cannot write (read-only file system)"
 
 
@@ -256,7 +256,7 @@ def test_second_writer_exits_2_naming_the_holder_and_readers_keep_working(tmp_pa
         from speedbench.sweep import load_run
 
         assert len(load_run(run)) == 2
-        assert main(["frontier", str(run)]) == 0
+        assert cli(["frontier", str(run)]) == 0
         capsys.readouterr()
     finally:
         holder.kill()     # SIGKILL: the OS releases the lock; nothing is left stuck
@@ -308,6 +308,6 @@ def test_row_that_is_not_an_object_is_a_damaged_run_directory_naming_the_row(tmp
     for args in (["frontier", str(run)], ["pick", str(run), "--budget-ms", "100"],
                  ["report", str(run), "-o", str(tmp_path / "r.html")], ["compare", str(run), str(run)],
                  ["size", str(run), "--streams", "1", "--fps", "1"]):
-        assert main(args) == 2, args
+        assert cli(args) == 2, args
         err = one_line_error(capsys)
         assert f"damaged run directory: row {seq} (point '{pid}')" in err, err

@@ -101,7 +101,7 @@ def size(df, streams, fps, p99_ms=None, server_cores=(8, 16, 32, 64), headroom=0
         known = {str(h.host): h.cores_logical for h in df.hosts.itertuples()}
         host_cores = {**known, **(host_cores or {})}
         df = df.points
-    streams, fps, p99_ms, shapes, headroom, core_hour_cost = _check_args(
+    streams, fps, p99_ms, shapes, headroom, core_hour_cost = check_args(
         streams, fps, p99_ms, server_cores, headroom, core_hour_cost)
     required = streams * fps
     configs, excluded = scaling_summary(df)
@@ -397,7 +397,7 @@ MAX_STREAMS = 1_000_000
 MIN_FPS, MAX_FPS = 0.001, 10_000.0
 
 
-def _check_args(streams, fps, p99_ms, server_cores, headroom, cost):
+def check_args(streams, fps, p99_ms, server_cores, headroom, cost):
     def number(name, value):
         try:
             v = float(value)

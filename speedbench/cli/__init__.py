@@ -21,10 +21,11 @@ PLACE_ERRNOS = {errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EACCES, errno.EPE
 
 
 class Parser(argparse.ArgumentParser):
-    """argparse with one-line errors: `speedbench pick: error: argument --min-map: ...` and exit 2."""
+    """argparse with one-line errors: `speedbench: error: argument --min-map: ... (see speedbench pick --help)`,
+    exit status 2 (argparse raises SystemExit(2), as it always did)."""
 
     def error(self, message):
-        self.exit(2, f"{self.prog}: error: {' '.join(message.split())} (see {self.prog} --help)\n")
+        self.exit(2, f"speedbench: error: {' '.join(message.split())} (see {self.prog} --help)\n")
 
 
 class Terminated(KeyboardInterrupt):
@@ -65,10 +66,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
-    try:
-        args = parser.parse_args(argv)
-    except SystemExit as exc:   # --help, --version, or a refused argument (already printed, one line)
-        return exc.code if isinstance(exc.code, int) else 2
+    args = parser.parse_args(argv)   # a refused argument: one line, SystemExit(2)
     if not getattr(args, "run", None):
         parser.print_help()
         return 2

@@ -1,7 +1,7 @@
 """Argument types shared by the sub-commands: every number gets its range and every output
 path its allowed suffixes, checked by argparse while parsing, so before any work starts.
 
-A refused value is one line (`speedbench pick: error: argument --min-map: ...`) and exit status 2.
+A refused value is one line (`speedbench: error: argument --min-map: ...`) and exit status 2.
 """
 from __future__ import annotations
 
@@ -48,21 +48,6 @@ def float_in(lo: float, hi: float, open_lo: bool = False, open_hi: bool = False)
             raise argparse.ArgumentTypeError(f"must be in {left}{_fmt(lo)}, {_fmt(hi)}{right}, not {text}")
         return v
     parse.__name__ = "number"
-    return parse
-
-
-def int_list(lo: int, hi: int):
-    """argparse type: comma-separated integers, each in [lo, hi] (kept as the text the API parses)."""
-    one = int_in(lo, hi)
-
-    def parse(text):
-        items = [s.strip() for s in str(text).split(",") if s.strip()]
-        if not items:
-            raise argparse.ArgumentTypeError(f"expected comma-separated whole numbers, not {text!r}")
-        for item in items:
-            one(item)
-        return text
-    parse.__name__ = "list"
     return parse
 
 

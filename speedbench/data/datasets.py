@@ -369,7 +369,12 @@ def _voc_side(text, where: str) -> int:
 
 def _label(obj, i: int) -> str:
     """An entry's id for messages, or its list position when it has none."""
-    return _short_repr(obj["id"]) if isinstance(obj, dict) and "id" in obj else f"[{i}]"
+    if not isinstance(obj, dict) or "id" not in obj:
+        return f"[{i}]"
+    v = obj["id"]
+    if isinstance(v, str) or (isinstance(v, int) and abs(v) < 10**30):
+        return str(v)[:60]
+    return _short_repr(v)
 
 
 def _need_int(obj: dict, key: str, where: str) -> int:

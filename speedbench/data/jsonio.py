@@ -75,12 +75,12 @@ def parse_json(text: str, source, max_depth: int = MAX_DEPTH, allow_nonfinite: b
     except _BadNumber as exc:
         raise UserError(f"{source}: {exc}") from None
     except json.JSONDecodeError as exc:
-        raise UserError(f"{source}: not valid JSON ({exc})") from None
+        raise UserError(f"{source}: not a readable JSON file ({exc})") from None
     except RecursionError:  # pragma: no cover - the depth check comes first
         raise UserError(f"{source}: JSON nested too deeply; refused") from None
 
 
-def read_json(path, what: str = "JSON file", max_depth: int = MAX_DEPTH):
+def read_json(path, what: str = "JSON file", max_depth: int = MAX_DEPTH, allow_nonfinite: bool = False):
     """Read and parse a JSON file (UTF-8); a missing, unreadable or bad file is a UserError naming it."""
     path = Path(path)
     try:
@@ -93,4 +93,4 @@ def read_json(path, what: str = "JSON file", max_depth: int = MAX_DEPTH):
         raise UserError(f"{path}: cannot read {what} ({exc.strerror})") from None
     except UnicodeDecodeError:
         raise UserError(f"{path}: not a readable {what} (not UTF-8 text)") from None
-    return parse_json(text, path, max_depth)
+    return parse_json(text, path, max_depth, allow_nonfinite)

@@ -24,7 +24,8 @@ _NUMBER_TYPES = (int, float, np.integer, np.floating)
 def load_detections(path, gt) -> list[dict]:
     """Read and validate a COCO results JSON file against ground truth (dict or Dataset)."""
     path = Path(path)
-    dets = read_json(path, "detections file")   # bounded nesting, 64-bit integers, finite numbers
+    # Bounded nesting and 64-bit integers; NaN / inf get their per-field message below.
+    dets = read_json(path, "detections file", allow_nonfinite=True)
     ground = gt if isinstance(gt, GroundTruth) else GroundTruth(getattr(gt, "coco", gt))
     parse_detections(dets, ground, source=str(path))
     return dets
@@ -77,6 +78,8 @@ def _raise_first_bad(dets, source):
         if missing:
             raise UserError(f"{source}: detection [{i}]: missing field {missing[0]!r}")
         for f in ("image_id", "category_id", "score"):
+            if not isinstance(d[f], Real) or isinstance(d[f], bool):
+                raise UserError(f"{source}: detection [{i}]: {f} must be a number, got {_short(d[f])}")
             if not _is_number(d[f]):
                 raise UserError(f"{source}: detection [{i}]: {f} must be a finite number in range, "
                                 f"got {_short(d[f])}")
