@@ -22,7 +22,7 @@ PLACE_ERRNOS = {errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EACCES, errno.EPE
 
 class Parser(argparse.ArgumentParser):
     """argparse with one-line errors: `speedbench: error: argument --min-map: ... (see speedbench pick --help)`,
-    exit status 2 (argparse raises SystemExit(2), as it always did)."""
+    exit status 2 (main() returns it, like every other user mistake)."""
 
     def error(self, message):
         self.exit(2, f"speedbench: error: {' '.join(message.split())} (see {self.prog} --help)\n")
@@ -66,7 +66,10 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
-    args = parser.parse_args(argv)   # a refused argument: one line, SystemExit(2)
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:   # --help / --version (0), or a refused argument, already said in one line (2)
+        return exc.code if isinstance(exc.code, int) else 2
     if not getattr(args, "run", None):
         parser.print_help()
         return 2
