@@ -55,6 +55,8 @@ def output_file(*suffixes: str):
     """argparse type: a file to write, with one of `suffixes`, in an existing writable directory."""
     def parse(text):
         path = Path(text)
+        if path.is_dir():
+            raise argparse.ArgumentTypeError(f"{path}: is a directory; give a file name")
         if path.suffix.lower() not in suffixes:
             raise argparse.ArgumentTypeError(f"{text}: the file name must end in {' or '.join(suffixes)}")
         check_writable_place(path)
