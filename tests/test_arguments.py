@@ -90,6 +90,8 @@ def test_resume_after_profile_copy_deleted_says_it_is_missing(tmp_path, capsys):
     (["scenes", "OUT", "--width", "100000"], "--width"),
     (["train", "--steps", "0"], "--steps"),
     (["demo", "--budget-ms", "-1"], "--budget-ms"),
+    (["load", "p.toml", "--seconds", "inf"], "--seconds"),
+    (["load", "p.toml", "--seconds", "0"], "--seconds"),
 ])
 def test_numeric_options_have_ranges_checked_first(capsys, args, option):
     # `size` checks its figures with the sizing API's own check, still before any run is read
@@ -155,3 +157,8 @@ def test_measure_of_a_corrupt_graph_is_bad_input_exit_2(tmp_path, capsys):
     refused(capsys, ["measure", str(bad), "--model", "demo_ssdlite"], "broken.onnx: not a readable ONNX graph")
     refused(capsys, ["measure", str(tmp_path / "missing.onnx"), "--model", "demo_ssdlite"],
             "missing.onnx: ONNX file not found")
+
+
+def test_load_worker_counts_have_a_range(capsys):
+    refused(capsys, ["load", "p.toml", "-k", "1,999"], "-k/--concurrency: K must be in 1..256")
+    refused(capsys, ["load", "p.toml", "--utilisation", "nan"], "--utilisation: each must be in (0, 1.5]")
