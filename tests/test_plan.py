@@ -9,9 +9,9 @@ from speedbench.zoo.spec import ModelSpec
 
 SPECS = {
     "one": ModelSpec(id="one", builder="x.y", family="one-stage", native_size=320,
-                     detections_per_img=100, score_thresh=0.05, default_proposals=0),
+                     detections_per_img=100, score_thresh=0.05, default_proposals=0, arch="RetinaNet"),
     "two": ModelSpec(id="two", builder="x.y", family="two-stage", native_size=512,
-                     detections_per_img=100, score_thresh=0.05, default_proposals=1000),
+                     detections_per_img=100, score_thresh=0.05, default_proposals=1000, arch="FasterRCNN"),
 }
 
 

@@ -176,6 +176,7 @@ def test_ort_sweep_exports_and_evaluates_once_then_reuses_the_cache(tmp_path, mo
     import torch
 
     from speedbench.sweep import RunDir, steps
+    from speedbench.sweep.pipeline import GraphStore
     from speedbench.zoo import build_model
 
     weights = tmp_path / "ssd.pt"
@@ -219,8 +220,7 @@ def test_ort_sweep_exports_and_evaluates_once_then_reuses_the_cache(tmp_path, mo
     profile = load_profile(prof)
     planned = expand_plan(profile).points[0]
     rd = RunDir.create(tmp_path / "run2", profile.text, {"env": {}})
-    info = steps.prepare_graph(planned, profile, steps.prepare_dataset(profile, cache), rd, cache,
-                               type("Quiet", (), {"status": lambda self, text: None})())
+    info = GraphStore(profile, steps.prepare_dataset(profile, cache), rd.exports).prepare(planned)
     rd.close()
     assert info.ok and info.accuracy["map"] == row["map"] and info.facts["params"] == row["params"]
     assert planned.point_id == row["point_id"]   # same configuration, same id in every run

@@ -11,6 +11,12 @@ from speedbench.schema import CONFIG_COLUMNS, point_id
 
 EXEC_MODES = ("sequential", "parallel")
 OPT_LEVELS = ("disable", "basic", "extended", "all")
+ORT_ONLY_KNOBS = ("exec_mode", "opt_level")   # "" on every other backend (schema.CONFIG_COLUMNS)
+
+
+def uses_ort_knobs(backend: str) -> bool:
+    """Only ONNX Runtime has an execution mode and a graph optimisation level."""
+    return backend == "ort"
 
 
 @dataclass
@@ -37,8 +43,8 @@ class Point:
     options: dict = field(default_factory=dict)
 
     def __post_init__(self):
-        # ORT's executor knobs mean nothing elsewhere; schema: "" for eager (and the test backend)
-        if self.backend in ("eager", "synthetic"):
+        # The one place ORT-only knobs are blanked: plan, stored row and point_id(row) then agree.
+        if not uses_ort_knobs(self.backend):
             self.exec_mode, self.opt_level = "", ""
 
     def config(self) -> dict:
