@@ -44,7 +44,13 @@ CONFIG_COLUMNS = (
 ID_DEFAULTS: dict = {}
 
 # Percentiles reported for every latency distribution, in milliseconds.
-LATENCY_STATS = ("p50", "p90", "p99")
+LATENCY_PERCENTILES = (50, 90, 99)
+LATENCY_STATS = tuple(f"p{p}" for p in LATENCY_PERCENTILES)
+
+# Columns that hold text and flags; every other schema column is numeric (NaN when missing).
+TEXT_COLUMNS = frozenset({"model", "weights", "backend", "exec_mode", "opt_level",
+                          "point_id", "host", "family", "status", "reason", "stage_method"})
+BOOL_COLUMNS = frozenset({"noisy", "untrained"})
 
 # Groups of result columns, named here once; RESULT_COLUMNS below lists them in table order.
 LATENCY_COLUMNS = (
@@ -141,3 +147,38 @@ def point_id(config: dict) -> str:
            if not (c in ID_DEFAULTS and config.get(c, ID_DEFAULTS[c]) == ID_DEFAULTS[c])}
     blob = json.dumps(key, sort_keys=True, default=str).encode()
     return hashlib.sha1(blob).hexdigest()[:12]
+
+
+def config_label(row) -> str:
+    """The one human label of a configuration (progress lines, tables, plots, reports):
+    ``model @ size / proposals / threads`` plus the knobs that differ from the usual setting."""
+    get = row.get if hasattr(row, "get") else (lambda k, d=None: getattr(row, k, d))
+    size, props = _int_or(get("size", None)), _int_or(get("proposals", None))
+    intra, inter = _int_or(get("intra_threads", None)), _int_or(get("inter_threads", None))
+    threads = f"{intra}t" if inter in (None, 0, 1) else f"{intra}x{inter}t"
+    parts = [f"{get('model', '?')} @ {size}", f"{props}p" if props else "-", threads]
+    conc = _int_or(get("concurrency", None))
+    if conc and conc > 1:
+        parts.append(f"K={conc}")
+    backend = get("backend", None)
+    if backend and backend != "ort":
+        parts.append(str(backend))
+    # Knobs shown only when they differ from the usual setting, to keep labels short.
+    if get("exec_mode", "") == "parallel":
+        parts.append("parallel")
+    opt = get("opt_level", "")
+    if isinstance(opt, str) and opt not in ("", "all"):
+        parts.append(f"opt {opt}")
+    pin = _int_or(get("affinity", None))
+    if pin:
+        parts.append(f"{pin} cores")
+    return " / ".join(parts)
+
+
+def _int_or(v):
+    try:
+        if v is None or (isinstance(v, float) and v != v):   # None or NaN
+            return None
+        return int(v)
+    except (TypeError, ValueError):
+        return v

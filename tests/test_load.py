@@ -359,18 +359,15 @@ def test_load_cli_missing_target(tmp_path, capsys):
     assert "neither a run directory nor a profile" in capsys.readouterr().err
 
 
-def test_concurrency_as_a_sweep_axis_then_size(tmp_path, monkeypatch):
-    # The sweep plans K > 1 points only when the measure package says it supports them; set the
-    # flag here so the test exercises the sweep -> measure_load path whether or not it is set yet.
+def test_concurrency_as_a_sweep_axis_then_size(tmp_path):
+    # The sweep's concurrency axis -> measure_load -> a K = 2 row; sizing then reads that run.
     import os
 
-    import speedbench.measure
     from speedbench.analyse.sizing import size
     from speedbench.sweep import load_run, run_sweep
 
     if host_cores() < 2:
         pytest.skip("needs 2 cores for K=2")
-    monkeypatch.setattr(speedbench.measure, "SUPPORTS_CONCURRENCY", True, raising=False)
     prof = tmp_path / "axis.toml"
     prof.write_text(LOAD_PROFILE.replace('backends = ["synthetic"]', 'backends = ["synthetic"]\nconcurrency = [1, 2]'))
     run = run_sweep(prof, out_dir=tmp_path / "run", quiet=True, stream=open(os.devnull, "w"))
@@ -382,6 +379,8 @@ def test_concurrency_as_a_sweep_axis_then_size(tmp_path, monkeypatch):
     assert len(out) == 1 and "single-stream" in out["k1_source"].iloc[0]
     assert out["scaling_eff"].iloc[0] == pytest.approx(
         df.loc[2, "tput_fps"] / (2 * 1000.0 / df.loc[1, "lat_mean_ms"]))
+    # the sweep stored the same efficiency the sizing model recomputes from the rows
+    assert df.loc[2, "scaling_eff"] == pytest.approx(out["scaling_eff"].iloc[0], rel=1e-9)
 
 
 def test_small_real_detector_k1_k2():

@@ -54,7 +54,8 @@ import numpy as np
 
 from speedbench.errors import UserError
 
-from speedbench.schema import LOAD_COLUMNS
+from speedbench.schema import LATENCY_PERCENTILES, LOAD_COLUMNS
+from speedbench.system import atomic_write, cores_available
 
 NAN = float("nan")
 
@@ -164,7 +165,7 @@ def summarise(workers: list[dict], start_ns: int, end_ns: int, cores_used: int) 
         "tput_cpu_ms": float(np.mean(np.concatenate([np.asarray(w["cpu_ns"], float) for w in workers]))) / 1e6
         if n_total else NAN,
     }
-    for p in (50, 90, 99):
+    for p in LATENCY_PERCENTILES:
         out[f"tput_p{p}_ms"] = float(np.percentile(lat, p)) if n else NAN
     return out
 
@@ -181,8 +182,8 @@ def completed_latencies_ms(workers: list[dict], start_ns: int, end_ns: int) -> l
 
 # --------------------------------------------------------------------------- parent side
 def host_cores() -> int:
-    """Cores this process may run on (affinity / cgroup aware where Linux tells us)."""
-    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    """Cores this process may run on."""
+    return cores_available()
 
 
 def measure_load(point, images, k: int | None = None, policy=None, timeout_s: float = 600,
@@ -445,9 +446,7 @@ def _read_json(path) -> dict:
 
 
 def _write_json(path: Path, obj) -> None:
-    tmp = path.with_name(path.name + ".tmp")
-    tmp.write_text(json.dumps(obj))
-    os.replace(tmp, path)  # atomic: a reader sees all of it or nothing
+    atomic_write(path, json.dumps(obj))  # a reader sees all of it or nothing
 
 
 # --------------------------------------------------------------------------- worker side

@@ -1,13 +1,13 @@
 """What to run (Point) and how long to keep running it (Policy)."""
 from __future__ import annotations
 
-import os
 from dataclasses import asdict, dataclass, field, fields
 from pathlib import Path
 
 from speedbench.errors import UserError
 from speedbench.measure.backends import NAMES as BACKENDS
 from speedbench.schema import CONFIG_COLUMNS, point_id
+from speedbench.system import cores_available
 
 EXEC_MODES = ("sequential", "parallel")
 OPT_LEVELS = ("disable", "basic", "extended", "all")
@@ -72,7 +72,7 @@ class Point:
                 raise UserError(f"point field {name!r}: expected an integer >= 0, got {value!r}")
         if not isinstance(self.concurrency, int) or isinstance(self.concurrency, bool) or self.concurrency < 1:
             raise UserError(f"point field 'concurrency': expected an integer >= 1, got {self.concurrency!r}")
-        cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
+        cores = cores_available()
         if self.affinity > cores:
             raise UserError(f"point field 'affinity': {self.affinity} cores requested, {cores} available")
         if self.backend == "ort":

@@ -34,16 +34,6 @@ TIMED = ("What is timed: one call of the exported ONNX graph on one image (onnxr
          "until the confidence interval of the median is narrow enough or the time budget is spent.")
 
 
-def collect(runs) -> tuple[pd.DataFrame, pd.DataFrame, list[Run]]:
-    """One points table and one samples table from one or several runs (see analyse.combine).
-
-    Each row gets a `host` key. With several hosts, labels and point ids carry the host so
-    that the same configuration from two hosts stays apart.
-    """
-    data = combine(runs)
-    return data.points, data.samples, data.runs
-
-
 def build(runs, budget_ms=None, latency: str = "p50", title: str | None = None,
           prices: dict | None = None) -> tuple[str, list]:
     data = combine(runs)

@@ -8,7 +8,6 @@ skip leaves a note; none is an error.
 """
 from __future__ import annotations
 
-import os
 import dataclasses
 from collections import Counter
 from dataclasses import dataclass, field
@@ -18,6 +17,7 @@ from speedbench import schema
 from speedbench.errors import UserError
 from speedbench.measure.point import Point, uses_ort_knobs
 from speedbench.sweep.profile import Profile
+from speedbench.system import cores_available
 from speedbench.zoo import get_spec as zoo_spec
 
 # Rough costs for the dry-run estimate, from the demo sweep on the shared 2-core
@@ -74,18 +74,7 @@ class PlannedPoint:
 
     @property
     def label(self) -> str:
-        c = self.config
-        text = f"{c['model']} {c['size']}px"
-        if c["proposals"]:
-            text += f" p{c['proposals']}"
-        text += f" {c['backend']} t{c['intra_threads']}"
-        if c["exec_mode"] == "parallel":
-            text += f"/{c['inter_threads']}par"
-        if c["affinity"]:
-            text += f" pin{c['affinity']}"
-        if c["concurrency"] > 1:
-            text += f" K{c['concurrency']}"
-        return text
+        return schema.config_label(self.config)
 
 
 @dataclass
@@ -118,13 +107,6 @@ def synthetic_spec(model_id: str):
                      arch="", notes="harness test backend, not a detector")
 
 
-def _cores_allowed() -> int:
-    try:
-        return len(os.sched_getaffinity(0))
-    except (AttributeError, OSError):
-        return os.cpu_count() or 1
-
-
 def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool = True,
                 cores: int | None = None) -> Plan:
     """Expand `profile` into a Plan.
@@ -136,7 +118,7 @@ def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool = T
     cannot be honoured.
     """
     get_spec = get_spec or zoo_spec
-    cores = cores or _cores_allowed()
+    cores = cores or cores_available()
     notes: Counter = Counter()
     points: dict[str, PlannedPoint] = {}
     merged = 0

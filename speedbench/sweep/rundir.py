@@ -26,12 +26,12 @@ import json
 import math
 import os
 import sqlite3
-import tempfile
 import time
 from pathlib import Path
 
 from speedbench import schema
 from speedbench.errors import UserError
+from speedbench.system import atomic_write
 from speedbench.measure.timebase import upgrade_frame
 
 META_FILE = "meta.json"
@@ -42,10 +42,6 @@ PARQUET_FILE = "points.parquet"
 EXPORTS_DIR = "exports"
 PER_IMAGE_DIR = "per_image"   # per-image accuracy results of each graph (<per_image_key>.npz)
 
-# Columns that hold text; every other schema column is numeric (NaN when missing).
-TEXT_COLUMNS = {"model", "weights", "backend", "exec_mode", "opt_level",
-                "point_id", "host", "family", "status", "reason", "stage_method"}
-BOOL_COLUMNS = {"noisy", "untrained"}
 
 _SCHEMA_SQL = """
 CREATE TABLE IF NOT EXISTS points (
@@ -67,20 +63,7 @@ def now_iso() -> str:
 
 
 def _atomic_write_bytes(path: Path, data: bytes) -> None:
-    """Write to a temp file in the same directory, fsync, then rename over the target."""
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except FileNotFoundError:
-            pass
-        raise
+    atomic_write(path, data, fsync=True)
 
 
 def _json_default(value):
@@ -338,9 +321,9 @@ def rows_to_frame(rows: list[dict]):
                 extra.append(key)
     df = pd.DataFrame.from_records(rows, columns=known + extra) if rows else pd.DataFrame(columns=known)
     for col in known:
-        if col in TEXT_COLUMNS:
+        if col in schema.TEXT_COLUMNS:
             df[col] = df[col].where(df[col].notna(), "").astype(str).astype(object)
-        elif col in BOOL_COLUMNS:
+        elif col in schema.BOOL_COLUMNS:
             df[col] = df[col].where(df[col].notna(), False).astype(bool)
         else:
             df[col] = pd.to_numeric(df[col], errors="coerce").astype("float64")

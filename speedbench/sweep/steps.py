@@ -15,6 +15,7 @@ from pathlib import Path
 
 from speedbench import schema
 from speedbench.errors import UserError, one_line
+from speedbench.system import atomic_path, atomic_write, cores_available
 
 NAN = float("nan")
 
@@ -102,14 +103,15 @@ def accuracy(graph: Path, model: str, profile, dataset, cache: Path, notes: list
     det_cache = Path(cache) / "detections" / f"ort-{ort}"
     try:
         from speedbench.evaluate import detect_dataset, evaluate_graph
+        from speedbench.evaluate.paired import per_image_results
 
         # Always check threads (once per graph, cached with the accuracy): the one accuracy
         # figure stands for every thread setting only if 1 and 2 threads detect the same.
         result = evaluate_graph(graph, dataset, model=model, limit=profile.limit or None,
-                                intra_threads=_cores(), cache_dir=det_cache, check_threads=True)
+                                intra_threads=cores_available(), cache_dir=det_cache, check_threads=True)
         scored = dataset.first(int(profile.limit)) if profile.limit else dataset
         # Same graph, images and cache as evaluate_graph: served from its detections cache.
-        dets = detect_dataset(graph, scored, result["label_map"], _cores(), det_cache)
+        dets = detect_dataset(graph, scored, result["label_map"], cores_available(), det_cache)
     except UserError as exc:
         notes.append(f"accuracy not measured: {exc}")
         return {}
@@ -123,18 +125,12 @@ def accuracy(graph: Path, model: str, profile, dataset, cache: Path, notes: list
         acc["threads_identical"] = bool(inv["identical"])
         acc["threads_max_box_diff"] = float(inv["max_box_diff"])
     acc["det_digest"] = detections_digest(dets)
-    path.parent.mkdir(parents=True, exist_ok=True)
     # Per-image results (what a paired comparison of two graphs resamples), kept per graph.
-    from speedbench.evaluate.paired import per_image_results
-
-    npz = path.with_suffix(f".{os.getpid()}.tmp.npz")
-    per_image_results(scored.coco, dets).save(npz)
-    os.replace(npz, path.with_suffix(".npz"))
+    with atomic_path(path.with_suffix(".npz")) as tmp:
+        per_image_results(scored.coco, dets).save(tmp)
     acc["per_image_key"] = key
-    tmp = path.with_suffix(f".{os.getpid()}.tmp")
-    tmp.write_text(json.dumps({k: (None if isinstance(v, float) and not math.isfinite(v) else v)
-                               for k, v in acc.items()}))
-    os.replace(tmp, path)
+    atomic_write(path, json.dumps({k: (None if isinstance(v, float) and not math.isfinite(v) else v)
+                                   for k, v in acc.items()}))
     return acc
 
 
@@ -170,13 +166,6 @@ def _metric(value) -> float:
         return NAN
     value = float(value)
     return NAN if value < 0 else value
-
-
-def _cores() -> int:
-    try:
-        return len(os.sched_getaffinity(0))
-    except (AttributeError, OSError):
-        return os.cpu_count() or 1
 
 
 def dataset_fingerprint(dataset) -> str:
