@@ -98,9 +98,12 @@ def test_markdown_from_a_bare_frame(run_dir, tmp_path):
     # Backslash escapes, not HTML entities (CommonMark spec, "Backslash escapes": an escaped
     # ASCII punctuation character is literal text, so the tag stays inert but reads as typed).
     assert "&lt;" not in text and "&#x27;" not in text and "&amp;" not in text
-    assert "\\<script\\>alert(1)\\</script\\>det" in text
+    assert "\\<script>alert(1)\\</script>det" in text
     prose = re.sub(r"```.*?```", "", text, flags=re.S)   # code blocks show text verbatim
-    assert not re.search(r"(?<!\\)[<&]", prose), "an unescaped < or & outside code blocks"
+    # CommonMark "Raw HTML": only "<" opens a tag; "&" matters only as an entity reference
+    assert not re.search(r"(?<!\\)<|(?<!\\)&#?\w+;", prose), "an unescaped tag or entity outside code blocks"
+    # nothing else is escaped: versions and code spans read as written
+    assert not re.search(r"\d\\\.", text) and "\\`" not in text
     pngs = sorted((tmp_path / "r_files").glob("*.png"))
     assert len(pngs) >= 6 and all(f"r_files/{p.name}" in text for p in pngs)
     assert "## Frontier" in text and "> **Caution.**" in text
@@ -113,6 +116,11 @@ def test_markdown_escape_of_names():
     assert _md("# not a heading") == "\\# not a heading" and _md("1. x") == "1\\. x"
     assert _md("a|b") == "a\\|b" and _cell("a|b\nc") == "a\\|b c"
     assert _md("it's 3.2 ms") == "it's 3.2 ms"   # nothing Markdown interprets: left as written
+    # only a number followed by "." and a space starts an ordered list; a pair of backticks is
+    # the code span the writer meant; "-" starts a bullet only before a space
+    assert _md("0.1.0") == "0.1.0" and _md("3.11.7 on x") == "3.11.7 on x"
+    assert _md("run `speedbench pick`") == "run `speedbench pick`" and _md("-k 1,2") == "-k 1,2"
+    assert _md("- item") == "\\- item" and _md("a & b &amp; c") == "a & b \\&amp; c"
 
 
 def test_cli(run_dir, tmp_path, capsys):

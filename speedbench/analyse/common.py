@@ -1,6 +1,8 @@
 """Small helpers shared by frontier, pick and compare: labels, CI columns, row filters."""
 from __future__ import annotations
 
+import re
+
 import numpy as np
 import pandas as pd
 
@@ -101,3 +103,27 @@ def as_float(v) -> float:
         return float(v)
     except (TypeError, ValueError):
         return float("nan")
+
+
+# The one Markdown escaping rule (reports and compare): backslash escapes, never HTML entities
+# (which a Markdown viewer shows literally), and only where the character would change the
+# rendering (CommonMark: "Backslash escapes", "Entity references", "Raw HTML", list items, ATX
+# headings, block quotes, tables). So `0.1.0`, `3.11.7` and `speedbench pick` in backticks read as typed.
+_MD_INLINE = re.compile(r"\\(?=[!-/:-@\[-`{-~])"      # a backslash that would escape what follows
+                        r"|<"                            # could open a raw HTML tag
+                        r"|&(?=#?[A-Za-z0-9]+;)"         # would start an entity reference
+                        r"|[|\[\]]")                     # table cell separator, link brackets
+# Only at the start of a line: heading, block quote, bullet ("- x"), ordered list ("1. x").
+_MD_LEADING = re.compile(r"^(\s*)(#{1,6}(?=\s|$)|>|[*+-](?=\s|$)|\d{1,9}(?=[.)](?:\s|$)))", re.M)
+
+
+def md(text) -> str:
+    """Text as Markdown that renders exactly as written (an escaped "<script>" stays inert text)."""
+    out = _MD_INLINE.sub(lambda m: "\\" + m.group(0), str(text))
+    return _MD_LEADING.sub(lambda m: m.group(1) + (m.group(2) + "\\" if m.group(2)[0].isdigit()
+                                                     else "\\" + m.group(2)), out)
+
+
+def md_cell(text) -> str:
+    """md() for one table cell: on one line."""
+    return md(str(text).replace("\n", " "))
