@@ -269,7 +269,7 @@ def test_cli_progress_bar_and_quiet_lines(tmp_path, capsys):
     prof = write_profile(tmp_path, sizes="[64]")
     assert main(["sweep", str(prof), "-o", str(tmp_path / "bar")]) == 0
     cap = capsys.readouterr()
-    assert "2/2 points" in cap.err and "measuring synthetic 64px" in cap.err   # tqdm bar on stderr
+    assert "2/2 points" in cap.err and "measuring synthetic @ 64 / 10p" in cap.err   # tqdm bar on stderr
     assert "2 point(s), 2 ok, 0 failed" in cap.out
     assert main(["sweep", str(prof), "-o", str(tmp_path / "quiet"), "--quiet"]) == 0
     lines = [l for l in capsys.readouterr().err.splitlines() if l.startswith("[")]
@@ -329,6 +329,11 @@ def test_concurrency_axis_measures_throughput_points(tmp_path):
     # the same baseline speedbench.analyse.sizing derives from the K=1 row.
     assert two["scaling_eff"] == pytest.approx(two["tput_fps"] / (2 * 1000.0 / one["lat_mean_ms"]), rel=1e-9)
     assert two["point_id"] != one["point_id"]
+    # what a report quotes later is recorded now, in meta.json (the report never asks today's code)
+    from speedbench.measure.backends.synthetic import TIMED_REGION
+    from speedbench.sweep import load_meta
+
+    assert load_meta(tmp_path / "run")["timed_regions"] == {"synthetic": TIMED_REGION}
 
 
 

@@ -25,7 +25,7 @@ from pathlib import Path
 import speedbench
 from speedbench.errors import UserError
 from speedbench.fleet import engine, task
-from speedbench.sweep.pipeline import PreparedGraph, baselines, build_row, stream_key
+from speedbench.sweep.pipeline import PreparedGraph, baselines, build_row, record_run_facts, stream_key
 from speedbench.sweep.plan import PlannedPoint, expand_plan
 from speedbench.sweep.profile import load_profile, parse_profile
 from speedbench.sweep.progress import Progress
@@ -243,6 +243,7 @@ class _Fleet:
             todo = h.plan.missing(done)
             h.counts["skipped_done"] = len(h.plan.points) - len(todo)
             h.rd.update_meta(plan_points=len(h.plan.points), plan_notes=h.plan.notes)
+            record_run_facts(h.rd, h.plan.points)
             h.fps = baselines(h.rd.rows())
             total += len(todo)
             first = {}

@@ -20,8 +20,10 @@ from pathlib import Path
 
 from speedbench import schema
 from speedbench.errors import UserError, one_line
+from speedbench.measure.backends import get_backend
 from speedbench.sweep import steps
 from speedbench.sweep.plan import GraphKey, PlannedPoint
+from speedbench.zoo import trained_sizes
 
 NAN = float("nan")
 
@@ -248,6 +250,27 @@ def _worker_columns(extra: dict) -> dict:
         # Last line the worker printed before it failed: often the actual cause.
         out["worker_stderr"] = tail[-1][-300:]
     return out
+
+
+# ----------------------------------------------------------------- what a report needs later
+def run_facts(points) -> dict:
+    """Facts of this version of speedbench that a report of the run quotes, recorded in meta.json
+    when the run is made (a report renders only what the run recorded, never today's code):
+    timed_regions {backend: what its timed call includes}; trained_sizes {"model|weights": input
+    sizes the weights were trained at, or None where nothing records them}."""
+    regions, sizes = {}, {}
+    for p in points:
+        c = p.config
+        regions.setdefault(c["backend"], get_backend(c["backend"]).TIMED_REGION)
+        if c["backend"] != "synthetic":
+            sizes.setdefault(f"{c['model']}|{c['weights']}", trained_sizes(c["model"], c["weights"]))
+    return {"timed_regions": regions, "trained_sizes": sizes}
+
+
+def record_run_facts(rd, points) -> None:
+    """Add run_facts(points) to a run directory's meta.json, keeping what earlier sessions recorded."""
+    meta, facts = rd.meta(), run_facts(points)
+    rd.update_meta(**{k: {**v, **(meta.get(k) or {})} for k, v in facts.items()})
 
 
 # ----------------------------------------------------------------- the scaling baseline

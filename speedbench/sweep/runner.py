@@ -13,7 +13,7 @@ from pathlib import Path
 from speedbench.errors import UserError
 from speedbench.sweep import steps
 from speedbench.sweep.env import environment_fingerprint
-from speedbench.sweep.pipeline import PointJob, baselines, make_context, run_point, stream_key
+from speedbench.sweep.pipeline import PointJob, baselines, make_context, record_run_facts, run_point, stream_key
 from speedbench.sweep.plan import Plan, expand_plan
 from speedbench.sweep.profile import Profile, load_profile, parse_profile
 from speedbench.sweep.progress import Progress
@@ -83,6 +83,7 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
     todo = plan.missing(done)
     counts = {"ok": 0, "failed": 0, "skipped_done": len(plan.points) - len(todo)}
     rd.update_meta(plan_points=len(plan.points), plan_notes=plan.notes)
+    record_run_facts(rd, plan.points)
     for note in plan.notes:
         print(f"note: {note}", file=stream)
     orphans = orphaned_workers()

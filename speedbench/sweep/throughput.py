@@ -14,7 +14,8 @@ from speedbench import schema
 from speedbench.errors import UserError
 from speedbench.sweep import steps
 from speedbench.sweep.env import environment_fingerprint
-from speedbench.sweep.pipeline import LoadSettings, PointJob, make_context, run_point, single_stream_fps
+from speedbench.sweep.pipeline import (LoadSettings, PointJob, make_context, record_run_facts, run_point,
+                                      single_stream_fps)
 from speedbench.sweep.plan import PlannedPoint, expand_plan
 from speedbench.sweep.profile import load_profile, parse_profile
 from speedbench.sweep.rundir import PER_IMAGE_DIR, RunDir
@@ -76,6 +77,7 @@ def _measure_all(todo, profile, rd, host, ks, load, utilisations, store, report)
     dataset = steps.prepare_dataset(profile, Path(profile.cache)) \
         if any(p.config["backend"] != "synthetic" for p, _ in todo) else None
     context = make_context(profile, dataset, rd.exports, host=host, per_image_dir=rd.path / PER_IMAGE_DIR, load=load)
+    record_run_facts(rd, [p for p, _ in todo])
     counts = {"ok": 0, "failed": 0}
     for planned, source in todo:
         x1 = None
