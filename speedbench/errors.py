@@ -32,3 +32,8 @@ def storage_error(exc: OSError, path, hint: str = "") -> UserError:
     else:
         text = f"{path}: cannot write ({getattr(exc, 'strerror', None) or exc})"
     return UserError(f"{text}; {hint}" if hint else text)
+
+
+def one_line(exc, limit: int = 300) -> str:
+    """An exception's text on one line, cut at `limit` characters (for a failed row's reason)."""
+    return " ".join(str(exc).split())[:limit]
