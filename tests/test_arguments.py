@@ -160,5 +160,5 @@ def test_measure_of_a_corrupt_graph_is_bad_input_exit_2(tmp_path, capsys):
 
 
 def test_load_worker_counts_have_a_range(capsys):
-    refused(capsys, ["load", "p.toml", "-k", "1,999"], "-k/--concurrency: K must be in 1..256")
+    refused(capsys, ["load", "p.toml", "-k", "1,999"], "-k/--concurrency: K must be >= 1 and <= 256")
     refused(capsys, ["load", "p.toml", "--utilisation", "nan"], "--utilisation: each must be in (0, 1.5]")

@@ -69,7 +69,7 @@ def parse_ks(text) -> list[int]:
         except ValueError:
             raise UserError(f"-k/--concurrency: {part!r} is not a whole number") from None
         if not 1 <= k <= 256:
-            raise UserError(f"-k/--concurrency: K must be in 1..256, got {k}")
+            raise UserError(f"-k/--concurrency: K must be >= 1 and <= 256, got {k}")
         ks.append(k)
     if not ks:
         raise UserError("-k/--concurrency: give at least one K, e.g. -k 1,2")
