@@ -60,6 +60,8 @@ RESULT_COLUMNS = (
     *[f"stage_{s}_profiled_ms" for s in STAGES],  # the profiled pass's own ms (inflated by the profiler)
     "stage_method",
     "profiled_ms", "profiling_overhead",
+    *[f"stage_{s}_gmacs" for s in STAGES],       # counted multiply-accumulates per image (export facts)
+    "matmul_peak_gmac_s",      # this host's dense fp32 matmul peak at the point's thread count (meta)
     "rss_imports_mib", "rss_loaded_mib", "rss_peak_mib", "model_file_mib",
     "params", "gmacs",
     "map", "map50", "map75", "map_small", "map_medium", "map_large", "mar_100",
@@ -86,6 +88,10 @@ def stage_share_column(stage: str) -> str:
 
 def stage_profiled_column(stage: str) -> str:
     return f"stage_{stage}_profiled_ms"
+
+
+def stage_gmacs_column(stage: str) -> str:
+    return f"stage_{stage}_gmacs"
 
 
 def latency_column(stat: str) -> str:

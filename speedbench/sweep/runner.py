@@ -107,6 +107,7 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
     timing_images = steps.timing_images(dataset, profile.timing_images)
     policy = steps.make_policy(profile.repetitions)
 
+    peaks = steps.host_peak(rd, todo, None if quiet else stream)
     progress = Progress(len(todo), quiet=quiet, stream=stream)
     graph_info: dict = {}
     # One-stream throughput of each configuration, for the scaling efficiency of K > 1 points.
@@ -128,6 +129,7 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
                                          baseline_fps=single_fps.get(_stream_key(point.config)))
             if point.config["concurrency"] == 1 and row.get("status") == "ok":
                 single_fps[_stream_key(point.config)] = single_stream_fps(row)
+            row.update(steps.peak_column(peaks, point.config))
             row["wall_s"] = round(time.monotonic() - t0, 3)
             rd.write_point(row, samples)
             counts["ok" if row.get("status") == "ok" else "failed"] += 1

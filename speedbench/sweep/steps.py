@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from speedbench.errors import UserError
+from speedbench.schema import STAGES, stage_gmacs_column
 from speedbench.sweep.rundir import PER_IMAGE_DIR
 
 NAN = float("nan")
@@ -119,6 +120,12 @@ def _facts(record) -> dict:
     """Export facts as row columns: params, gmacs, file size, opset, parity with torch eager."""
     facts = dict(record.facts or {})
     out = {k: facts[k] for k in ("params", "gmacs") if facts.get(k) is not None}
+    per_stage = facts.get("gmacs_per_stage")
+    if isinstance(per_stage, dict):
+        # achieved GMAC/s per stage = these / the stage's ms (analyse.efficiency); a stage the
+        # counter saw no matrix op in has 0 (NaN would read as "not recorded")
+        for stage in STAGES:
+            out[stage_gmacs_column(stage)] = float(per_stage.get(stage) or 0.0)
     out["model_file_mib"] = round(Path(record.path).stat().st_size / 2**20, 3)
     out["opset"] = record.opset
     parity = record.parity or {}
@@ -255,6 +262,43 @@ def dataset_fingerprint(dataset) -> str:
     if fp:
         return str(fp)
     return str(getattr(dataset, "source", ""))
+
+
+# ----------------------------------------------------------------- host peak
+def host_peak(rd, points, stream=None) -> dict | None:
+    """This host's dense fp32 matmul peak at 1 thread and at the points' thread counts, once per run.
+
+    Kept in meta["matmul_peak"]; a resumed run measures only thread counts it lacks.
+    None when no point runs a model (the synthetic test backend).
+    """
+    from speedbench.measure.peak import default_threads, measure_peaks
+
+    real = [p for p in points if p.config["backend"] != "synthetic"]
+    if not real:
+        return rd.meta().get("matmul_peak")
+    wanted = {1} | {int(p.config["intra_threads"]) or default_threads() for p in real}
+    have = dict(rd.meta().get("matmul_peak") or {})
+    by = dict(have.get("by_threads") or {})
+    missing = sorted(t for t in wanted if "gmac_s" not in by.get(str(t), {}))
+    if not missing:
+        return have
+    if stream is not None:
+        print(f"note: measuring this host's fp32 matmul peak at {', '.join(map(str, missing))} thread(s)",
+              file=stream)
+    new = measure_peaks(missing)
+    by.update(new["by_threads"])
+    peak = {"method": new["method"], "by_threads": by, "measured_at": new["measured_at"]}
+    rd.update_meta(matmul_peak=peak)
+    return peak
+
+
+def peak_column(peaks: dict | None, config: dict) -> dict:
+    """matmul_peak_gmac_s of a row: the peak at the point's intra-op thread count."""
+    from speedbench.measure.peak import peak_for
+
+    if config.get("backend") == "synthetic":
+        return {}
+    return {"matmul_peak_gmac_s": peak_for(peaks, int(config.get("intra_threads") or 0))}
 
 
 # ----------------------------------------------------------------- measuring
