@@ -6,7 +6,7 @@ from dataclasses import dataclass, field
 
 from speedbench.measure.point import Point
 from speedbench.measure.stats import Measurement
-from speedbench.measure.timebase import stage_columns
+from speedbench.measure.timebase import stage_columns, subgraph_columns
 
 MEMORY_COLUMNS = ("rss_imports_mib", "rss_loaded_mib", "rss_peak_mib", "model_file_mib")
 LATENCY_COLUMNS = ("n_samples", "lat_min_ms", "lat_mean_ms", "lat_std_ms", "lat_cov",
@@ -44,6 +44,7 @@ class PointResult:
         # stage_X_ms in the unprofiled time base; the profiled pass's own ms under stage_X_profiled_ms
         median = self.measurement.median if self.measurement is not None else NAN
         row.update(stage_columns(self.stages, median))
+        row.update(subgraph_columns(self.extra.get("subgraphs")))
         row["profiled_ms"] = self.profiled_ms
         row["profiling_overhead"] = self.profiling_overhead
         for col in MEMORY_COLUMNS:
