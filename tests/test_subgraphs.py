@@ -109,3 +109,31 @@ def test_timing_reports_every_stage_and_the_residual():
     assert out["sum_ms"] == pytest.approx(sum(out["stages"].values()))
     assert out["residual"] == pytest.approx(out["sum_ms"] / out["whole_ms"] - 1)
     assert out["cuts"]["postprocess"]["control_flow"] == 1
+
+
+def test_the_opt_in_check_runs_in_the_worker_and_lands_in_the_row(tmp_path):
+    # The real worker path: a graph with the `image` [3, H, W] input every exported graph has.
+    from speedbench.measure import Point, Policy, measure_point
+
+    m = _model()
+    g = m.graph
+    g.input[0].CopyFrom(helper.make_tensor_value_info("image", T.FLOAT, [3, 8, 8]))
+    g.initializer.append(helper.make_tensor("axes0", T.INT64, [1], [0]))
+    g.node.insert(0, helper.make_node("Unsqueeze", ["image", "axes0"], ["image4"], name="/transform/Unsqueeze"))
+    g.node[1].input[0] = "image4"
+    path = tmp_path / "toy.onnx"
+    onnx.save(m, path)
+    img = np.random.default_rng(2).integers(0, 255, (8, 8, 3), dtype=np.uint8)
+    policy = Policy(warmup_min=1, warmup_max=2, min_reps=3, max_reps=5, profile_reps=2,
+                    subgraph_check=True, subgraph_reps=3)
+    res = measure_point(Point(model="toy", graph=str(path)), [img], policy, timeout_s=120)
+    assert res.ok, res.reason
+    sg = res.extra["subgraphs"]
+    assert "error" not in sg and set(sg["stages"]) == {"preprocess", "backbone", "head", "postprocess"}
+    assert all(d == 0.0 for d in sg["max_abs_diff"].values())
+    row = res.to_row()
+    assert row["stage_backbone_subgraph_ms"] == sg["stages"]["backbone"]
+    assert row["subgraph_residual"] == pytest.approx(sg["residual"])
+    off = measure_point(Point(model="toy", graph=str(path)), [img],
+                        Policy(warmup_min=1, warmup_max=2, min_reps=3, max_reps=5, profile_reps=2), timeout_s=120)
+    assert "subgraphs" not in off.extra and np.isnan(off.to_row()["subgraph_residual"])
