@@ -40,6 +40,10 @@ def test_report_blocks_show_rate_and_share():
     assert table[1][:3] == ["configuration", "peak GMAC/s", "backbone GMAC/s"]
     assert table[2][0][1:] == ["100.0", "50.0 (50%)"]
     assert efficiency_blocks(pd.DataFrame([_row(stage_backbone_gmacs=0.0)])) == []
+    assert not any(b[0] == "warn" for b in blocks)
+    # faster than the host's own matmul peak: flagged, never shown as plain headroom
+    over = efficiency_blocks(pd.DataFrame([_row(stage_backbone_gmacs=1.5)]))
+    assert any(b[0] == "warn" and "exceed the measured peak (backbone)" in b[1] for b in over)
 
 
 def test_peak_is_measured_per_thread_count_in_its_own_process():

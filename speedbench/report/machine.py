@@ -42,6 +42,15 @@ def efficiency_blocks(ok: pd.DataFrame) -> list:
             summary.append(f"{s}: median {f.median():.0%} of peak (range {f.min():.0%} to {f.max():.0%})")
     if summary:
         blocks.append(("list", summary))
+    over = eff[eff["peak_frac"] > 1]
+    if len(over):
+        stages_over = ", ".join(sorted(set(over["stage"]), key=STAGES.index))
+        blocks.append(("warn", f"{len(over)} stage figure(s) exceed the measured peak ({stages_over}). A stage "
+                               "cannot outrun a dense matrix product on the same cores: either the peak was "
+                               "measured at a busier moment than the point (a shared host), or that stage's "
+                               "share of the profiled time is too small (the profiler's split, which the "
+                               "sub-graph check, `[repetitions] subgraphs = true`, can confirm or refute). "
+                               "Read those rates as unreliable, not as headroom."))
     return blocks
 
 
