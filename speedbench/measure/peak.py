@@ -89,6 +89,22 @@ def measure_peaks(thread_counts, n: int = SIZE, reps: int = REPS, timeout_s: flo
             "measured_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())}
 
 
+def ensure_peaks(peaks: dict | None, thread_counts) -> dict:
+    """`peaks` with every thread count of `thread_counts` (0 = all cores) measured; only missing ones run.
+
+    Returns a new dict (the input is left alone), so a caller can tell whether anything was added.
+    """
+    have = dict(peaks or {})
+    by = dict(have.get("by_threads") or {})
+    wanted = {int(t) or default_threads() for t in thread_counts}
+    missing = sorted(t for t in wanted if "gmac_s" not in by.get(str(t), {}))
+    if not missing:
+        return have
+    new = measure_peaks(missing)
+    by.update(new["by_threads"])
+    return {"method": new["method"], "by_threads": by, "measured_at": new["measured_at"]}
+
+
 def peak_for(peaks: dict | None, threads: int) -> float:
     """The recorded GMAC/s peak at `threads` (0 = every core the process may use); NaN if none."""
     if not peaks:

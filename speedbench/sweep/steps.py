@@ -269,26 +269,21 @@ def host_peak(rd, points, stream=None) -> dict | None:
     """This host's dense fp32 matmul peak at 1 thread and at the points' thread counts, once per run.
 
     Kept in meta["matmul_peak"]; a resumed run measures only thread counts it lacks.
-    None when no point runs a model (the synthetic test backend).
+    Nothing is measured when no point runs a model (the synthetic test backend).
     """
-    from speedbench.measure.peak import default_threads, measure_peaks
+    from speedbench.measure.peak import ensure_peaks
 
+    have = rd.meta().get("matmul_peak")
     real = [p for p in points if p.config["backend"] != "synthetic"]
     if not real:
-        return rd.meta().get("matmul_peak")
-    wanted = {1} | {int(p.config["intra_threads"]) or default_threads() for p in real}
-    have = dict(rd.meta().get("matmul_peak") or {})
-    by = dict(have.get("by_threads") or {})
-    missing = sorted(t for t in wanted if "gmac_s" not in by.get(str(t), {}))
-    if not missing:
         return have
-    if stream is not None:
-        print(f"note: measuring this host's fp32 matmul peak at {', '.join(map(str, missing))} thread(s)",
-              file=stream)
-    new = measure_peaks(missing)
-    by.update(new["by_threads"])
-    peak = {"method": new["method"], "by_threads": by, "measured_at": new["measured_at"]}
-    rd.update_meta(matmul_peak=peak)
+    peak = ensure_peaks(have, {1} | {int(p.config["intra_threads"]) for p in real})
+    if peak != (have or {}):
+        if stream is not None:
+            print("note: measured this host's fp32 matmul peak (GMAC/s per thread count): " + ", ".join(
+                f"{t}: {r.get('gmac_s', float('nan')):.1f}" for t, r in sorted(peak["by_threads"].items())),
+                file=stream)
+        rd.update_meta(matmul_peak=peak)
     return peak
 
 
