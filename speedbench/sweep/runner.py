@@ -106,6 +106,8 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
     progress = Progress(len(todo), quiet=quiet, stream=stream)
     context = make_context(profile, dataset, rd.exports, host=profile.host, per_image_dir=rd.path / PER_IMAGE_DIR,
                            status=progress.status, on_prepared=lambda key, graph: _note_thread_check(rd, key, graph))
+    # the host's matmul peak at every thread count of the plan, once per run, recorded in meta.json
+    context.peaks = steps.host_peak(rd, todo, None if quiet else stream)
     # One-stream throughput of each configuration, for the scaling efficiency of K > 1 points.
     x1 = baselines(rd.rows())
     try:
