@@ -20,11 +20,13 @@ import math
 import warnings
 from dataclasses import dataclass
 from functools import cached_property
+from itertools import chain
 from pathlib import Path
 
 import numpy as np
 
 from speedbench.data.images import read_image
+from speedbench.data.jsonfile import read_json
 from speedbench.errors import UserError
 
 ANNOTATIONS_FILE = "annotations.json"
@@ -123,13 +125,31 @@ def load_dataset(path, images_dir=None, check_images: bool = True) -> Dataset:
     check_images decodes every image once (missing / corrupt files, size mismatch);
     turn it off when only the annotations are needed (evaluating a results file).
     """
+    coco, root, source = _read_annotations(path, images_dir)
+    if not root.is_dir():
+        raise UserError(f"{root}: image folder not found")
+    images = [_record(im, root, source) for im in coco["images"]]
+    if check_images:
+        for rec in images:
+            _check_image(rec, source)
+    return Dataset(root, coco, source, images)
+
+
+def load_annotations(path) -> dict:
+    """The validated COCO dict of a held-out set (any form load_dataset reads), without
+    touching its images: all that scoring a results file needs."""
+    return _read_annotations(path, None)[0]
+
+
+def _read_annotations(path, images_dir):
+    """(validated COCO dict, image root, source path) of a dataset path."""
     path = Path(path)
     if not path.exists():
         raise UserError(f"{path}: dataset not found")
     if path.is_dir() and (path / ANNOTATIONS_FILE).is_file():
         path = path / ANNOTATIONS_FILE
     if path.is_file():
-        coco = _read_json(path)
+        coco = read_json(path)
         root = Path(images_dir) if images_dir else path.parent
         source = path
     elif (path / "Annotations").is_dir():
@@ -139,14 +159,7 @@ def load_dataset(path, images_dir=None, check_images: bool = True) -> Dataset:
     else:
         raise UserError(f"{path}: not a dataset (expected a COCO JSON file, a folder with "
                         f"{ANNOTATIONS_FILE}, or a Pascal VOC folder with Annotations/)")
-    if not root.is_dir():
-        raise UserError(f"{root}: image folder not found")
-    coco = validate_coco(coco, source)
-    images = [_record(im, root, source) for im in coco["images"]]
-    if check_images:
-        for rec in images:
-            _check_image(rec, source)
-    return Dataset(root, coco, source, images)
+    return validate_coco(coco, source), root, source
 
 
 def category_map(dataset, model_classes) -> dict[int, int]:
@@ -222,6 +235,10 @@ def validate_coco(coco, source) -> dict:
             raise UserError(f"{where}: duplicate category name {c['name']!r}")
         names.add(_norm(c["name"]))
         cats[c["id"]] = {"id": c["id"], "name": c["name"]}
+    anns = _clean_annotations(coco["annotations"], images, cats)
+    if anns is not None:
+        return {"images": list(images.values()), "annotations": anns, "categories": list(cats.values())}
+    anns = []  # something is wrong: walk the entries to name the first bad one
     seen = set()
     for i, a in enumerate(coco["annotations"]):
         where = f"{source}: annotation {_label(a, i)}"
@@ -249,6 +266,46 @@ def validate_coco(coco, source) -> dict:
         anns.append({"id": a["id"], "image_id": a["image_id"], "category_id": a["category_id"],
                      "bbox": [float(v) for v in box], "area": float(area), "iscrowd": int(crowd)})
     return {"images": list(images.values()), "annotations": anns, "categories": list(cats.values())}
+
+
+_NO_AREA = object()  # an annotation without "area" (its box's w x h is used)
+
+
+def _clean_annotations(anns: list, images: dict, cats: dict):
+    """The clean annotation list when every entry passes validate_coco's checks, else None.
+
+    The same checks as the entry-by-entry loop, on whole columns at once (a large set has
+    tens of thousands of boxes); on None the loop runs and words the first problem.
+    """
+    if not all(type(a) is dict for a in anns):
+        return None
+    try:
+        ids = [a["id"] for a in anns]
+        img = [a["image_id"] for a in anns]
+        cat = [a["category_id"] for a in anns]
+        boxes = [a["bbox"] for a in anns]
+        areas = [a.get("area", _NO_AREA) for a in anns]
+        crowds = [a.get("iscrowd", 0) for a in anns]
+        if (not set(map(type, chain(ids, img, cat))) <= {int} or len(set(ids)) != len(ids)
+                or not set(img) <= images.keys() or not set(cat) <= cats.keys()
+                or not set(map(type, boxes)) <= {list} or not set(map(len, boxes)) <= {4}
+                or not set(map(type, chain.from_iterable(boxes))) <= {int, float}
+                or not set(map(type, areas)) <= {int, float, object}  # object: _NO_AREA
+                or not set(crowds) <= {0, 1}):
+            return None
+    except (KeyError, TypeError):  # a missing key, an unhashable iscrowd
+        return None
+    box = np.array(boxes, dtype=np.float64).reshape(-1, 4)
+    size = np.array([(images[i]["width"], images[i]["height"]) for i in img], dtype=np.float64).reshape(-1, 2)
+    area = np.array([box[j, 2] * box[j, 3] if v is _NO_AREA else v for j, v in enumerate(areas)], np.float64)
+    x, y, w, h = box.T
+    t = BOX_TOLERANCE
+    if not (np.isfinite(box).all() and np.isfinite(area).all() and (area >= 0).all()
+            and (w > 0).all() and (h > 0).all() and (x >= -t).all() and (y >= -t).all()
+            and (x + w <= size[:, 0] + t).all() and (y + h <= size[:, 1] + t).all()):
+        return None
+    return [{"id": i, "image_id": m, "category_id": c, "bbox": b, "area": float(ar), "iscrowd": int(cr)}
+            for i, m, c, b, ar, cr in zip(ids, img, cat, box.tolist(), area.tolist(), crowds)]
 
 
 def check_box(x, y, w, h, width, height, where):
@@ -328,13 +385,6 @@ def _voc_to_coco(folder: Path) -> dict:
                          "bbox": box, "area": box[2] * box[3], "iscrowd": int(difficult)})
     return {"images": images, "annotations": anns,
             "categories": [{"id": cat_id[n], "name": n} for n in names]}
-
-
-def _read_json(path: Path):
-    try:
-        return json.loads(path.read_text())
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise UserError(f"{path}: not a readable JSON file ({exc})") from None
 
 
 def _label(obj, i: int) -> str:

@@ -12,6 +12,7 @@ from pathlib import Path
 
 import numpy as np
 
+from speedbench.data.jsonfile import read_json
 from speedbench.errors import UserError
 from speedbench.evaluate.cocoeval import Detections, GroundTruth
 
@@ -21,16 +22,18 @@ _NUMBER_TYPES = (int, float, np.integer, np.floating)
 
 def load_detections(path, gt) -> list[dict]:
     """Read and validate a COCO results JSON file against ground truth (dict or Dataset)."""
-    path = Path(path)
-    try:
-        dets = json.loads(path.read_text())
-    except FileNotFoundError:
-        raise UserError(f"{path}: detections file not found") from None
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise UserError(f"{path}: not a readable JSON file ({exc})") from None
-    ground = gt if isinstance(gt, GroundTruth) else GroundTruth(getattr(gt, "coco", gt))
-    parse_detections(dets, ground, source=str(path))
+    dets = read_json(path, "detections file")
+    parse_detections(dets, _ground(gt), source=str(Path(path)))
     return dets
+
+
+def read_detections(path, gt) -> Detections:
+    """Read and validate a COCO results JSON file straight into arrays (parsed once)."""
+    return parse_detections(read_json(path, "detections file"), _ground(gt), source=str(Path(path)))
+
+
+def _ground(gt) -> GroundTruth:
+    return gt if isinstance(gt, GroundTruth) else GroundTruth(getattr(gt, "coco", gt))
 
 
 def parse_detections(dets, gt: GroundTruth, source: str = "detections") -> Detections:
