@@ -73,7 +73,7 @@ def run(args) -> int:
 def render_text(table, with_p99: bool, with_cost: bool, with_prices: bool = False, target: str = "",
                 every_shape: bool = False) -> str:
     """The answer (two plans), then the table, then the notes the rows share, each said once."""
-    from speedbench.analyse.buy import best_per_configuration
+    from speedbench.analyse.buy import answer_lines, best_per_configuration
 
     head = (f"required: {table.attrs['required_fps']:g} frames/s"
             + (f" ({target})" if target else "") + f", planned utilisation <= {table.attrs['headroom']:.0%}")
@@ -85,46 +85,6 @@ def render_text(table, with_p99: bool, with_cost: bool, with_prices: bool = Fals
                      f"expected p99); --all lists every shape of every configuration ({len(table)} rows).")
     lines += shared_notes(table, with_cost, with_prices)
     return "\n".join(lines)
-
-
-def answer_lines(table, with_p99: bool) -> list[str]:
-    """Two or three lines: the cheapest plan that meets the target and the most accurate one."""
-    from speedbench.analyse.buy import best_plans
-
-    best = best_plans(table)
-    col, words = best["basis"]
-    if best["cheapest"] is None and best["most_accurate"] is None:
-        c = best["closest"]
-        if c is None:
-            return ["No plan: no configuration could be sized on these server shapes."]
-        return [f"No plan meets the target: the lowest expected p99 is {c['expected_p99_ms']:.1f} ms "
-                f"({c['label']} on {int(c['servers'])} x {int(c['server_cores'])}-core servers). Try a faster "
-                "configuration, a lower --headroom, or a looser --p99-ms."]
-    lines = []
-    meets = "meets the p99 target" if with_p99 else "carries the load"
-    if best["cheapest"] is not None:
-        lines.append(f"  cheapest that {meets}: " + _plan_text(best["cheapest"], col, words))
-    if best["most_accurate"] is not None:
-        same = best["cheapest"] is not None and _same(best["cheapest"], best["most_accurate"])
-        lines.append("  most accurate: " + ("the same plan" if same else _plan_text(best["most_accurate"], col, words)))
-        if not same and best["cheapest"] is not None:
-            lines.append("  (accuracy gaps inside the mAP intervals of the frontier table are not real differences)")
-    return lines
-
-
-def _same(a: dict, b: dict) -> bool:
-    return a["label"] == b["label"] and a["server_cores"] == b["server_cores"] and a.get("host") == b.get("host")
-
-
-def _plan_text(r: dict, col: str, words: str) -> str:
-    mAP = r.get("map")
-    acc = f"mAP {mAP:.3f}" if isinstance(mAP, float) and mAP == mAP else "mAP n/a"
-    cost = (f"{int(r['provisioned_cores'])} cores" if col == "provisioned_cores"
-            else f"{r.get(col):.3f} {words}")
-    where = ("extrapolated beyond the" if bool(r["extrapolated"]) else "within the")
-    return (f"{r['label']} ({acc}) on {int(r['servers'])} x {int(r['server_cores'])}-core servers, {cost}\n"
-            f"      utilisation {r['utilisation']:.0%}, expected p99 {r['expected_p99_ms']:.1f} ms, "
-            f"{where} {int(r['measured_cores'])} measured cores")
 
 
 def _table_text(table, with_p99: bool, with_cost: bool, with_prices: bool) -> str:
