@@ -98,15 +98,18 @@ def parse_utilisations(text) -> tuple:
     return tuple(out)
 
 
-def load_into_run(run_dir, ks, seconds=5.0, pin=False, quiet=False, utilisations=()) -> dict:
-    """Re-measure the ok single-stream points of a run at each K; rows go into the same run."""
+def load_into_run(run_dir, ks, seconds=5.0, pin=False, quiet=False, utilisations=(), only=None) -> dict:
+    """Re-measure the ok single-stream points of a run at each K; rows go into the same run.
+
+    only: point ids to measure (default: every ok single-stream point)."""
     from speedbench.errors import UserError
     from speedbench.sweep import RunDir, parse_profile, steps
 
     rd = RunDir.open(run_dir)
     try:
         profile = parse_profile(rd.profile_text(), source=str(Path(run_dir) / "profile.toml"))
-        rows = [r for r in rd.rows() if r.get("status") == "ok" and int(r.get("concurrency") or 1) == 1]
+        rows = [r for r in rd.rows() if r.get("status") == "ok" and int(r.get("concurrency") or 1) == 1
+                and (only is None or r.get("point_id") in only)]
         if not rows:
             raise UserError(f"{run_dir}: no ok single-stream points to measure under load")
         samples = rd.samples()
