@@ -212,11 +212,10 @@ def _dedupe(values) -> list:
 
 
 def _measure_supports_concurrency() -> bool:
-    try:
-        from speedbench.measure.load import measure_load  # noqa: F401
-    except ImportError:
-        return False
-    return True
+    # Looked up, not imported: importing it costs a sweep's start-up for nothing.
+    from importlib.util import find_spec
+
+    return find_spec("speedbench.measure.load") is not None
 
 
 def estimate_seconds(plan: Plan, profile: Profile, done_ids=(), n_images: int | None = None,

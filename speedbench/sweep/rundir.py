@@ -140,7 +140,9 @@ class RunDir:
         rd._connect(create=True)
         # meta.json last: its presence marks the directory as a complete, openable run.
         _atomic_write_bytes(path / META_FILE, json.dumps(full, indent=2, default=_json_default).encode())
-        rd._export_tables()
+        # No copies yet: there is no point to copy, and writing an empty table costs the pandas
+        # import (seconds on a busy host) before the first point. The first point writes them.
+        rd._copies_stale = True
         return rd
 
     @classmethod
@@ -157,6 +159,7 @@ class RunDir:
         rd.meta()  # validates meta.json
         rd._connect(create=False)
         (path / EXPORTS_DIR).mkdir(exist_ok=True)
+        rd._copies_stale = not _newer_or_same(path / CSV_FILE, path / DB_FILE)
         return rd
 
     # ----------------------------------------------------------------- database
@@ -236,11 +239,12 @@ class RunDir:
         return {r["point_id"] for r in self.rows() if r.get("status") == "failed"}
 
     def finish(self) -> None:
-        """Stamp the end time into meta.json and regenerate the CSV/Parquet copies."""
+        """Stamp the end time into meta.json and regenerate the CSV/Parquet copies if they are behind."""
         meta = self.meta()
         meta["finished"] = now_iso()
         _atomic_write_bytes(self.path / META_FILE, json.dumps(meta, indent=2, default=_json_default).encode())
-        self._export_tables()
+        if self._copies_stale or not (self.path / CSV_FILE).exists():
+            self._export_tables()
 
     def update_meta(self, **fields) -> None:
         meta = self.meta()
@@ -321,6 +325,16 @@ class RunDir:
         self._copies_at = time.monotonic()
         self._copies_cost = self._copies_at - started
         self._copies_stale = False
+
+
+def _newer_or_same(copy: Path, source: Path) -> bool:
+    """Was `copy` written after the last change of `source` (and its journal)?"""
+    try:
+        t = copy.stat().st_mtime_ns
+    except FileNotFoundError:
+        return False
+    changed = [f.stat().st_mtime_ns for f in (source, source.with_name(source.name + "-wal")) if f.exists()]
+    return all(t >= c for c in changed)
 
 
 def rows_to_frame(rows: list[dict]):
