@@ -31,12 +31,14 @@ from pathlib import Path
 
 # Ends the process when the first point is about to be measured.
 _FIRST_POINT = """\
-import os, sys
-import speedbench.sweep.steps as steps
+import importlib, os, sys
 def _stop(*a, **k):
     sys.stderr.flush()
     os._exit(0)
-steps.measure = _stop
+try:  # the one point path (sweep.pipeline), or an older checkout's sweep.steps.measure
+    importlib.import_module("speedbench.sweep.pipeline")._measure = _stop
+except (ImportError, AttributeError):
+    importlib.import_module("speedbench.sweep.steps").measure = _stop
 from speedbench.cli import main
 sys.exit(main(sys.argv[1:]))
 """

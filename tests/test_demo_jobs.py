@@ -78,8 +78,8 @@ def test_two_thread_points_get_only_the_ks_that_fit(monkeypatch):
     import pandas as pd
 
     calls = []
-    monkeypatch.setattr("speedbench.measure.load.host_cores", lambda: 2)
-    monkeypatch.setattr("speedbench.cli.load.load_into_run",
+    monkeypatch.setattr("speedbench.system.cores_available", lambda: 2)
+    monkeypatch.setattr("speedbench.sweep.throughput.load_into_run",
                         lambda run, ks, **kw: calls.append((tuple(ks), sorted(kw["only"]))) or {"ok": 1, "failed": 0})
     df = pd.DataFrame([dict(point_id="a", status="ok", concurrency=1, intra_threads=1, lat_p50_ms=10.0, map=0.4),
                        dict(point_id="b", status="ok", concurrency=1, intra_threads=2, lat_p50_ms=6.0, map=0.3),

@@ -8,6 +8,7 @@ measures longer (`speedbench load RUN --seconds 10`).
 """
 from __future__ import annotations
 
+import sys
 from pathlib import Path
 
 # Our scenario (invented): the storage yard of the demo scenes, watched by 24 cameras at
@@ -40,13 +41,13 @@ def measure_throughput(run_dir, df, quiet: bool = False) -> dict:
     Points that already have throughput rows (a resumed demo) are not measured again.
     Returns {"measured": n configurations, "skipped_k": [(threads, K)], "counts": {...}}.
     """
-    from speedbench.cli.load import load_into_run
-    from speedbench.measure.load import host_cores
+    from speedbench.sweep.throughput import load_into_run
+    from speedbench.system import cores_available
 
     have = set()
     if "tput_fps" in df.columns:
         have = set(df.loc[df["tput_fps"].notna(), "point_id"].astype(str))
-    cores = host_cores()
+    cores = cores_available()
     counts = {"ok": 0, "failed": 0}
     skipped, measured = [], 0
     for threads, ids in sorted(frontier_points(df).items()):
@@ -55,12 +56,23 @@ def measure_throughput(run_dir, df, quiet: bool = False) -> dict:
         skipped += [(threads, k) for k in KS if k not in ks]
         if not todo or not ks:
             continue
-        got = load_into_run(Path(run_dir), ks, seconds=LOAD_SECONDS, quiet=quiet,
-                            utilisations=LOAD_UTILISATIONS, only=set(todo))
+        got = load_into_run(Path(run_dir), ks, seconds=LOAD_SECONDS, utilisations=LOAD_UTILISATIONS,
+                            report=None if quiet else _report, only=set(todo))
         measured += len(todo)
         for key in counts:
             counts[key] += got[key]
     return {"measured": measured, "skipped_k": skipped, "counts": counts, "cores": cores}
+
+
+def _report(label: str, row, reason: str) -> None:
+    """One line per K as it finishes (what `speedbench load` prints, shorter)."""
+    if row is None:
+        text = f"not measured, {reason}"
+    elif row["status"] != "ok":
+        text = f"failed: {reason}"
+    else:
+        text = f"{row['tput_fps']:.1f} frames/s, p99 {row['tput_p99_ms']:.1f} ms under load"
+    print(f"  {label}: {text}", file=sys.stderr)
 
 
 def size_fleet(run_dir):
