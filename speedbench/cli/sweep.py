@@ -48,11 +48,13 @@ def run(args) -> int:
     if args.retry_failed and not args.resume:
         raise UserError("--retry-failed: only together with --resume")
     run_sweep(args.profile, out_dir=out, resume=args.resume, quiet=args.quiet, retry_failed=args.retry_failed)
-    from speedbench.sweep import load_run
+    from speedbench.sweep import RunDir
 
-    df = load_run(out)
-    ok = int((df["status"] == "ok").sum())
-    print(f"{out}: {len(df)} point(s), {ok} ok, {len(df) - ok} failed; load with speedbench.load_run({str(out)!r})")
+    with RunDir.open(out) as rd:  # the stored rows, without the pandas import a table would cost
+        status = [r.get("status") for r in rd.rows()]
+    ok = status.count("ok")
+    print(f"{out}: {len(status)} point(s), {ok} ok, {len(status) - ok} failed; "
+          f"load with speedbench.load_run({str(out)!r})")
     return 0
 
 
