@@ -35,12 +35,14 @@ import time
 from collections import Counter
 from pathlib import Path
 
+from speedbench import schema
 from speedbench.errors import UserError
-from speedbench.export.onnx_export import ExportRecord, _first_line, _write_record, installed_version
+from speedbench.export.onnx_export import (ExportRecord, _first_line, _write_record, attach_scopes,
+                                           installed_version)
 
-PRECISIONS = ("fp32", "int8")
-METHODS = ("minmax", "entropy", "percentile")
-QUANTISABLE_OPS = ("Conv", "MatMul", "Gemm")
+PRECISIONS = schema.PRECISIONS
+METHODS = schema.QUANT_METHODS
+QUANTISABLE_OPS = schema.QUANT_OP_TYPES
 QUANT_FORMAT = 1     # bump when the quantisation procedure or the int8 record changes
 
 
@@ -189,6 +191,11 @@ def _quantise_here(src: str, dst: str) -> None:
                     op_types_to_quantize=list(s["op_types"]), per_channel=s["per_channel"],
                     reduce_range=s["reduce_range"], activation_type=QuantType.QUInt8,
                     weight_type=QuantType.QInt8, calibrate_method=methods[s["method"]])
+    # The weights' DequantizeLinear nodes are named after the weight, not a module scope:
+    # give them their consumer's scope so stage attribution sees them (names only change).
+    proto = onnx.load(dst)
+    attach_scopes(proto.graph)
+    onnx.save(proto, dst)
     onnx.checker.check_model(dst)
 
 

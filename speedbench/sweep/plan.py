@@ -1,6 +1,6 @@
 """Plan: a profile expanded into the exact list of points to measure.
 
-Expansion is the cross product models x sizes x proposals x backends x
+Expansion is the cross product models x sizes x proposals x precisions x backends x
 opt_levels x threads x concurrency, after mapping the values that do not apply
 to a combination (so two combinations that mean the same measurement become one
 point), and skipping the ones that cannot be measured here. Every mapping or
@@ -8,6 +8,7 @@ skip leaves a note; none is an error.
 """
 from __future__ import annotations
 
+import itertools
 import os
 from collections import Counter
 from dataclasses import dataclass, field
@@ -31,7 +32,7 @@ class PlannedPoint:
     config: dict                 # values of speedbench.schema.CONFIG_COLUMNS
     point_id: str
     family: str
-    graph_key: tuple             # (model, weights, size, proposals): one export + one accuracy run
+    graph_key: tuple             # (model, weights, size, proposals, precision): one graph + one accuracy run
     notes: tuple = ()            # per-point notes (mappings applied to this point)
 
     @property
@@ -47,6 +48,8 @@ class PlannedPoint:
             text += f" pin{c['affinity']}"
         if c["concurrency"] > 1:
             text += f" K{c['concurrency']}"
+        if c.get("precision", "fp32") != "fp32":
+            text += f" {c['precision']}"
         return text
 
 
@@ -138,25 +141,23 @@ def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool | N
         else:
             proposals = _dedupe(spec.default_proposals if p == "default" else p for p in wanted)
             prop_note = ()
-        for size in sizes:
-            for prop in proposals:
-                for backend in profile.backends:
-                    for opt in profile.opt_levels:
-                        for t in profile.threads:
-                            for k in profile.concurrency:
-                                got = _one_point(profile, entry, spec, size, prop, backend, opt, t, k,
-                                                 cores, concurrency_supported, notes)
-                                if got is None:
-                                    continue
-                                config, point_notes = got
-                                pid = schema.point_id(config)
-                                if pid in points:
-                                    merged += 1
-                                    continue
-                                points[pid] = PlannedPoint(
-                                    config=config, point_id=pid, family=spec.family,
-                                    graph_key=(entry.id, entry.weights, size, prop),
-                                    notes=prop_note + point_notes)
+        precisions = entry.precisions or profile.precisions
+        for size, prop, precision, backend, opt, t, k in itertools.product(
+                sizes, proposals, precisions, profile.backends, profile.opt_levels, profile.threads,
+                profile.concurrency):
+            got = _one_point(profile, entry, spec, size, prop, backend, opt, t, k,
+                             cores, concurrency_supported, notes, precision)
+            if got is None:
+                continue
+            config, point_notes = got
+            pid = schema.point_id(config)
+            if pid in points:
+                merged += 1
+                continue
+            points[pid] = PlannedPoint(
+                config=config, point_id=pid, family=spec.family,
+                graph_key=(entry.id, entry.weights, size, prop, precision),
+                notes=prop_note + point_notes)
     if merged:
         notes[f"{merged} combination(s) mapped onto points already planned (measured once)"] += 1
     plan_notes = [n if c == 1 or n.startswith(tuple("0123456789")) else f"{n} ({c} combinations)"
@@ -164,9 +165,13 @@ def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool | N
     return Plan(points=list(points.values()), notes=plan_notes)
 
 
-def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, concurrency_supported, notes):
+def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, concurrency_supported, notes,
+               precision="fp32"):
     point_notes = []
     mode, inter = t.mode, t.inter
+    if precision != "fp32" and backend != "ort":
+        notes[f"skipped {precision} on backend {backend}: quantised graphs run on ONNX Runtime only"] += 1
+        return None
     if entry.id.startswith("synthetic") and backend != "synthetic":
         notes[f"skipped {entry.id} on backend {backend}: a synthetic model runs on the synthetic backend only"] += 1
         return None
@@ -198,7 +203,7 @@ def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, conc
     config = {
         "model": entry.id, "weights": entry.weights, "size": int(size), "proposals": int(prop),
         "backend": backend, "intra_threads": t.intra, "inter_threads": inter, "exec_mode": mode,
-        "opt_level": opt, "affinity": t.affinity, "concurrency": k,
+        "opt_level": opt, "affinity": t.affinity, "concurrency": k, "precision": precision,
     }
     return config, tuple(point_notes)
 
