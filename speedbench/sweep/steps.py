@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from speedbench.errors import UserError
+from speedbench.sweep import quantised
 from speedbench.sweep.rundir import PER_IMAGE_DIR
 
 NAN = float("nan")
@@ -88,7 +89,8 @@ def make_policy(repetitions: dict):
 # ----------------------------------------------------------------- export + accuracy
 def prepare_graph(point, profile, dataset, rd, cache: Path, progress) -> GraphInfo:
     """Export the point's graph (cached by content) and evaluate its accuracy (cached too)."""
-    model, weights, size, proposals = point.graph_key
+    model, weights, size, proposals = point.graph_key[:4]
+    precision = point.config.get("precision", "fp32")
     info = GraphInfo()
     try:
         from speedbench.export import export_onnx
@@ -96,6 +98,11 @@ def prepare_graph(point, profile, dataset, rd, cache: Path, progress) -> GraphIn
         # proposals 0 means "no such knob": the exporter keeps the model's own setting.
         record = export_onnx(model, weights=weights, size=size, proposals=proposals or None,
                              cache_dir=Path(cache) / "exports")
+        fp32 = record
+        if precision == "int8" and record.ok:
+            progress.status(f"quantise {model} {size}px")
+            record = quantised.quantised_record(record, profile, cache, dataset)
+            rd.update_meta(quantisation=quantised.run_meta(profile, cache, dataset))
     except UserError as exc:
         return GraphInfo(ok=False, reason=f"export: {exc}")
     except Exception as exc:  # an exporter crash is a failed graph, not a failed sweep
@@ -103,6 +110,8 @@ def prepare_graph(point, profile, dataset, rd, cache: Path, progress) -> GraphIn
     if not record.ok:
         return GraphInfo(ok=False, reason=f"export: {record.reason}")
     info.path = str(_link_into_run(Path(record.path), rd.exports))
+    if precision != "fp32":   # its export record (settings, calibration set) goes with the run
+        _link_into_run(Path(record.path).with_suffix(".json"), rd.exports)
     info.facts = _facts(record)
     info.notes.extend(record.notes or [])
     if weights == "none" or not profile.accuracy or dataset is None:
@@ -112,6 +121,15 @@ def prepare_graph(point, profile, dataset, rd, cache: Path, progress) -> GraphIn
     if info.accuracy.get("per_image_key"):
         _link_into_run(Path(cache) / "accuracy" / f"{info.accuracy['per_image_key']}.npz",
                        rd.path / PER_IMAGE_DIR)
+    if precision == "int8" and info.accuracy:
+        # the fp32 graph of the same configuration, on the same images (its accuracy is cached)
+        fp32_acc = _accuracy(Path(fp32.path), point, profile, dataset, cache, GraphInfo())
+        try:
+            info.accuracy.update(quantised.change_vs_fp32(
+                fp32.path, record.path, fp32_acc, info.accuracy, dataset, profile, Path(cache) / "accuracy",
+                Path(cache) / "detections" / f"ort-{_ort_version()}"))
+        except UserError as exc:
+            info.notes.append(f"change vs fp32 not measured: {exc}")
     return info
 
 
@@ -124,6 +142,11 @@ def _facts(record) -> dict:
     parity = record.parity or {}
     if "passed" in parity:
         out["parity_passed"] = bool(parity["passed"])
+    if getattr(record, "precision", "fp32") != "fp32":
+        q = record.quantisation or {}
+        out["calibration_fingerprint"] = (q.get("calibration") or {}).get("fingerprint")
+        out["quantisation"] = ", ".join(f"{k}={v}" for k, v in q.items()
+                                        if k in ("method", "per_channel", "op_types", "reduce_range"))
     return out
 
 
