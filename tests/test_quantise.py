@@ -255,3 +255,76 @@ def test_plan_expands_precisions_per_model_and_on_ort_only():
     assert any("int8 on backend eager" in n for n in plan.notes)
     int8 = next(p for p in plan.points if p.config["precision"] == "int8")
     assert int8.graph_key[-1] == "int8" and int8.label.endswith("int8")
+
+
+# ----------------------------------------------------------------- end to end
+SWEEP = """
+[run]
+name = "int8"
+timeout_s = 300
+cache = "{cache}"
+
+[dataset]
+scenes = {{count = 6, seed = 5}}
+timing_images = 2
+
+[sweep]
+sizes = [256]
+precisions = ["fp32", "int8"]
+
+[[models]]
+id = "demo_frcnn_lite"
+weights = "demo"
+
+[[threads]]
+intra = 1
+
+[repetitions]
+warmup_min = 1
+warmup_max = 3
+min_reps = 5
+max_reps = 10
+max_seconds = 1.0
+
+[quantisation]
+calibration = {{count = 4, seed = 1}}
+"""
+
+
+def test_sweep_measures_int8_beside_fp32_and_the_report_compares_them(tmp_path, graphs):
+    from speedbench.analyse import load_runs, pick
+    from speedbench.report.document import build
+    from speedbench.sweep import load_meta, load_run, run_sweep
+
+    prof = tmp_path / "int8.toml"
+    cache = tmp_path / "cache"
+    # the fixture's export and int8 graph are this sweep's too (same configuration, same
+    # generated calibration scenes): served from the cache instead of made again
+    (cache / "scenes").mkdir(parents=True)
+    os.symlink(graphs[3], cache / "exports")
+    prof.write_text(SWEEP.format(cache=cache))
+    out = run_sweep(prof, out_dir=tmp_path / "run", quiet=True, stream=open(os.devnull, "w"))
+    df = load_run(out).set_index("precision")
+    assert set(df.index) == {"fp32", "int8"} and (df["status"] == "ok").all(), df["reason"].tolist()
+    fp32, int8 = df.loc["fp32"], df.loc["int8"]
+    # the fp32 row keeps the id it had before the precision axis existed
+    legacy = {c: getattr(fp32[c], "item", lambda: fp32[c])() for c in schema.CONFIG_COLUMNS if c != "precision"}
+    assert fp32["point_id"] == schema.point_id(legacy)
+    assert int8["model_file_mib"] < 0.5 * fp32["model_file_mib"]
+    # mAP change = int8 mAP - fp32 mAP on the same images, its paired interval around it
+    assert math.isclose(int8["map_change"], int8["map"] - fp32["map"], abs_tol=1e-9)
+    assert int8["map_change_ci_lo"] <= int8["map_change"] <= int8["map_change_ci_hi"]
+    assert 0 < int8["agree_matched_fraction"] <= 1 and int8["stage_backbone_ms"] > 0
+    meta = load_meta(out)["quantisation"]
+    assert meta["calibration_fingerprint"] == int8["calibration_fingerprint"] != meta["heldout_fingerprint"]
+    assert list((out / "exports").glob("*-int8-*.json"))     # the int8 export record goes with the run
+    # pick limited to a precision, and the report's fp32 vs int8 table
+    runs = load_runs([out])
+    assert pick(runs[0].points, 10_000, precision="int8").best["precision"] == "int8"
+    with pytest.raises(UserError, match="--precision"):
+        pick(runs[0].points, 10_000, precision="int4")
+    _, blocks = build(runs)
+    i = blocks.index(("h2", "fp32 vs int8"))
+    assert blocks[i + 1][1].startswith("CPU INT8 instructions")
+    table = blocks[i + 2]
+    assert table[0] == "table" and len(table[2]) == 1 and table[2][0][0].startswith("demo_frcnn_lite @ 256")

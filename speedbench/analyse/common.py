@@ -33,6 +33,9 @@ def label(row) -> str:
     pin = _int_or(get("affinity", None))
     if pin:
         parts.append(f"{pin} cores")
+    precision = get("precision", None)
+    if isinstance(precision, str) and precision not in ("", "fp32"):
+        parts.append(precision)
     return " / ".join(parts)
 
 
@@ -122,6 +125,13 @@ def with_ids(df: pd.DataFrame) -> pd.DataFrame:
         if dup.any():
             df.loc[dup, "label"] = df.loc[dup, "label"] + " [" + df.loc[dup, "point_id"].astype(str) + "]"
     return df
+
+
+def precision_of(df: pd.DataFrame) -> pd.Series:
+    """Each row's precision ("fp32" for rows recorded before the axis existed)."""
+    if "precision" not in df.columns:
+        return pd.Series("fp32", index=df.index)
+    return df["precision"].fillna("").astype(str).replace("", "fp32")
 
 
 def has_accuracy(df: pd.DataFrame, col: str = "map") -> pd.Series:

@@ -43,8 +43,8 @@ EXPORTS_DIR = "exports"
 PER_IMAGE_DIR = "per_image"   # per-image accuracy results of each graph (<per_image_key>.npz)
 
 # Columns that hold text; every other schema column is numeric (NaN when missing).
-TEXT_COLUMNS = {"model", "weights", "backend", "exec_mode", "opt_level",
-                "point_id", "host", "family", "status", "reason", "stage_method"}
+TEXT_COLUMNS = {"model", "weights", "backend", "exec_mode", "opt_level", "precision",
+                "point_id", "host", "family", "status", "reason", "stage_method", "calibration_fingerprint"}
 BOOL_COLUMNS = {"noisy", "untrained"}
 
 _SCHEMA_SQL = """
@@ -344,6 +344,9 @@ def rows_to_frame(rows: list[dict]):
             df[col] = df[col].where(df[col].notna(), False).astype(bool)
         else:
             df[col] = pd.to_numeric(df[col], errors="coerce").astype("float64")
+    for col, default in schema.ID_DEFAULTS.items():
+        # rows recorded before an identity column existed had its legacy value
+        df[col] = df[col].replace("", default)
     # Config knobs are whole numbers; keep them integral when every row has them.
     for col in ("size", "proposals", "intra_threads", "inter_threads", "affinity", "concurrency", "n_samples"):
         if len(df) and df[col].notna().all():
