@@ -54,7 +54,7 @@ import numpy as np
 import pandas as pd
 
 from speedbench.errors import UserError
-from speedbench.schema import CONFIG_COLUMNS
+from speedbench.schema import CONFIG_COLUMNS, ID_DEFAULTS
 
 # Rule of thumb (ours): workers that got less than this share of their cores' CPU time were
 # competing with other work on the host (or idling threads), so the throughput understates a
@@ -182,7 +182,8 @@ def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
     df = df.copy()
     for col in CONFIG_KEY:
         if col not in df.columns:
-            df[col] = "" if col in ("model", "weights", "backend", "exec_mode", "opt_level") else 0
+            df[col] = ID_DEFAULTS[col] if col in ID_DEFAULTS else (
+                "" if col in ("model", "weights", "backend", "exec_mode", "opt_level") else 0)
     if "status" in df.columns:
         df = df[df["status"].fillna("ok").astype(str) == "ok"]
     for col in ("tput_fps", "tput_p99_ms", "tput_mean_ms", "cores_used", "concurrency",
