@@ -328,3 +328,44 @@ def test_sweep_measures_int8_beside_fp32_and_the_report_compares_them(tmp_path, 
     assert blocks[i + 1][1].startswith("CPU INT8 instructions")
     table = blocks[i + 2]
     assert table[0] == "table" and len(table[2]) == 1 and table[2][0][0].startswith("demo_frcnn_lite @ 256")
+
+
+def _rows():
+    base = {**LEGACY, "status": "ok", "family": "one-stage", "lat_p50_ms": 20.0, "stage_backbone_ms": 10.0,
+            "stage_method": schema.STAGE_METHOD,
+            "map": 0.40, "map_ci_lo": 0.35, "map_ci_hi": 0.45, "model_file_mib": 8.0, "rss_peak_mib": 140.0}
+    int8 = {**base, "precision": "int8", "lat_p50_ms": 15.0, "stage_backbone_ms": 5.0, "map": 0.39,
+            "map_change": -0.01, "map_change_ci_lo": -0.02, "map_change_ci_hi": 0.0, "model_file_mib": 2.5,
+            "agree_matched_fraction": 0.9}
+    return [base, int8]
+
+
+def test_old_rows_load_as_fp32_and_pairs_give_ratios():
+    from speedbench.analyse.precision import int8_flags, precision_pairs
+    from speedbench.sweep.rundir import rows_to_frame
+
+    df = rows_to_frame(_rows())
+    assert list(df["precision"]) == ["fp32", "int8"]        # the first row has no precision: legacy fp32
+    pairs = precision_pairs(df)
+    assert len(pairs) == 1 and pairs.loc[0, "ratio"] == 0.75 and pairs.loc[0, "ratio_backbone"] == 0.5
+    assert pairs.loc[0, "map_fp32"] == 0.40 and pairs.loc[0, "model_file_mib_fp32"] == 8.0
+    assert int8_flags({"cpu_flags": {"avx2": True, "avx512_vnni": True, "amx_int8": False}}) == ["avx512_vnni"]
+
+
+def test_frontier_plot_marks_int8_in_marker_and_legend():
+    from speedbench.report.plots import plot_frontier
+    from speedbench.sweep.rundir import rows_to_frame
+
+    fig = plot_frontier(rows_to_frame(_rows()))
+    ax = fig.axes[0]
+    assert any("int8" in t.get_text() for t in ax.get_legend().get_texts())
+    assert sorted(line.get_fillstyle() for line in ax.lines if line.get_marker() == "o") == ["full", "left"]
+
+
+def test_eager_points_are_fp32_only():
+    from speedbench.measure import Point
+
+    with pytest.raises(UserError, match="precision"):
+        Point(model="m", backend="eager", precision="int8").validate()
+    with pytest.raises(UserError, match="precision"):
+        Point(model="m", backend="ort", precision="int4", graph="x.onnx").validate()
