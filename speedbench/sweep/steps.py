@@ -102,7 +102,8 @@ def prepare_graph(point, profile, dataset, rd, cache: Path, progress) -> GraphIn
         if precision == "int8" and record.ok:
             progress.status(f"quantise {model} {size}px")
             record = quantised.quantised_record(record, profile, cache, dataset)
-            rd.update_meta(quantisation=quantised.run_meta(profile, cache, dataset))
+            if hasattr(rd, "update_meta"):   # a run directory (a fleet host's export folder has no meta)
+                rd.update_meta(quantisation=quantised.run_meta(profile, cache, dataset))
     except UserError as exc:
         return GraphInfo(ok=False, reason=f"export: {exc}")
     except Exception as exc:  # an exporter crash is a failed graph, not a failed sweep
