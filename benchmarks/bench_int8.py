@@ -13,7 +13,7 @@ least one model.
 
     python benchmarks/bench_int8.py [--models demo_ssdlite,demo_fcos,...] [--size 320]
         [--threads 1,2] [--seconds 4] [--rounds 2] [--heldout 40] [--calibration 16]
-        [--method minmax] [--reduce-range]
+        [--method minmax] [--reduce-range] [--per-tensor]
 """
 from __future__ import annotations
 
@@ -48,6 +48,7 @@ def main(argv=None) -> int:
     ap.add_argument("--calibration", type=int, default=16)
     ap.add_argument("--method", default="minmax")
     ap.add_argument("--reduce-range", action="store_true")
+    ap.add_argument("--per-tensor", action="store_true", help="one weight scale per tensor (default: per channel)")
     ap.add_argument("--cache", default=None, help="export cache (default: a temporary directory)")
     args = ap.parse_args(argv)
 
@@ -65,7 +66,7 @@ def main(argv=None) -> int:
     cache = Path(args.cache) if args.cache else tmp / "exports"
     heldout = load_dataset(make_scenes(tmp / "heldout", count=args.heldout, seed=7, split="heldout"))
     calib = load_dataset(make_scenes(tmp / "calib", count=args.calibration, seed=1, split="calibration"))
-    settings = QuantSettings(method=args.method, reduce_range=args.reduce_range)
+    settings = QuantSettings(method=args.method, reduce_range=args.reduce_range, per_channel=not args.per_tensor)
     print(f"held-out {heldout.fingerprint[:12]} ({len(heldout)} scenes), calibration {calib.fingerprint[:12]} "
           f"({len(calib)} scenes), settings {settings.to_dict()}")
     images = [heldout.read(r.id) for r in heldout.images[:8]]
