@@ -35,21 +35,28 @@ CONFIG_COLUMNS = (
     "opt_level",      # ORT graph optimisation level name; "" for eager
     "affinity",       # number of cores the worker was pinned to; 0 = not pinned
     "concurrency",    # K concurrent workers for throughput points; 1 otherwise
+    "precision",      # "fp32" (the exported graph) or "int8" (its static QDQ quantisation)
 )
 
 # Identity columns added after runs already existed, with the value every older run
 # implicitly had. point_id leaves such a column out while it holds that value, so the
 # ids of configurations that existed before stay the same (resume and compare rely on it).
 # A new identity column is appended to CONFIG_COLUMNS and entered here.
-ID_DEFAULTS: dict = {}
+ID_DEFAULTS: dict = {"precision": "fp32"}
+
+PRECISIONS = ("fp32", "int8")
+# int8 settings a profile may name ([quantisation]; speedbench.export.quantise documents them)
+QUANT_METHODS = ("minmax", "entropy", "percentile")
+QUANT_OP_TYPES = ("Conv", "MatMul", "Gemm")
 
 # Percentiles reported for every latency distribution, in milliseconds.
 LATENCY_PERCENTILES = (50, 90, 99)
 LATENCY_STATS = tuple(f"p{p}" for p in LATENCY_PERCENTILES)
 
 # Columns that hold text and flags; every other schema column is numeric (NaN when missing).
-TEXT_COLUMNS = frozenset({"model", "weights", "backend", "exec_mode", "opt_level",
-                          "point_id", "host", "family", "status", "reason", "stage_method"})
+TEXT_COLUMNS = frozenset({"model", "weights", "backend", "exec_mode", "opt_level", "precision",
+                          "point_id", "host", "family", "status", "reason", "stage_method",
+                          "calibration_fingerprint"})
 BOOL_COLUMNS = frozenset({"noisy", "untrained"})
 
 # Groups of result columns, named here once; RESULT_COLUMNS below lists them in table order.
@@ -110,6 +117,11 @@ RESULT_COLUMNS = (
     "params", "gmacs",
     "map", "map50", "map75", "map_small", "map_medium", "map_large", "mar_100",
     "map_ci_lo", "map_ci_hi", "untrained",
+    # int8 rows: accuracy change vs the fp32 graph of the same configuration (paired bootstrap
+    # over the same held-out images) and detection agreement with it
+    "map_change", "map_change_ci_lo", "map_change_ci_hi",
+    "agree_matched_fraction", "agree_box_mean_px", "agree_box_max_px",
+    "calibration_fingerprint",
 )
 
 
@@ -186,6 +198,9 @@ def config_label(row) -> str:
     pin = _int_or(get("affinity", None))
     if pin:
         parts.append(f"{pin} cores")
+    precision = get("precision", None)
+    if isinstance(precision, str) and precision not in ("", "fp32"):
+        parts.append(precision)
     return " / ".join(parts)
 
 

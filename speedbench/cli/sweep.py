@@ -71,11 +71,12 @@ def format_plan(plan, profile, out, resume: bool = False) -> str:
     lines = [f"profile {profile.name!r} ({profile.source}) -> {out}",
              f"{len(plan.points)} point(s) over {len(plan.graphs)} distinct graph(s)"
              + (f"; {len(done & {p.point_id for p in plan.points})} already measured" if resume else "")]
-    lines.append(f"{'point_id':<12}  {'graph (model/weights/size/proposals)':<44}  backend  intra inter mode        "
-                 f"affinity  K  opt")
+    lines.append(f"{'point_id':<12}  {'graph (model/weights/size/proposals/prec)':<44}  backend  intra inter "
+                 f"mode        affinity  K  opt")
     for p in plan.points:
         c = p.config
         graph = f"{c['model']}/{c['weights']}/{c['size']}/{c['proposals']}"
+        graph += f"/{c['precision']}" if c.get("precision", "fp32") != "fp32" else ""
         mark = " (done)" if p.point_id in done else ""
         lines.append(f"{p.point_id:<12}  {graph:<44}  {c['backend']:<7}  {c['intra_threads']:>5} "
                      f"{c['inter_threads']:>5} {c['exec_mode'] or '-':<11} {c['affinity']:>8} "

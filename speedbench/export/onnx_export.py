@@ -41,6 +41,8 @@ class ExportRecord:
     versions: dict = dataclasses.field(default_factory=dict)
     notes: list = dataclasses.field(default_factory=list)
     seconds: float = 0.0
+    precision: str = "fp32"     # "int8": a quantised copy of an fp32 export (export/quantise.py)
+    quantisation: dict = dataclasses.field(default_factory=dict)   # int8: settings, calibration set
 
     def to_dict(self) -> dict:
         d = dataclasses.asdict(self)

@@ -564,7 +564,9 @@ def _known_column(values, col: str):
     import pandas as pd
 
     if col in schema.TEXT_COLUMNS:
-        return values.where(values.notna(), "").astype(str).astype(object)
+        text = values.where(values.notna(), "").astype(str).astype(object)
+        # rows recorded before an identity column existed had its legacy value
+        return text.replace("", schema.ID_DEFAULTS[col]) if col in schema.ID_DEFAULTS else text
     if col in schema.BOOL_COLUMNS:
         return values.where(values.notna(), False).astype(bool)
     out = pd.to_numeric(values, errors="coerce").astype("float64")
