@@ -17,8 +17,9 @@ OPT_LEVELS = ("disable", "basic", "extended", "all")
 class Point:
     """One configuration. Fields up to `concurrency` are its identity (schema.CONFIG_COLUMNS).
 
-    `graph` (the ONNX file for backend "ort") and `options` (settings of the
-    synthetic test backend) are not part of the identity: the same configuration
+    `graph` (the ONNX file for backends "ort" and "adapted"), `options` (settings of the
+    synthetic test backend) and `adapter` (how backend "adapted" feeds and decodes an
+    external graph) are not part of the identity: the same configuration
     measured from a re-exported file, or with an injected slowdown, is the same point.
     """
 
@@ -35,6 +36,7 @@ class Point:
     concurrency: int = 1
     graph: str | None = None
     options: dict = field(default_factory=dict)
+    adapter: dict = field(default_factory=dict)   # backend "adapted": the adapter table (adapt.Adapter.to_dict)
 
     def __post_init__(self):
         # ORT's executor knobs mean nothing elsewhere; schema: "" for eager (and the test backend)
@@ -69,15 +71,21 @@ class Point:
         cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
         if self.affinity > cores:
             raise UserError(f"point field 'affinity': {self.affinity} cores requested, {cores} available")
-        if self.backend == "ort":
+        if self.backend in ("ort", "adapted"):
             if self.exec_mode not in EXEC_MODES:
                 raise UserError(f"point field 'exec_mode': {self.exec_mode!r} is not one of {', '.join(EXEC_MODES)}")
             if self.opt_level not in OPT_LEVELS:
                 raise UserError(f"point field 'opt_level': {self.opt_level!r} is not one of {', '.join(OPT_LEVELS)}")
             if not self.graph:
-                raise UserError("point field 'graph': backend 'ort' needs the path of an ONNX file")
+                raise UserError(f"point field 'graph': backend {self.backend!r} needs the path of an ONNX file")
             if not Path(self.graph).is_file():
                 raise UserError(f"{self.graph}: ONNX graph file not found")
+        if self.backend == "adapted":
+            from speedbench.adapt import parse_adapter
+
+            if not self.adapter:
+                raise UserError("point field 'adapter': backend 'adapted' needs the adapter of the external graph")
+            parse_adapter(self.adapter, f"{self.graph}: adapter")
         if not isinstance(self.options, dict):
             raise UserError(f"point field 'options': expected a table/dict, got {type(self.options).__name__}")
         if self.backend == "synthetic":

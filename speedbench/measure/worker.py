@@ -16,7 +16,7 @@ import traceback
 
 # Libraries whose import cost belongs to "after imports" for each backend.
 IMPORTS = {"ort": ("numpy", "onnxruntime", "onnx"), "eager": ("numpy", "torch", "torchvision"),
-           "synthetic": ("numpy",)}
+           "synthetic": ("numpy",), "adapted": ("numpy", "onnxruntime", "onnx")}
 
 
 def pin(cores: int) -> list[int]:
