@@ -41,8 +41,10 @@ def _taps(n_in: int, n_out: int):
     """Source indices and weights of half-pixel bilinear sampling (torch's align_corners=False)."""
     key = (n_in, n_out)
     if key not in _TAPS:
-        scale = n_in / n_out
-        src = np.maximum((np.arange(n_out, dtype=np.float64) + 0.5) * scale - 0.5, 0.0)
+        # float32 position arithmetic, as torch's CPU kernel does for float32 images
+        scale = np.float32(n_in) / np.float32(n_out)
+        src = np.maximum((np.arange(n_out, dtype=np.float32) + np.float32(0.5)) * scale - np.float32(0.5),
+                         np.float32(0))
         i0 = np.minimum(np.floor(src).astype(np.int64), n_in - 1)
         i1 = np.minimum(i0 + 1, n_in - 1)
         w1 = (src - i0).astype(np.float32)
