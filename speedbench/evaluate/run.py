@@ -177,7 +177,7 @@ def _session(graph_path: Path, intra_threads: int, check_io: bool = True):
         raise UserError(f"{graph_path}: not a loadable ONNX graph ({type(exc).__name__})") from None
     names = [o.name for o in session.get_outputs()]
     inputs = [i.name for i in session.get_inputs()]
-    if check_io and inputs[:1] != ["image"] or names[:3] != list(OUTPUTS):
+    if check_io and (inputs[:1] != ["image"] or names[:3] != list(OUTPUTS)):
         raise UserError(f"{graph_path}: expected input 'image' and outputs boxes, scores, labels; "
                         f"graph has inputs {inputs} and outputs {names}")
     return session
