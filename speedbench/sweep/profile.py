@@ -33,6 +33,17 @@ profiles/ explain the keys they use in comments)::
     sizes     = [320]             # optional: replaces [sweep].sizes for this model
     proposals = [100]             # optional: replaces [sweep].proposals for this model
 
+    [[models]]                    # an external ONNX detector (any exporter), instead of a zoo id
+    id        = "yard_raw"        # a name of your own (not a zoo id); weights = "onnx:<file name>"
+    onnx      = "path/model.onnx" # the graph; it carries its own weights
+    family    = "one-stage"       # "one-stage" or "two-stage"
+    classes   = ["__background__", "crate"]   # names by label index (or classes_file = "names.txt",
+                                  # one per line, or a JSON list); matched to the dataset's categories
+    adapter   = "adapter.toml"    # its input/output adapter (speedbench/adapt/spec.py lists every
+                                  # key), or an inline [models.adapter] table
+                                  # The size axis applies when the graph's input is dynamic and the
+                                  # adapter resizes; proposals map to the host's pre-NMS top-k.
+
     [[threads]]                   # required: one table per thread setting
     intra    = 2                  # required; intra-op threads, 0..256 (0 = library default)
     inter    = 1                  # inter-op threads, 0..256 (ORT uses them in parallel mode only)
@@ -76,6 +87,14 @@ class ModelEntry:
     weights: str = "none"
     sizes: tuple | None = None        # None = use [sweep].sizes
     proposals: tuple | None = None    # None = use [sweep].proposals
+    onnx: str | None = None           # external graph (then family, classes, adapter too)
+    family: str = ""
+    classes: tuple | None = None
+    adapter: object = field(default=None, compare=False)   # speedbench.adapt.Adapter
+
+    @property
+    def external(self) -> bool:
+        return self.onnx is not None
 
 
 @dataclass(frozen=True)
@@ -181,6 +200,9 @@ def parse_profile(text: str, source: str = "<profile>") -> Profile:
     models = []
     for i, m in enumerate(doc["models"]):
         kp = f"models[{i}]"
+        if isinstance(m, dict) and "onnx" in m:
+            models.append(_external(c, m, kp, models))
+            continue
         c.table(m, kp, {"id", "weights", "sizes", "proposals"}, {"id"})
         entry = ModelEntry(
             id=c.str_(m["id"], f"{kp}.id", allow_empty=False),
@@ -249,6 +271,64 @@ def parse_profile(text: str, source: str = "<profile>") -> Profile:
         concurrency=concurrency, threads=tuple(threads), repetitions=repetitions,
         synthetic=dict(synthetic),
     )
+
+
+def _external(c: _Checker, m: dict, kp: str, earlier) -> ModelEntry:
+    """An external-graph entry: the graph, its classes and adapter, checked against each other now."""
+    from speedbench.adapt import check_graph, load_adapter, parse_adapter
+    from speedbench.schema import FAMILIES
+
+    c.table(m, kp, {"id", "onnx", "family", "classes", "classes_file", "adapter", "sizes", "proposals"},
+            {"id", "onnx", "family", "adapter"})
+    if "weights" in m:
+        c.fail(f"{kp}.weights", "an external graph carries its own weights")
+    ident = c.str_(m["id"], f"{kp}.id", allow_empty=False)
+    onnx = c.str_(m["onnx"], f"{kp}.onnx", allow_empty=False)
+    if not Path(onnx).is_file():
+        c.fail(f"{kp}.onnx", f"{onnx}: ONNX graph file not found")
+    family = c.str_(m["family"], f"{kp}.family", FAMILIES)
+    if ("classes" in m) == ("classes_file" in m):
+        c.fail(kp, "give exactly one of `classes` or `classes_file`")
+    if "classes" in m:
+        classes = c.list_(m["classes"], f"{kp}.classes", lambda v, k: c.str_(v, k), unique=False)
+    else:
+        classes = _classes_file(c, c.str_(m["classes_file"], f"{kp}.classes_file", allow_empty=False),
+                                f"{kp}.classes_file")
+    spec = m["adapter"]
+    if isinstance(spec, dict):
+        adapter = parse_adapter(spec, f"{c.source}: {kp}.adapter")
+    else:
+        adapter = load_adapter(c.str_(spec, f"{kp}.adapter", allow_empty=False))
+    check_graph(onnx, adapter, classes=classes)
+    weights = f"onnx:{Path(onnx).name}"
+    if any(e.id == ident for e in earlier):
+        c.fail(f"{kp}.id", f"model {ident!r} is listed twice")
+    return ModelEntry(
+        id=ident, weights=weights, onnx=onnx, family=family, classes=classes, adapter=adapter,
+        sizes=c.list_(m["sizes"], f"{kp}.sizes", lambda v, k: _size(c, v, k)) if "sizes" in m else None,
+        proposals=(c.list_(m["proposals"], f"{kp}.proposals", lambda v, k: _proposal(c, v, k))
+                   if "proposals" in m else None))
+
+
+def _classes_file(c: _Checker, path: str, keypath: str) -> tuple:
+    import json
+
+    try:
+        text = Path(path).read_text()
+    except (OSError, UnicodeDecodeError) as exc:
+        c.fail(keypath, f"{path}: cannot read ({type(exc).__name__})")
+    if path.endswith(".json"):
+        try:
+            names = json.loads(text)
+        except ValueError:
+            c.fail(keypath, f"{path}: not valid JSON")
+        if not isinstance(names, list) or not names or not all(isinstance(n, str) for n in names):
+            c.fail(keypath, f"{path}: expected a JSON list of class names")
+        return tuple(names)
+    names = tuple(line.strip() for line in text.splitlines() if line.strip())
+    if not names:
+        c.fail(keypath, f"{path}: no class names in it")
+    return names
 
 
 def _size(c: _Checker, value, keypath: str):
