@@ -190,7 +190,7 @@ def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
         df[col] = pd.to_numeric(df[col], errors="coerce") if col in df.columns else np.nan
     df["concurrency"] = df["concurrency"].fillna(1)
     # ORT-only knobs mean nothing for other backends; rows may record them either way.
-    not_ort = df["backend"].astype(str) != "ort"
+    not_ort = ~df["backend"].astype(str).isin(("ort", "adapted"))   # adapted = ORT + host work
     df.loc[not_ort, ["exec_mode", "opt_level"]] = ""
     # cores_used = K x T; rebuild it for rows that lack it.
     df["cores_used"] = df["cores_used"].fillna(df["concurrency"] * df["intra_threads"].fillna(1).clip(lower=1))

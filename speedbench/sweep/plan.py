@@ -100,7 +100,7 @@ def external_spec(entry):
     return ModelSpec(id=entry.id, builder="", family=entry.family, native_size=ad.native_size,
                      detections_per_img=ad.nms.detections, score_thresh=ad.nms.score_threshold,
                      default_proposals=ad.nms.candidates if ad.host_nms else 0, classes=tuple(entry.classes),
-                     num_classes=len(entry.classes), min_size=8, notes=f"external graph {entry.onnx}")
+                     num_classes=len(entry.classes), min_size=0, notes=f"external graph {entry.onnx}")
 
 
 def _is_zoo_id(get_spec, model_id: str) -> bool:

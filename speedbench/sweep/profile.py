@@ -278,10 +278,10 @@ def _external(c: _Checker, m: dict, kp: str, earlier) -> ModelEntry:
     from speedbench.adapt import check_graph, load_adapter, parse_adapter
     from speedbench.schema import FAMILIES
 
-    c.table(m, kp, {"id", "onnx", "family", "classes", "classes_file", "adapter", "sizes", "proposals"},
-            {"id", "onnx", "family", "adapter"})
     if "weights" in m:
         c.fail(f"{kp}.weights", "an external graph carries its own weights")
+    c.table(m, kp, {"id", "onnx", "family", "classes", "classes_file", "adapter", "sizes", "proposals"},
+            {"id", "onnx", "family", "adapter"})
     ident = c.str_(m["id"], f"{kp}.id", allow_empty=False)
     onnx = c.str_(m["onnx"], f"{kp}.onnx", allow_empty=False)
     if not Path(onnx).is_file():
