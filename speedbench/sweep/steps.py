@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from speedbench.errors import UserError
+from speedbench.sweep import external
 from speedbench.sweep.rundir import PER_IMAGE_DIR
 
 NAN = float("nan")
@@ -90,6 +91,9 @@ def prepare_graph(point, profile, dataset, rd, cache: Path, progress) -> GraphIn
     """Export the point's graph (cached by content) and evaluate its accuracy (cached too)."""
     model, weights, size, proposals = point.graph_key
     info = GraphInfo()
+    entry = external.entry_of(profile, model)
+    if entry is not None:
+        return _prepare_external(entry, point, profile, dataset, rd, cache, progress)
     try:
         from speedbench.export import export_onnx
 
@@ -115,6 +119,28 @@ def prepare_graph(point, profile, dataset, rd, cache: Path, progress) -> GraphIn
     return info
 
 
+def _prepare_external(entry, point, profile, dataset, rd, cache: Path, progress) -> GraphInfo:
+    """An external graph: the user's file (no export), its facts, accuracy through its adapter."""
+    model, weights, size, proposals = point.graph_key
+    try:
+        src = Path(entry.onnx)
+        # named by content: a file replaced under the same name is a new graph, never a stale link
+        linked = _link_into_run(src, rd.exports, f"{src.stem}-{_file_digest(src)}{src.suffix}")
+        info = GraphInfo(path=str(linked), facts=external.graph_facts(entry),
+                         notes=external.graph_notes(entry))
+    except UserError as exc:
+        return GraphInfo(ok=False, reason=f"external graph: {exc}")
+    if not profile.accuracy or dataset is None:
+        return info
+    progress.status(f"accuracy {model} {size}px")
+    info.accuracy = _accuracy(Path(entry.onnx), point, profile, dataset, cache, info,
+                              external.evaluation_args(entry, size, proposals))
+    if info.accuracy.get("per_image_key"):
+        _link_into_run(Path(cache) / "accuracy" / f"{info.accuracy['per_image_key']}.npz",
+                       rd.path / PER_IMAGE_DIR)
+    return info
+
+
 def _facts(record) -> dict:
     """Export facts as row columns: params, gmacs, file size, opset, parity with torch eager."""
     facts = dict(record.facts or {})
@@ -127,10 +153,10 @@ def _facts(record) -> dict:
     return out
 
 
-def _link_into_run(path: Path, exports: Path) -> Path:
+def _link_into_run(path: Path, exports: Path, name: str | None = None) -> Path:
     """Keep a copy of the graph in the run directory (a hard link when possible: no extra space)."""
     exports.mkdir(exist_ok=True)
-    target = exports / path.name
+    target = exports / (name or path.name)
     if target.exists():
         return target
     tmp = exports / f".{path.name}.{os.getpid()}.tmp"
@@ -150,15 +176,19 @@ def _file_digest(path: Path) -> str:
     return h.hexdigest()[:16]
 
 
-def _accuracy(graph: Path, point, profile, dataset, cache: Path, info: GraphInfo) -> dict:
+def _accuracy(graph: Path, point, profile, dataset, cache: Path, info: GraphInfo, adapted=None) -> dict:
     """mAP of one graph over the dataset; cached by (graph bytes, dataset, limit, runtime version).
 
     The runtime version is part of the key so that an upgrade which changes what the
     graph outputs shows up as an accuracy change instead of being served from the cache.
+    adapted: evaluate_graph's arguments for an external graph (classes, adapter, size); the
+    adapter (with its candidate count) and the size join the key.
     """
     ort = _ort_version()
-    key = hashlib.sha256(json.dumps([_file_digest(graph), dataset_fingerprint(dataset), profile.limit, ort])
-                         .encode()).hexdigest()[:20]
+    parts = [_file_digest(graph), dataset_fingerprint(dataset), profile.limit, ort]
+    if adapted:
+        parts += [adapted["adapter"].digest(), adapted["size"]]
+    key = hashlib.sha256(json.dumps(parts).encode()).hexdigest()[:20]
     path = Path(cache) / "accuracy" / f"{key}.json"
     if path.exists():
         try:
@@ -174,11 +204,13 @@ def _accuracy(graph: Path, point, profile, dataset, cache: Path, info: GraphInfo
 
         # Always check threads (once per graph, cached with the accuracy): the one accuracy
         # figure stands for every thread setting only if 1 and 2 threads detect the same.
-        result = evaluate_graph(graph, dataset, model=point.graph_key[0], limit=profile.limit or None,
-                                intra_threads=_cores(), cache_dir=det_cache, check_threads=True)
+        how = dict(adapted) if adapted else {"model": point.graph_key[0]}
+        result = evaluate_graph(graph, dataset, limit=profile.limit or None, intra_threads=_cores(),
+                                cache_dir=det_cache, check_threads=True, **how)
         scored = dataset.first(int(profile.limit)) if profile.limit else dataset
         # Same graph, images and cache as evaluate_graph: served from its detections cache.
-        dets = detect_dataset(graph, scored, result["label_map"], _cores(), det_cache)
+        dets = detect_dataset(graph, scored, result["label_map"], _cores(), det_cache,
+                              adapter=how.get("adapter"), size=how.get("size", 0))
     except UserError as exc:
         info.notes.append(f"accuracy not measured: {exc}")
         return {}
@@ -263,8 +295,10 @@ def measure(planned, info: GraphInfo, profile, images, policy, baseline_fps=None
     from speedbench.measure import Point
 
     c = planned.config
+    entry = external.entry_of(profile, c["model"]) if c["backend"] == "adapted" else None
     point = Point(**c, graph=info.path,
-                  options=dict(profile.synthetic) if c["backend"] == "synthetic" else {})
+                  options=dict(profile.synthetic) if c["backend"] == "synthetic" else {},
+                  **(external.point_fields(entry, c["proposals"]) if entry is not None else {}))
     samples: list = []
     if not info.ok and c["backend"] != "eager":
         row = {**c, "point_id": planned.point_id, "status": "failed", "reason": info.reason}
