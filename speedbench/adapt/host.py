@@ -55,15 +55,15 @@ def _taps(n_in: int, n_out: int):
 
 
 def resize_bilinear(image: np.ndarray, out_h: int, out_w: int) -> np.ndarray:
-    """float32 [h, w, c] -> float32 [out_h, out_w, c], separable bilinear (rows, then columns)."""
+    """[h, w, c] -> float32 [out_h, out_w, c], separable bilinear (rows, then columns); same size: as is."""
     h, w = image.shape[:2]
+    if (h, w) == (out_h, out_w):
+        return image                          # nothing to resample; the caller converts the dtype
     img = image.astype(np.float32, copy=False)
-    if (h, w) != (out_h, out_w):
-        y0, y1, wy, _ = _taps(h, out_h)
-        rows = img[y0] * (1 - wy) + img[y1] * wy
-        x0, x1, _, wx = _taps(w, out_w)
-        img = rows[:, x0] * (1 - wx) + rows[:, x1] * wx
-    return img
+    y0, y1, wy, _ = _taps(h, out_h)
+    rows = img[y0] * (1 - wy) + img[y1] * wy
+    x0, x1, _, wx = _taps(w, out_w)
+    return rows[:, x0] * (1 - wx) + rows[:, x1] * wx
 
 
 def target_shape(adapter: Adapter, size: int) -> tuple[int, int] | None:
@@ -83,7 +83,7 @@ def preprocess(adapter: Adapter, image: np.ndarray, shape) -> tuple[np.ndarray, 
     if spec.channels == "BGR":
         image = image[:, :, ::-1]
     if shape is None:
-        img = image.astype(np.float32)
+        img = image
         geo = Geometry(iw, ih, iw, ih)
     elif spec.resize == "letterbox":
         th, tw = shape
@@ -97,18 +97,19 @@ def preprocess(adapter: Adapter, image: np.ndarray, shape) -> tuple[np.ndarray, 
         th, tw = shape
         img = resize_bilinear(image, th, tw)
         geo = Geometry(tw, th, iw, ih, tw / iw, th / ih)
+    if spec.layout != "NHWC":
+        img = img.transpose(2, 0, 1)          # a view; the arithmetic below writes it contiguous
     if spec.dtype == "uint8":
-        x = np.clip(np.rint(img), 0, 255).astype(np.uint8)
+        x = np.clip(np.rint(img), 0, 255).astype(np.uint8) if img.dtype != np.uint8 else img
     else:
-        x = img * np.float32(spec.scale)
-        if spec.mean != (0.0, 0.0, 0.0) or spec.std != (1.0, 1.0, 1.0):
-            x = (x - np.asarray(spec.mean, np.float32)) / np.asarray(spec.std, np.float32)
-    if spec.layout == "NHWC":
+        # ((x * scale) - mean) / std as one multiply-add per channel
+        shape = (3, 1, 1) if spec.layout != "NHWC" else (1, 1, 3)
+        a = (np.float32(spec.scale) / np.asarray(spec.std, np.float32)).reshape(shape)
+        x = np.multiply(img, a, out=np.empty(img.shape, np.float32))   # C order: the layout the graph wants
+        if spec.mean != (0.0, 0.0, 0.0):
+            x -= (np.asarray(spec.mean, np.float32) / np.asarray(spec.std, np.float32)).reshape(shape)
+    if spec.layout != "CHW":
         x = x[None]
-    else:
-        x = x.transpose(2, 0, 1)
-        if spec.layout == "NCHW":
-            x = x[None]
     return np.ascontiguousarray(x), geo
 
 
