@@ -5,9 +5,9 @@ with its default where it has one::
 
     [input]
     name        = ""          # the graph input fed; "" = the graph's only input
-    layout      = "NCHW"      # "NCHW", "CHW" or "NHWC"
+    layout      = "NCHW"      # required: "NCHW", "CHW" or "NHWC"
     dtype       = "float32"   # "float32" or "uint8" (uint8: raw pixels, no scaling/normalisation)
-    size        = 320         # fixed input: 320 or [height, width]; or "dynamic"
+    size        = 320         # required: fixed input 320 or [height, width]; or "dynamic"
     native_size = 320         # dynamic input only: the size a profile's "native" stands for
     resize      = "stretch"   # "stretch" (to size x size), "letterbox" (keep aspect, pad), or
                               # "none" (the graph takes each image at its own size; dynamic only)
@@ -18,10 +18,11 @@ with its default where it has one::
     channels    = "RGB"       # channel order the graph expects: "RGB" or "BGR"
 
     [output]
-    kind        = "dense"     # "dense": per-anchor boxes + class scores needing NMS;
+    kind        = "dense"     # required. "dense": per-anchor boxes + class scores needing NMS;
                               # "packed": one [1, N, 6] (or [N, 6]) detections tensor;
                               # "separate": boxes [N, 4], scores [N], labels [N] tensors
-    predictions = "output0"   # dense: one [1, A, 4 + C] tensor (4 box values, C class scores)
+    predictions = "output0"   # dense: one [1, A, 4 + C] tensor (4 box values, C class scores);
+                              # the graph outputs named here must exist (checked against the file)
     transposed  = false       # dense: predictions are [1, 4 + C, A]
     boxes       = ""          # dense (with scores [1, A, C]) or separate: the boxes tensor
     scores      = ""          # dense: [1, A, C]; separate: [N]
