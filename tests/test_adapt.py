@@ -379,3 +379,23 @@ def test_packed_wrong_width_and_rank(tmp_path):
     path = _const_graph(tmp_path, "r4", {"det": np.zeros((1, 1, 3, 6), np.float32)}, [1, 3, 320, 320])
     with pytest.raises(UserError, match=r"needs rank 2 or 3; output det is \[1, 1, 3, 6\]"):
         check_graph(path, _adapter())
+
+
+# ----------------------------------------------------------------- CLI
+def test_measure_cli_with_adapter(tmp_path, capsys):
+    from speedbench.cli import main
+
+    det = np.array([[[10, 10, 50, 50, 0.9, 1]]], np.float32)
+    path = _const_graph(tmp_path, "cli", {"det": det}, [1, 3, 320, 320])
+    adapter = tmp_path / "a.toml"
+    adapter.write_text('[input]\nlayout = "NCHW"\nsize = 320\n[output]\nkind = "packed"\npacked = "det"\n')
+    assert main(["measure", str(path), "--adapter", str(adapter), "--scenes", "2", "--min-reps", "3",
+                 "--max-reps", "5", "--no-stages", "--json"]) == 0
+    row = __import__("json").loads(capsys.readouterr().out.strip().splitlines()[-1])
+    assert row["backend"] == "adapted" and row["size"] == 320 and row["proposals"] == 1000
+    assert main(["measure", str(path), "--adapter", str(adapter), "--size", "256"]) == 2
+    assert "fixed input of 320 x 320" in capsys.readouterr().err
+    adapter.write_text('[input]\nlayout = "NCHW"\nsize = 320\n[output]\nkind = "packed"\npacked = "boxes"\n')
+    assert main(["measure", str(path), "--adapter", str(adapter)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "no output 'boxes' (it has det [1, 1, 6])" in err
