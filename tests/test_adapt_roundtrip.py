@@ -100,3 +100,22 @@ def test_host_decode_map_matches_native(graphs, tmp_path):
                        adapter=load_adapter(SHIPPED), size=320)
     assert a["map"] > 0.1
     assert abs(a["map"] - b["map"]) <= 0.005, (a["map"], b["map"])
+
+
+def test_shipped_example_profile(graphs, tmp_path, monkeypatch):
+    # profiles/external-example.toml, run from a checkout after `speedbench export demo_ssdlite
+    # --raw-head -o examples/demo_ssdlite_raw.onnx`: parses, and plans both graphs at 320 px.
+    import os
+    import shutil
+
+    from speedbench.sweep import expand_plan, load_profile
+
+    _, raw = graphs
+    (tmp_path / "examples").mkdir()
+    os.link(raw["graph"], tmp_path / "examples" / "demo_ssdlite_raw.onnx")
+    shutil.copytree(ROOT / "profiles", tmp_path / "profiles")
+    monkeypatch.chdir(tmp_path)
+    plan = expand_plan(load_profile("profiles/external-example.toml"))
+    got = sorted((p.config["model"], p.config["backend"], p.config["size"], p.config["proposals"]) for p in plan.points)
+    assert got == [("demo_ssdlite", "ort", 320, 100), ("demo_ssdlite", "ort", 320, 300),
+                   ("demo_ssdlite_raw", "adapted", 320, 100), ("demo_ssdlite_raw", "adapted", 320, 300)]
