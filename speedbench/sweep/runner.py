@@ -57,7 +57,12 @@ def _open_run(profile: Profile, out: Path, resume: bool) -> RunDir:
     if resume:
         rd = RunDir.open(out)
         try:
-            stored = parse_profile(rd.profile_text(), str(out / "profile.toml"))
+            text = rd.profile_text()   # a missing copy is said as such, not as "a different profile"
+        except UserError:
+            rd.close()
+            raise
+        try:
+            stored = parse_profile(text, str(out / "profile.toml"))
         except UserError:
             stored = None
         if stored is None or not same_study(stored, profile):
@@ -101,6 +106,8 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
     progress = Progress(len(todo), quiet=quiet, stream=stream)
     context = make_context(profile, dataset, rd.exports, host=profile.host, per_image_dir=rd.path / PER_IMAGE_DIR,
                            status=progress.status, on_prepared=lambda key, graph: _note_thread_check(rd, key, graph))
+    # the host's matmul peak at every thread count of the plan, once per run, recorded in meta.json
+    context.peaks = steps.host_peak(rd, todo, None if quiet else stream)
     # One-stream throughput of each configuration, for the scaling efficiency of K > 1 points.
     x1 = baselines(rd.rows())
     try:

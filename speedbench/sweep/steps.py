@@ -26,8 +26,8 @@ def prepare_dataset(profile, cache: Path):
     from speedbench.data import load_dataset
 
     if profile.dataset_path:
-        return load_dataset(profile.dataset_path)
-    return load_dataset(scenes_path(profile, cache))
+        return load_dataset(profile.dataset_path, max_pixels=profile.max_pixels)
+    return load_dataset(scenes_path(profile, cache), max_pixels=profile.max_pixels)
 
 
 def scenes_path(profile, cache: Path) -> Path:
@@ -71,6 +71,29 @@ def make_policy(repetitions: dict):
         policy.max_reps = policy.min_reps
     policy.validate()
     return policy
+
+
+# ----------------------------------------------------------------- host peak
+def host_peak(rd, points, stream=None) -> dict | None:
+    """This host's dense fp32 matmul peak at 1 thread and at the points' thread counts, once per run.
+
+    Kept in meta["matmul_peak"]; a resumed run measures only thread counts it lacks.
+    Nothing is measured when no point runs a model (the synthetic test backend).
+    """
+    from speedbench.measure.peak import ensure_peaks
+
+    have = rd.meta().get("matmul_peak")
+    real = [p for p in points if p.config["backend"] != "synthetic"]
+    if not real:
+        return have
+    peak = ensure_peaks(have, {1} | {int(p.config["intra_threads"]) for p in real})
+    if peak != (have or {}):
+        if stream is not None:
+            print("note: measured this host's fp32 matmul peak (GMAC/s per thread count): " + ", ".join(
+                f"{t}: {r.get('gmac_s', float('nan')):.1f}" for t, r in sorted(peak["by_threads"].items())),
+                file=stream)
+        rd.update_meta(matmul_peak=peak)
+    return peak
 
 
 # ----------------------------------------------------------------- accuracy
