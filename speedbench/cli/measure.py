@@ -18,6 +18,8 @@ def add_parser(subparsers):
     p.add_argument("--proposals", type=int_in(0, 10_000), default=0,
                    help="proposal / candidate budget, 1..10000 (0 = default)")
     p.add_argument("--backend", choices=("ort", "eager", "synthetic"), default="ort")
+    p.add_argument("--adapter", metavar="FILE", help="GRAPH is an external detector described by this adapter "
+                   "(TOML; keys in speedbench/adapt/spec.py): host pre/postprocessing are timed with it")
     p.add_argument("--threads", type=int_in(0, 256), default=1, help="intra-op threads, 0..256 (0 = library default)")
     p.add_argument("--inter-threads", type=int_in(0, 256), default=1, help="inter-op threads, 0..256 (default 1)")
     p.add_argument("--mode", choices=("sequential", "parallel"), default="sequential", help="ORT execution mode")
@@ -133,13 +135,10 @@ def _graph(args, model):
 
 
 def run(args) -> int:
-    import json
-    import math
-    import sys
     from pathlib import Path
 
     from speedbench.errors import UserError
-    from speedbench.measure import Point, Policy, measure_point
+    from speedbench.measure import Point
 
     model = args.model or (Path(args.graph).stem if args.graph else None)
     if not model:
@@ -148,12 +147,54 @@ def run(args) -> int:
         raise UserError(f"--size {args.size}: must be 0 (the graph's own) or 32..4096")
     if args.min_reps > args.max_reps:
         raise UserError(f"--max-reps {args.max_reps}: must be >= --min-reps {args.min_reps}")
+    if args.adapter:
+        return _run_point(args, _adapted_point(args, model))
     ort = args.backend == "ort"
     graph = _graph(args, model) if ort else None
     point = Point(model=model, weights=args.weights, size=args.size, proposals=args.proposals,
                   backend=args.backend, intra_threads=args.threads, inter_threads=args.inter_threads,
                   exec_mode=args.mode if ort else "", opt_level=args.opt if ort else "",
                   affinity=args.affinity, graph=graph)
+    return _run_point(args, point)
+
+
+def _adapted_point(args, model):
+    """Point for GRAPH + --adapter: backend "adapted", the adapter checked against the graph first."""
+    from pathlib import Path
+
+    from speedbench.adapt import check_graph, load_adapter
+    from speedbench.errors import UserError
+    from speedbench.measure import Point
+
+    if not args.graph:
+        raise UserError("--adapter: give the external ONNX graph it describes")
+    if args.backend != "ort":
+        raise UserError(f"--adapter: an external graph runs on ONNX Runtime, not --backend {args.backend}")
+    adapter = load_adapter(args.adapter)
+    check_graph(args.graph, adapter)
+    if args.size and adapter.fixed and args.size != adapter.native_size:
+        raise UserError(f"--size {args.size}: {args.graph} has a fixed input of "
+                        f"{adapter.input.size[0]} x {adapter.input.size[1]}")
+    if args.proposals and not adapter.host_nms:
+        raise UserError("--proposals: NMS runs inside this graph (nms.enabled = false); there is no host top-k")
+    size = args.size or adapter.native_size
+    if not adapter.fixed and adapter.input.resize == "none":
+        size = 0
+    return Point(model=model, weights=f"onnx:{Path(args.graph).name}", size=size,
+                 proposals=(args.proposals or adapter.nms.candidates) if adapter.host_nms else 0,
+                 backend="adapted", intra_threads=args.threads, inter_threads=args.inter_threads,
+                 exec_mode=args.mode, opt_level=args.opt, affinity=args.affinity, graph=args.graph,
+                 adapter=adapter.to_dict())
+
+
+def _run_point(args, point) -> int:
+    import json
+    import math
+    import sys
+    from pathlib import Path
+
+    from speedbench.measure import Policy, measure_point
+
     policy = Policy(min_reps=args.min_reps, max_reps=args.max_reps, max_seconds=args.max_seconds,
                     rel_ci=args.rel_ci, profile_stages=not args.no_stages)
     res = measure_point(point, _images(args), policy, timeout_s=args.timeout)

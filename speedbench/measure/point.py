@@ -15,16 +15,17 @@ ORT_ONLY_KNOBS = ("exec_mode", "opt_level")   # "" on every other backend (schem
 
 
 def uses_ort_knobs(backend: str) -> bool:
-    """Only ONNX Runtime has an execution mode and a graph optimisation level."""
-    return backend == "ort"
+    """Only ONNX Runtime has an execution mode and a graph optimisation level ("adapted" runs on it too)."""
+    return backend in ("ort", "adapted")
 
 
 @dataclass
 class Point:
     """One configuration. Fields up to `precision` are its identity (schema.CONFIG_COLUMNS).
 
-    `graph` (the ONNX file for backend "ort") and `options` (settings of the
-    synthetic test backend) are not part of the identity: the same configuration
+    `graph` (the ONNX file for backends "ort" and "adapted"), `options` (settings of the
+    synthetic test backend) and `adapter` (how backend "adapted" feeds and decodes an
+    external graph) are not part of the identity: the same configuration
     measured from a re-exported file, or with an injected slowdown, is the same point.
     """
 
@@ -42,6 +43,7 @@ class Point:
     precision: str = "fp32"      # "int8": `graph` is the quantised graph (the sweep prepares it)
     graph: str | None = None
     options: dict = field(default_factory=dict)
+    adapter: dict = field(default_factory=dict)   # backend "adapted": the adapter table (adapt.Adapter.to_dict)
 
     def __post_init__(self):
         # The one place ORT-only knobs are blanked: plan, stored row and point_id(row) then agree.
@@ -80,15 +82,21 @@ class Point:
             raise UserError(f"point field 'precision': {self.precision!r} is not one of {', '.join(PRECISIONS)}")
         if self.precision != "fp32" and self.backend == "eager":
             raise UserError("point field 'precision': the eager backend runs fp32 only")
-        if self.backend == "ort":
+        if self.backend in ("ort", "adapted"):
             if self.exec_mode not in EXEC_MODES:
                 raise UserError(f"point field 'exec_mode': {self.exec_mode!r} is not one of {', '.join(EXEC_MODES)}")
             if self.opt_level not in OPT_LEVELS:
                 raise UserError(f"point field 'opt_level': {self.opt_level!r} is not one of {', '.join(OPT_LEVELS)}")
             if not self.graph:
-                raise UserError("point field 'graph': backend 'ort' needs the path of an ONNX file")
+                raise UserError(f"point field 'graph': backend {self.backend!r} needs the path of an ONNX file")
             if not Path(self.graph).is_file():
                 raise UserError(f"{self.graph}: ONNX graph file not found")
+        if self.backend == "adapted":
+            from speedbench.adapt import parse_adapter
+
+            if not self.adapter:
+                raise UserError("point field 'adapter': backend 'adapted' needs the adapter of the external graph")
+            parse_adapter(self.adapter, f"{self.graph}: adapter")
         if not isinstance(self.options, dict):
             raise UserError(f"point field 'options': expected a table/dict, got {type(self.options).__name__}")
         if self.backend == "synthetic":

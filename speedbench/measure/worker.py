@@ -18,7 +18,7 @@ from speedbench.system import atomic_write
 
 # Libraries whose import cost belongs to "after imports" for each backend.
 IMPORTS = {"ort": ("numpy", "onnxruntime", "onnx"), "eager": ("numpy", "torch", "torchvision"),
-           "synthetic": ("numpy",)}
+           "synthetic": ("numpy",), "adapted": ("numpy", "onnxruntime", "onnx")}
 
 
 def pin(cores: int) -> list[int]:

@@ -22,7 +22,7 @@ from speedbench import schema
 from speedbench.errors import UserError, one_line
 from speedbench.measure.backends import get_backend
 from speedbench.measure.peak import ensure_peaks, peak_for
-from speedbench.sweep import quantised, steps
+from speedbench.sweep import external, quantised, steps
 from speedbench.sweep.plan import GraphKey, PlannedPoint
 from speedbench.zoo import trained_sizes
 
@@ -71,6 +71,10 @@ class GraphStore:
     def _prepare(self, key: GraphKey) -> PreparedGraph:
         from speedbench.export import export_onnx
 
+        entry = external.entry_of(self.profile, key.model)
+        if entry is not None:
+            return self._prepare_external(key, entry)
+
         try:
             # proposals 0 means "no such knob": the exporter keeps the model's own setting.
             record = export_onnx(key.model, weights=key.weights, size=key.size, proposals=key.proposals or None,
@@ -114,6 +118,26 @@ class GraphStore:
         return acc
 
 
+    def _prepare_external(self, key: GraphKey, entry) -> PreparedGraph:
+        """An external graph: the user's file (no export), its facts, accuracy through its adapter."""
+        try:
+            src = Path(entry.onnx)
+            # named by content: a file replaced under the same name is a new graph, never a stale link
+            linked = link_into(src, self.exports_dir, f"{src.stem}-{steps._file_digest(src)}{src.suffix}")
+            graph = PreparedGraph(path=str(linked), facts=external.graph_facts(entry),
+                                  notes=external.graph_notes(entry))
+        except UserError as exc:
+            return PreparedGraph(ok=False, reason=f"external graph: {exc}")
+        if not self.profile.accuracy or self.dataset is None:
+            return graph
+        self.status(f"accuracy {key.model} {key.size}px")
+        graph.accuracy = steps.accuracy(src, key.model, self.profile, self.dataset, self.cache, graph.notes,
+                                        external.evaluation_args(entry, key.size, key.proposals))
+        if graph.accuracy.get("per_image_key") and self.per_image_dir is not None:
+            link_into(self.cache / "accuracy" / f"{graph.accuracy['per_image_key']}.npz", self.per_image_dir)
+        return graph
+
+
 def _facts(record) -> dict:
     """Export facts as row columns: params, gmacs, file size, opset, parity with torch eager."""
     facts = dict(record.facts or {})
@@ -137,10 +161,10 @@ def _facts(record) -> dict:
     return out
 
 
-def link_into(path: Path, directory: Path) -> Path:
+def link_into(path: Path, directory: Path, name: str | None = None) -> Path:
     """Keep a copy of a file in `directory` (a hard link when possible: no extra space)."""
     directory.mkdir(parents=True, exist_ok=True)
-    target = directory / path.name
+    target = directory / (name or path.name)
     if target.exists():
         return target
     tmp = directory / f".{path.name}.{os.getpid()}.tmp"
@@ -234,8 +258,10 @@ def _measure(job: PointJob, context: PointContext, graph: PreparedGraph):
     from speedbench.measure.load import add_curve
 
     c, profile = job.planned.config, context.profile
+    entry = external.entry_of(profile, c["model"]) if c["backend"] == "adapted" else None
     point = dataclasses.replace(job.planned.point, graph=graph.path,
-                                options=dict(profile.synthetic) if c["backend"] == "synthetic" else {})
+                                options=dict(profile.synthetic) if c["backend"] == "synthetic" else {},
+                                **(external.point_fields(entry, c["proposals"]) if entry is not None else {}))
     if c["concurrency"] == 1 and context.load is None:
         return measure_point(point, context.images, context.policy, profile.timeout_s)
     load = context.load or LoadSettings(seconds=None)

@@ -110,6 +110,46 @@ def synthetic_spec(model_id: str):
                      arch="", notes="harness test backend, not a detector")
 
 
+def external_spec(entry):
+    """A ModelSpec standing for an external graph, so the plan maps its knobs like a zoo model's.
+
+    native size: the fixed input's size, else the adapter's native_size; the proposal knob is
+    the host's pre-NMS top-k (nms.candidates) when NMS runs on the host, else there is none.
+    """
+    from speedbench.zoo.spec import ModelSpec
+
+    ad = entry.adapter
+    return ModelSpec(id=entry.id, builder="", family=entry.family, native_size=ad.native_size,
+                     detections_per_img=ad.nms.detections, score_thresh=ad.nms.score_threshold,
+                     default_proposals=ad.nms.candidates if ad.host_nms else 0, classes=tuple(entry.classes),
+                     num_classes=len(entry.classes), min_size=0, arch="",
+                     notes=f"external graph {entry.onnx}")
+
+
+def _is_zoo_id(get_spec, model_id: str) -> bool:
+    try:
+        get_spec(model_id)
+    except (KeyError, UserError):
+        return False
+    return True
+
+
+def _external_sizes(entry, sizes, notes) -> list:
+    """The sizes an external graph can be measured at: a fixed input only at its own size."""
+    ad = entry.adapter
+    if ad.fixed:
+        other = [s for s in sizes if s != ad.native_size]
+        if other:
+            notes[f"skipped {entry.id} at size {', '.join(map(str, other))}: the graph's input is fixed at "
+                  f"{ad.input.size[0]} x {ad.input.size[1]}"] += 1
+        return [s for s in sizes if s == ad.native_size]
+    if ad.input.resize == "none":
+        notes[f"{entry.id}: the graph takes each image at its own size (resize = \"none\"); sizes "
+              f"{', '.join(map(str, sizes))} measured once as 0"] += 1
+        return [0]
+    return sizes
+
+
 def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool = True,
                 cores: int | None = None) -> Plan:
     """Expand `profile` into a Plan.
@@ -128,13 +168,20 @@ def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool = T
 
     for mi, entry in enumerate(profile.models):
         try:
-            spec = synthetic_spec(entry.id) if entry.id.startswith("synthetic") else get_spec(entry.id)
+            if entry.external:
+                if _is_zoo_id(get_spec, entry.id):
+                    raise UserError(f"{entry.id!r} is a zoo model id; give the external graph a name of its own")
+                spec = external_spec(entry)
+            else:
+                spec = synthetic_spec(entry.id) if entry.id.startswith("synthetic") else get_spec(entry.id)
         except UserError as exc:
             raise UserError(f"{profile.source}: models[{mi}].id: {exc}") from None
         except KeyError:
             raise UserError(f"{profile.source}: models[{mi}].id: unknown model {entry.id!r} "
                             f"(list them with `speedbench models`)") from None
         sizes = _dedupe(spec.native_size if s == "native" else s for s in (entry.sizes or profile.sizes))
+        if entry.external:
+            sizes = _external_sizes(entry, sizes, notes)
         min_size = getattr(spec, "min_size", 0) or 0
         too_small = [s for s in sizes if s < min_size]
         if too_small:
@@ -144,13 +191,16 @@ def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool = T
             sizes = [s for s in sizes if s >= min_size]
         wanted = entry.proposals or profile.proposals
         if spec.default_proposals == 0:
-            if any(p != "default" for p in wanted):
+            if entry.external and any(p != "default" for p in wanted):
+                notes[f"{entry.id}: NMS runs inside the graph (nms.enabled = false), so there is no host "
+                      f"top-k to set; proposals {', '.join(map(str, wanted))} measured once as 0"] += 1
+            elif any(p != "default" for p in wanted):
                 notes[f"{entry.id}: has no proposal knob; proposals {', '.join(map(str, wanted))} "
                       f"measured once as 0"] += 1
             proposals, prop_note = [0], ("proposals mapped to 0: model has no proposal knob",)
         else:
             proposals = _dedupe(spec.default_proposals if p == "default" else p for p in wanted)
-            prop_note = ()
+            prop_note = ("proposals = the host's pre-NMS top-k (nms.candidates)",) if entry.external else ()
         precisions = entry.precisions or profile.precisions
         for size, prop, precision, backend, opt, t, k in itertools.product(
                 sizes, proposals, precisions, profile.backends, profile.opt_levels, profile.threads,
@@ -181,6 +231,14 @@ def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, conc
     if precision != "fp32" and backend != "ort":
         notes[f"skipped {precision} on backend {backend}: quantised graphs run on ONNX Runtime only"] += 1
         return None
+    if entry.external:
+        if precision != "fp32":
+            notes[f"skipped {precision} for {entry.id}: an external graph is measured as given (not quantised)"] += 1
+            return None
+        if backend != "ort":
+            notes[f"skipped {entry.id} on backend {backend}: an external graph runs on ONNX Runtime only"] += 1
+            return None
+        backend = "adapted"   # ONNX Runtime with the adapter's host pre/postprocessing
     if entry.id.startswith("synthetic") and backend != "synthetic":
         notes[f"skipped {entry.id} on backend {backend}: a synthetic model runs on the synthetic backend only"] += 1
         return None

@@ -40,6 +40,17 @@ profiles/ explain the keys they use in comments)::
     proposals = [100]             # optional: replaces [sweep].proposals for this model
     precisions = ["fp32", "int8"] # optional: replaces [sweep].precisions for this model
 
+    [[models]]                    # an external ONNX detector (any exporter), instead of a zoo id
+    id        = "yard_raw"        # a name of your own (not a zoo id); weights = "onnx:<file name>"
+    onnx      = "path/model.onnx" # the graph; it carries its own weights
+    family    = "one-stage"       # "one-stage" or "two-stage"
+    classes   = ["__background__", "crate"]   # names by label index (or classes_file = "names.txt",
+                                  # one per line, or a JSON list); matched to the dataset's categories
+    adapter   = "adapter.toml"    # its input/output adapter (speedbench/adapt/spec.py lists every
+                                  # key), or an inline [models.adapter] table
+                                  # The size axis applies when the graph's input is dynamic and the
+                                  # adapter resizes; proposals map to the host's pre-NMS top-k.
+
     [[threads]]                   # required: one table per thread setting
     intra    = 2                  # required; intra-op threads, 0..256 (0 = library default)
     inter    = 1                  # inter-op threads, 0..256 (ORT uses them in parallel mode only)
@@ -81,6 +92,8 @@ import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from speedbench.checker import Checker as _Checker
+from speedbench.checker import kind as _kind
 from speedbench.errors import UserError
 from speedbench.schema import PRECISIONS
 from speedbench.schema import QUANT_METHODS as METHODS
@@ -101,6 +114,14 @@ class ModelEntry:
     sizes: tuple | None = None        # None = use [sweep].sizes
     proposals: tuple | None = None    # None = use [sweep].proposals
     precisions: tuple | None = None   # None = use [sweep].precisions
+    onnx: str | None = None           # external graph (then family, classes, adapter too)
+    family: str = ""
+    classes: tuple | None = None
+    adapter: object = field(default=None, compare=False)   # speedbench.adapt.Adapter
+
+    @property
+    def external(self) -> bool:
+        return self.onnx is not None
 
 
 @dataclass(frozen=True)
@@ -144,74 +165,6 @@ class Profile:
 
     def output_dir(self) -> Path:
         return Path(self.output.format(name=self.name, host=self.host))
-
-
-# ----------------------------------------------------------------- checking helpers
-class _Checker:
-    def __init__(self, source: str):
-        self.source = source
-
-    def fail(self, keypath: str, message: str):
-        raise UserError(f"{self.source}: {keypath}: {message}")
-
-    def table(self, value, keypath: str, allowed: set[str], required: set[str] = frozenset()) -> dict:
-        if not isinstance(value, dict):
-            self.fail(keypath, f"expected a table, got {_kind(value)}")
-        for key in value:
-            if key not in allowed:
-                self.fail(f"{keypath}.{key}" if keypath else key,
-                          f"unknown key (allowed: {', '.join(sorted(allowed))})")
-        for key in sorted(required):
-            if key not in value:
-                self.fail(f"{keypath}.{key}" if keypath else key, "missing required key")
-        return value
-
-    def int_(self, value, keypath: str, lo: int, hi: int) -> int:
-        if isinstance(value, bool) or not isinstance(value, int):
-            self.fail(keypath, f"expected an integer, got {_kind(value)}")
-        if not lo <= value <= hi:
-            self.fail(keypath, f"{value} is out of range {lo}..{hi}")
-        return value
-
-    def num(self, value, keypath: str, lo: float, hi: float, open_lo=False, open_hi=False) -> float:
-        if isinstance(value, bool) or not isinstance(value, (int, float)):
-            self.fail(keypath, f"expected a number, got {_kind(value)}")
-        bad = value < lo or value > hi or (open_lo and value == lo) or (open_hi and value == hi)
-        if bad or value != value:
-            lo_s = f"({lo}" if open_lo else f"[{lo}"
-            hi_s = f"{hi})" if open_hi else f"{hi}]"
-            self.fail(keypath, f"{value} is out of range {lo_s}, {hi_s}")
-        return float(value)
-
-    def str_(self, value, keypath: str, choices=None, allow_empty=True) -> str:
-        if not isinstance(value, str):
-            self.fail(keypath, f"expected a string, got {_kind(value)}")
-        if choices is not None and value not in choices:
-            self.fail(keypath, f"{value!r} is not one of {', '.join(choices)}")
-        if not allow_empty and not value.strip():
-            self.fail(keypath, "must not be empty")
-        return value
-
-    def bool_(self, value, keypath: str) -> bool:
-        if not isinstance(value, bool):
-            self.fail(keypath, f"expected true or false, got {_kind(value)}")
-        return value
-
-    def list_(self, value, keypath: str, item, unique=True) -> tuple:
-        if not isinstance(value, list):
-            self.fail(keypath, f"expected a list, got {_kind(value)}")
-        if not value:
-            self.fail(keypath, "must not be empty")
-        out = tuple(item(v, f"{keypath}[{i}]") for i, v in enumerate(value))
-        if unique and len(set(out)) != len(out):
-            dup = next(v for v in out if out.count(v) > 1)
-            self.fail(keypath, f"lists {dup!r} more than once")
-        return out
-
-
-def _kind(value) -> str:
-    return {bool: "a boolean", int: "an integer", float: "a number", str: "a string",
-            list: "a list", dict: "a table"}.get(type(value), type(value).__name__)
 
 
 # ----------------------------------------------------------------- parsing
@@ -296,6 +249,9 @@ def parse_profile(text: str, source: str = "<profile>") -> Profile:
     models = []
     for i, m in enumerate(doc["models"]):
         kp = f"models[{i}]"
+        if isinstance(m, dict) and "onnx" in m:
+            models.append(_external(c, m, kp, models))
+            continue
         c.table(m, kp, {"id", "weights", "sizes", "proposals", "precisions"}, {"id"})
         entry = ModelEntry(
             id=c.str_(m["id"], f"{kp}.id", allow_empty=False),
@@ -393,6 +349,64 @@ def _quantisation(c: _Checker, q) -> dict:
     else:
         c.fail("quantisation.calibration", f"expected a path or a table {{count, seed}}, got {_kind(cal)}")
     return out
+
+
+def _external(c: _Checker, m: dict, kp: str, earlier) -> ModelEntry:
+    """An external-graph entry: the graph, its classes and adapter, checked against each other now."""
+    from speedbench.adapt import check_graph, load_adapter, parse_adapter
+    from speedbench.schema import FAMILIES
+
+    if "weights" in m:
+        c.fail(f"{kp}.weights", "an external graph carries its own weights")
+    c.table(m, kp, {"id", "onnx", "family", "classes", "classes_file", "adapter", "sizes", "proposals"},
+            {"id", "onnx", "family", "adapter"})
+    ident = c.str_(m["id"], f"{kp}.id", allow_empty=False)
+    onnx = c.str_(m["onnx"], f"{kp}.onnx", allow_empty=False)
+    if not Path(onnx).is_file():
+        c.fail(f"{kp}.onnx", f"{onnx}: ONNX graph file not found")
+    family = c.str_(m["family"], f"{kp}.family", FAMILIES)
+    if ("classes" in m) == ("classes_file" in m):
+        c.fail(kp, "give exactly one of `classes` or `classes_file`")
+    if "classes" in m:
+        classes = c.list_(m["classes"], f"{kp}.classes", lambda v, k: c.str_(v, k), unique=False)
+    else:
+        classes = _classes_file(c, c.str_(m["classes_file"], f"{kp}.classes_file", allow_empty=False),
+                                f"{kp}.classes_file")
+    spec = m["adapter"]
+    if isinstance(spec, dict):
+        adapter = parse_adapter(spec, f"{c.source}: {kp}.adapter")
+    else:
+        adapter = load_adapter(c.str_(spec, f"{kp}.adapter", allow_empty=False))
+    check_graph(onnx, adapter, classes=classes)
+    weights = f"onnx:{Path(onnx).name}"
+    if any(e.id == ident for e in earlier):
+        c.fail(f"{kp}.id", f"model {ident!r} is listed twice")
+    return ModelEntry(
+        id=ident, weights=weights, onnx=onnx, family=family, classes=classes, adapter=adapter,
+        sizes=c.list_(m["sizes"], f"{kp}.sizes", lambda v, k: _size(c, v, k)) if "sizes" in m else None,
+        proposals=(c.list_(m["proposals"], f"{kp}.proposals", lambda v, k: _proposal(c, v, k))
+                   if "proposals" in m else None))
+
+
+def _classes_file(c: _Checker, path: str, keypath: str) -> tuple:
+    import json
+
+    try:
+        text = Path(path).read_text()
+    except (OSError, UnicodeDecodeError) as exc:
+        c.fail(keypath, f"{path}: cannot read ({type(exc).__name__})")
+    if path.endswith(".json"):
+        try:
+            names = json.loads(text)
+        except ValueError:
+            c.fail(keypath, f"{path}: not valid JSON")
+        if not isinstance(names, list) or not names or not all(isinstance(n, str) for n in names):
+            c.fail(keypath, f"{path}: expected a JSON list of class names")
+        return tuple(names)
+    names = tuple(line.strip() for line in text.splitlines() if line.strip())
+    if not names:
+        c.fail(keypath, f"{path}: no class names in it")
+    return names
 
 
 def _size(c: _Checker, value, keypath: str):

@@ -105,15 +105,19 @@ def _file_digest(path: Path) -> str:
     return h.hexdigest()[:16]
 
 
-def accuracy(graph: Path, model: str, profile, dataset, cache: Path, notes: list) -> dict:
+def accuracy(graph: Path, model: str, profile, dataset, cache: Path, notes: list, adapted=None) -> dict:
     """mAP of one graph over the dataset; cached by (graph bytes, dataset, limit, runtime version).
 
     The runtime version is part of the key so that an upgrade which changes what the
     graph outputs shows up as an accuracy change instead of being served from the cache.
+    adapted: evaluate_graph's arguments for an external graph (classes, adapter, size); the
+    adapter (with its candidate count) and the size join the key.
     """
     ort = _ort_version()
-    key = hashlib.sha256(json.dumps([_file_digest(graph), dataset_fingerprint(dataset), profile.limit, ort])
-                         .encode()).hexdigest()[:20]
+    parts = [_file_digest(graph), dataset_fingerprint(dataset), profile.limit, ort]
+    if adapted:
+        parts += [adapted["adapter"].digest(), adapted["size"]]
+    key = hashlib.sha256(json.dumps(parts).encode()).hexdigest()[:20]
     path = Path(cache) / "accuracy" / f"{key}.json"
     if path.exists():
         try:
@@ -130,11 +134,13 @@ def accuracy(graph: Path, model: str, profile, dataset, cache: Path, notes: list
 
         # Always check threads (once per graph, cached with the accuracy): the one accuracy
         # figure stands for every thread setting only if 1 and 2 threads detect the same.
-        result = evaluate_graph(graph, dataset, model=model, limit=profile.limit or None,
-                                intra_threads=cores_available(), cache_dir=det_cache, check_threads=True)
+        how = dict(adapted) if adapted else {"model": model}
+        result = evaluate_graph(graph, dataset, limit=profile.limit or None, intra_threads=cores_available(),
+                                cache_dir=det_cache, check_threads=True, **how)
         scored = dataset.first(int(profile.limit)) if profile.limit else dataset
         # Same graph, images and cache as evaluate_graph: served from its detections cache.
-        dets = detect_dataset(graph, scored, result["label_map"], cores_available(), det_cache)
+        dets = detect_dataset(graph, scored, result["label_map"], cores_available(), det_cache,
+                              adapter=how.get("adapter"), size=how.get("size", 0))
     except UserError as exc:
         notes.append(f"accuracy not measured: {exc}")
         return {}
