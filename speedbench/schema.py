@@ -35,13 +35,21 @@ CONFIG_COLUMNS = (
     "opt_level",      # ORT graph optimisation level name; "" for eager
     "affinity",       # number of cores the worker was pinned to; 0 = not pinned
     "concurrency",    # K concurrent workers for throughput points; 1 otherwise
+    "spin_wait",      # ORT intra-/inter-op threads spin while waiting for work: "on" / "off"; "" for eager
 )
 
 # Identity columns added after runs already existed, with the value every older run
 # implicitly had. point_id leaves such a column out while it holds that value, so the
 # ids of configurations that existed before stay the same (resume and compare rely on it).
-# A new identity column is appended to CONFIG_COLUMNS and entered here.
-ID_DEFAULTS: dict = {}
+# A new identity column is appended to CONFIG_COLUMNS and entered here. A blank value
+# ("" or None: the knob does not apply to the point's backend) is left out too.
+ID_DEFAULTS: dict = {
+    "spin_wait": "on",    # ONNX Runtime's own default: session.intra_op.allow_spinning = "1"
+}
+
+# Values of spin_wait. Spinning threads poll for work instead of sleeping: lower wake-up
+# latency, but they burn CPU while idle and fight other processes for the cores.
+SPIN_VALUES = ("on", "off")
 
 # Percentiles reported for every latency distribution, in milliseconds.
 LATENCY_STATS = ("p50", "p90", "p99")
@@ -54,6 +62,13 @@ RESULT_COLUMNS = (
     *[f"lat_{s}_ci_lo_ms" for s in LATENCY_STATS],
     *[f"lat_{s}_ci_hi_ms" for s in LATENCY_STATS],
     "noisy",
+    # Replicated invocations (each point measured in R independent worker processes)
+    "invocations",             # invocations that succeeded (R); 1 for runs made before replication
+    "invocations_failed",      # invocations that failed
+    "invocation_errors",       # their reasons, "; "-separated, each prefixed with the invocation index
+    "between_cov",             # CoV of the invocation medians (process-to-process spread)
+    "between_dominates",       # between-invocation variance of the median exceeds the within one
+    "ci_scope",                # what the latency intervals cover: one process, or R processes
     "fps",                     # frames/s of one stream = 1000 / lat_p50_ms (concurrency 1)
     *[f"stage_{s}_ms" for s in STAGES],          # in the unprofiled time base (see STAGE_METHOD)
     *[f"stage_{s}_share" for s in STAGES],       # share of the profiled pass's attributed time
@@ -104,6 +119,6 @@ def point_id(config: dict) -> str:
     import json
 
     key = {c: config.get(c) for c in CONFIG_COLUMNS
-           if not (c in ID_DEFAULTS and config.get(c, ID_DEFAULTS[c]) == ID_DEFAULTS[c])}
+           if not (c in ID_DEFAULTS and config.get(c, ID_DEFAULTS[c]) in (ID_DEFAULTS[c], "", None))}
     blob = json.dumps(key, sort_keys=True, default=str).encode()
     return hashlib.sha1(blob).hexdigest()[:12]

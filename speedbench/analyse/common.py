@@ -33,6 +33,8 @@ def label(row) -> str:
     pin = _int_or(get("affinity", None))
     if pin:
         parts.append(f"{pin} cores")
+    if get("spin_wait", "") == "off":
+        parts.append("no spin")
     return " / ".join(parts)
 
 

@@ -7,7 +7,7 @@ from pathlib import Path
 
 from speedbench.errors import UserError
 from speedbench.measure.backends import NAMES as BACKENDS
-from speedbench.schema import CONFIG_COLUMNS, point_id
+from speedbench.schema import CONFIG_COLUMNS, SPIN_VALUES, point_id
 
 EXEC_MODES = ("sequential", "parallel")
 OPT_LEVELS = ("disable", "basic", "extended", "all")
@@ -33,13 +33,14 @@ class Point:
     opt_level: str = "all"
     affinity: int = 0
     concurrency: int = 1
+    spin_wait: str = "on"
     graph: str | None = None
     options: dict = field(default_factory=dict)
 
     def __post_init__(self):
         # ORT's executor knobs mean nothing elsewhere; schema: "" for eager (and the test backend)
         if self.backend in ("eager", "synthetic"):
-            self.exec_mode, self.opt_level = "", ""
+            self.exec_mode, self.opt_level, self.spin_wait = "", "", ""
 
     def config(self) -> dict:
         return {c: getattr(self, c) for c in CONFIG_COLUMNS}
@@ -74,6 +75,8 @@ class Point:
                 raise UserError(f"point field 'exec_mode': {self.exec_mode!r} is not one of {', '.join(EXEC_MODES)}")
             if self.opt_level not in OPT_LEVELS:
                 raise UserError(f"point field 'opt_level': {self.opt_level!r} is not one of {', '.join(OPT_LEVELS)}")
+            if self.spin_wait not in SPIN_VALUES:
+                raise UserError(f"point field 'spin_wait': {self.spin_wait!r} is not one of {', '.join(SPIN_VALUES)}")
             if not self.graph:
                 raise UserError("point field 'graph': backend 'ort' needs the path of an ONNX file")
             if not Path(self.graph).is_file():

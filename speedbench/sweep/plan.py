@@ -45,6 +45,8 @@ class PlannedPoint:
             text += f"/{c['inter_threads']}par"
         if c["affinity"]:
             text += f" pin{c['affinity']}"
+        if c.get("spin_wait") == "off":
+            text += " nospin"
         if c["concurrency"] > 1:
             text += f" K{c['concurrency']}"
         return text
@@ -195,10 +197,11 @@ def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, conc
         # K workers x T threads beyond the cores measures contention, not the configuration.
         notes[f"skipped concurrency={k} x {max(t.intra, t.affinity)} threads: more than the {cores} core(s) here"] += 1
         return None
+    spin = ("on" if t.spin else "off") if backend == "ort" else ""   # an ORT knob only
     config = {
         "model": entry.id, "weights": entry.weights, "size": int(size), "proposals": int(prop),
         "backend": backend, "intra_threads": t.intra, "inter_threads": inter, "exec_mode": mode,
-        "opt_level": opt, "affinity": t.affinity, "concurrency": k,
+        "opt_level": opt, "affinity": t.affinity, "concurrency": k, "spin_wait": spin,
     }
     return config, tuple(point_notes)
 

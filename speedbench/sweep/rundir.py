@@ -5,7 +5,10 @@ Layout of a run directory::
     meta.json        profile name, host label, start/end times, version, environment
     profile.toml     verbatim copy of the profile the sweep ran
     points.sqlite    the source of truth: points(point_id PRIMARY KEY, seq, row JSON),
-                     samples(point_id, i, ms)
+                     samples(point_id, i, ms, invocation), and invocations(point_id,
+                     invocation, status, result JSON): each worker process's result the
+                     moment it finishes, before its point's row exists (resume per invocation)
+    schedule.json    the seeded shuffled order the invocations were run in
     points.csv       the points table, regenerated as points arrive (temp file + os.replace)
     points.parquet   the same, when pyarrow is installed
     exports/         the ONNX graphs the sweep exported (content-hash cache)
@@ -43,9 +46,10 @@ EXPORTS_DIR = "exports"
 PER_IMAGE_DIR = "per_image"   # per-image accuracy results of each graph (<per_image_key>.npz)
 
 # Columns that hold text; every other schema column is numeric (NaN when missing).
-TEXT_COLUMNS = {"model", "weights", "backend", "exec_mode", "opt_level",
-                "point_id", "host", "family", "status", "reason", "stage_method"}
-BOOL_COLUMNS = {"noisy", "untrained"}
+TEXT_COLUMNS = {"model", "weights", "backend", "exec_mode", "opt_level", "spin_wait",
+                "point_id", "host", "family", "status", "reason", "stage_method", "ci_scope", "invocation_errors"}
+BOOL_COLUMNS = {"noisy", "untrained", "between_dominates"}
+SCHEDULE_FILE = "schedule.json"
 
 _SCHEMA_SQL = """
 CREATE TABLE IF NOT EXISTS points (
@@ -57,7 +61,18 @@ CREATE TABLE IF NOT EXISTS samples (
     point_id TEXT NOT NULL,
     i INTEGER NOT NULL,
     ms REAL NOT NULL,
+    invocation INTEGER NOT NULL DEFAULT 0,
     PRIMARY KEY (point_id, i)
+);
+"""
+# One row per finished worker process of a point not yet complete (and kept after).
+_INVOCATIONS_SQL = """
+CREATE TABLE IF NOT EXISTS invocations (
+    point_id TEXT NOT NULL,
+    invocation INTEGER NOT NULL,
+    status TEXT NOT NULL,
+    result TEXT NOT NULL,
+    PRIMARY KEY (point_id, invocation)
 );
 """
 
@@ -175,6 +190,9 @@ class RunDir:
                     raise UserError(f"{db_path}: missing table {name!r} (incomplete or foreign run directory)")
             db.execute("SELECT point_id, seq, row FROM points LIMIT 1").fetchall()
             db.execute("SELECT point_id, i, ms FROM samples LIMIT 1").fetchall()
+            # Runs made before replicated invocations have no invocation column (all index 0).
+            self._has_invocation = "invocation" in {r[1] for r in db.execute("PRAGMA table_info(samples)")}
+            self._has_invocations_table = "invocations" in tables
         except sqlite3.DatabaseError as exc:
             raise UserError(f"{db_path}: corrupt points database ({exc})") from None
         self._db = db
@@ -193,25 +211,31 @@ class RunDir:
         self.close()
 
     # ----------------------------------------------------------------- writing
-    def write_point(self, row: dict, samples_ms) -> None:
+    def write_point(self, row: dict, samples_ms, invocations=None) -> None:
         """Store one finished point and its raw samples in a single transaction.
 
         The row is keyed by row["point_id"]; writing the same point_id again
-        replaces both the row and its samples. The CSV/Parquet copies are
+        replaces both the row and its samples. invocations: the invocation index of
+        each sample (all 0 when omitted). The CSV/Parquet copies are
         regenerated afterwards (they are conveniences; SQLite is the truth).
         """
         pid = row.get("point_id")
         if not pid:
             raise ValueError("row has no point_id")
         blob = json.dumps({k: _clean(v) for k, v in row.items()}, default=_json_default)
-        samples = [(pid, i, float(ms)) for i, ms in enumerate(samples_ms or [])]
+        samples_ms = list(samples_ms or [])
+        index = [0] * len(samples_ms) if invocations is None else [int(k) for k in invocations]
+        if len(index) != len(samples_ms):
+            raise ValueError("one invocation index per sample")
+        samples = [(pid, i, float(ms), k) for i, (ms, k) in enumerate(zip(samples_ms, index))]
         db = self._db
+        self._add_invocation_column()
         try:
             db.execute("BEGIN IMMEDIATE")
             seq = db.execute("SELECT COALESCE(MAX(seq), 0) + 1 FROM points").fetchone()[0]
             db.execute("INSERT OR REPLACE INTO points (point_id, seq, row) VALUES (?, ?, ?)", (pid, seq, blob))
             db.execute("DELETE FROM samples WHERE point_id = ?", (pid,))
-            db.executemany("INSERT INTO samples (point_id, i, ms) VALUES (?, ?, ?)", samples)
+            db.executemany("INSERT INTO samples (point_id, i, ms, invocation) VALUES (?, ?, ?, ?)", samples)
             db.execute("COMMIT")
         except sqlite3.Error as exc:
             if db.in_transaction:
@@ -226,6 +250,49 @@ class RunDir:
         self._copies_stale = True
         if time.monotonic() - self._copies_at >= max(1.0, 10 * self._copies_cost):
             self._export_tables()
+
+    def _add_invocation_column(self) -> None:
+        """A run started before replicated invocations gains the column when it is resumed."""
+        if not self._has_invocation:
+            self._db.execute("ALTER TABLE samples ADD COLUMN invocation INTEGER NOT NULL DEFAULT 0")
+            self._has_invocation = True
+
+    def write_invocation(self, point_id: str, invocation: int, result: dict) -> None:
+        """Store one worker process's result (PointResult.to_dict()) the moment it finishes."""
+        blob = json.dumps(result, default=_json_default)
+        try:
+            if not self._has_invocations_table:
+                self._db.executescript(_INVOCATIONS_SQL)
+                self._has_invocations_table = True
+            self._db.execute("INSERT OR REPLACE INTO invocations (point_id, invocation, status, result) "
+                             "VALUES (?, ?, ?, ?)", (point_id, int(invocation), str(result.get("status", "")), blob))
+        except sqlite3.Error as exc:
+            raise UserError(f"{self.path / DB_FILE}: cannot store invocation {invocation} of point {point_id} "
+                            f"({exc}); results stored so far are kept") from None
+
+    def invocation_results(self, point_id: str | None = None) -> dict:
+        """{point_id: {invocation: result dict}} of the stored worker processes (of one point, or all)."""
+        if not self._has_invocations_table:
+            return {}
+        sql, args = "SELECT point_id, invocation, result FROM invocations", ()
+        if point_id is not None:
+            sql, args = sql + " WHERE point_id = ?", (point_id,)
+        out: dict = {}
+        try:
+            for pid, k, blob in self._db.execute(sql + " ORDER BY point_id, invocation", args):
+                out.setdefault(pid, {})[int(k)] = json.loads(blob)
+        except (sqlite3.DatabaseError, json.JSONDecodeError) as exc:
+            raise UserError(f"{self.path / DB_FILE}: corrupt invocations table ({exc})") from None
+        return out
+
+    def clear_invocations(self, point_id: str) -> None:
+        """Forget a point's stored worker processes (before measuring a failed point again)."""
+        if self._has_invocations_table:
+            self._db.execute("DELETE FROM invocations WHERE point_id = ?", (point_id,))
+
+    def write_schedule(self, schedule: dict) -> None:
+        """The order the invocations ran in (seed and list), next to the points table."""
+        _atomic_write_bytes(self.path / SCHEDULE_FILE, json.dumps(schedule, indent=1, default=_json_default).encode())
 
     def done_ids(self) -> set[str]:
         """Ids of every point already stored (measured or failed)."""
@@ -296,12 +363,13 @@ class RunDir:
     def samples(self):
         import pandas as pd
 
+        inv = "invocation" if self._has_invocation else "0"
         try:
-            got = self._db.execute("SELECT point_id, i, ms FROM samples ORDER BY point_id, i").fetchall()
+            got = self._db.execute(f"SELECT point_id, i, ms, {inv} FROM samples ORDER BY point_id, i").fetchall()
         except sqlite3.DatabaseError as exc:
             raise UserError(f"{self.path / DB_FILE}: corrupt points database ({exc})") from None
-        df = pd.DataFrame(got, columns=["point_id", "i", "ms"])
-        return df.astype({"point_id": "object", "i": "int64", "ms": "float64"})
+        df = pd.DataFrame(got, columns=["point_id", "i", "ms", "invocation"])
+        return df.astype({"point_id": "object", "i": "int64", "ms": "float64", "invocation": "int64"})
 
     # ----------------------------------------------------------------- copies
     def _export_tables(self) -> None:
@@ -345,7 +413,8 @@ def rows_to_frame(rows: list[dict]):
         else:
             df[col] = pd.to_numeric(df[col], errors="coerce").astype("float64")
     # Config knobs are whole numbers; keep them integral when every row has them.
-    for col in ("size", "proposals", "intra_threads", "inter_threads", "affinity", "concurrency", "n_samples"):
+    for col in ("size", "proposals", "intra_threads", "inter_threads", "affinity", "concurrency", "n_samples",
+                "invocations", "invocations_failed"):
         if len(df) and df[col].notna().all():
             df[col] = df[col].astype("int64")
     for col in extra:
@@ -374,7 +443,7 @@ def load_run(path):
 
 
 def load_samples(path):
-    """Raw latency samples of a run: DataFrame[point_id, i, ms]."""
+    """Raw latency samples of a run: DataFrame[point_id, i, ms, invocation] (invocation 0 in older runs)."""
     with RunDir.open(path) as rd:
         return rd.samples()
 
