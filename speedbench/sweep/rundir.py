@@ -223,7 +223,7 @@ class RunDir:
         if not pid:
             raise ValueError("row has no point_id")
         blob = json.dumps({k: _clean(v) for k, v in row.items()}, default=_json_default)
-        samples_ms = list(samples_ms or [])
+        samples_ms = [] if samples_ms is None else list(samples_ms)
         index = [0] * len(samples_ms) if invocations is None else [int(k) for k in invocations]
         if len(index) != len(samples_ms):
             raise ValueError("one invocation index per sample")
