@@ -69,9 +69,9 @@ def through_speedbench(graph: str, invocations: int) -> dict:
     from speedbench.measure import Point, Policy
     from speedbench.measure.launch import measure_invocations
 
-    from speedbench.data import make_scene_image
+    from speedbench.data.scenes import render_scene, scene_rng
 
-    images = [make_scene_image(seed=i) for i in range(4)]
+    images = [render_scene(scene_rng(7, "heldout", i))[0] for i in range(4)]
     policy = Policy(warmup_min=3, warmup_max=20, min_reps=30, max_reps=60, max_seconds=2.0,
                     profile_stages=False)
     out = {}

@@ -196,3 +196,20 @@ def test_measure_invocations_in_real_worker_processes(tmp_path):
     failed = measure_invocations(bad, img, policy, invocations=2, timeout_s=60, settle_s=0.0)
     assert not failed.ok and failed.to_row()["invocations_failed"] == 2
     assert "invocation 1: raised ValueError" in failed.to_row()["invocation_errors"]
+
+
+def test_invocation_order_is_round_robin_shuffled_seeded_and_resumable():
+    from speedbench.sweep.schedule import invocation_order
+
+    ids = [f"p{k}" for k in range(8)]
+    order = invocation_order(ids, 3, seed=5)
+    assert sorted(order) == sorted((p, r) for p in ids for r in range(3))       # each invocation once
+    rounds = [r for _, r in order]
+    assert rounds == sorted(rounds)                                            # round r before round r + 1
+    perms = [[p for p, r in order if r == k] for k in range(3)]
+    assert perms[0] != ids and len({tuple(x) for x in perms}) == 3            # shuffled, anew each round
+    assert invocation_order(ids, 3, seed=5) == order != invocation_order(ids, 3, seed=6)
+    done = {"p0": {0, 1}, "p3": {2}}
+    rest = invocation_order(ids, 3, seed=5, done=done)
+    assert rest == [x for x in order if x[1] not in done.get(x[0], ())]
+    assert invocation_order(ids, {**{p: 1 for p in ids}, "p1": 2}, seed=0)[-1] == ("p1", 1)
