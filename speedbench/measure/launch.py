@@ -75,6 +75,8 @@ def signal_reason(returncode: int) -> str:
 # Pause between two worker processes, so the next one does not start while the last one's
 # exit (freeing its memory, the OS reclaiming its pages) still takes a core. See README, method.
 SETTLE_S = 0.5
+# The worker's invocation index, in its environment (the synthetic backend can fail on one of them).
+INVOCATION_VAR = "SPEEDBENCH_INVOCATION"
 
 
 def measure_point(point: Point, images, policy: Policy | None = None, timeout_s: float = 600,
@@ -84,7 +86,7 @@ def measure_point(point: Point, images, policy: Policy | None = None, timeout_s:
     invocation: the index this process has among the point's invocations; every sample
     of the result carries it (result.measurement.invocation).
     """
-    result = _measure_once(point, images, policy, timeout_s)
+    result = _measure_once(point, images, policy, timeout_s, invocation)
     result.extra["invocation"] = int(invocation)
     m = result.measurement
     if m is not None:
@@ -113,7 +115,7 @@ def measure_invocations(point: Point, images, policy: Policy | None = None, invo
     return combine_invocations(results)
 
 
-def _measure_once(point: Point, images, policy: Policy | None, timeout_s: float) -> PointResult:
+def _measure_once(point: Point, images, policy: Policy | None, timeout_s: float, invocation: int = 0) -> PointResult:
     policy = policy or Policy()
     point.validate()
     policy.validate()
@@ -132,7 +134,8 @@ def _measure_once(point: Point, images, policy: Policy | None, timeout_s: float)
         (tmp / "spec.json").write_text(json.dumps(spec))
         with open(tmp / "stderr.txt", "wb") as err:
             proc = subprocess.Popen([sys.executable, "-m", "speedbench.measure.worker", str(tmp / "spec.json")],
-                                    env=thread_env(point), stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
+                                    env={**thread_env(point), INVOCATION_VAR: str(int(invocation))},
+                                    stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
                                     stderr=err, start_new_session=True)
             timed_out = False
             try:

@@ -294,6 +294,15 @@ class RunDir:
         """The order the invocations ran in (seed and list), next to the points table."""
         _atomic_write_bytes(self.path / SCHEDULE_FILE, json.dumps(schedule, indent=1, default=_json_default).encode())
 
+    def schedule(self) -> dict | None:
+        """The recorded invocation order (schedule.json), or None before the first one."""
+        try:
+            return json.loads((self.path / SCHEDULE_FILE).read_text())
+        except FileNotFoundError:
+            return None
+        except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+            raise UserError(f"{self.path / SCHEDULE_FILE}: corrupt schedule ({exc})") from None
+
     def done_ids(self) -> set[str]:
         """Ids of every point already stored (measured or failed)."""
         return {r[0] for r in self._db.execute("SELECT point_id FROM points")}

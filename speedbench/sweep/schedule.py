@@ -11,6 +11,7 @@ hierarchical bootstrap counts, instead of as a bias of one point.
 from __future__ import annotations
 
 import secrets
+import time
 
 import numpy as np
 
@@ -38,3 +39,65 @@ def invocation_order(point_ids, invocations, seed: int, done=None) -> list[tuple
             if r < counts[p] and r not in done.get(p, ()):
                 order.append((p, r))
     return order
+
+
+def run_interleaved(rd, points, invocations: int, measure, finish, settle_s: float,
+                    on_start=None, on_invocation=None, on_point=None) -> dict:
+    """Run the invocations of `points` (K = 1 points not yet complete in `rd`) round-robin.
+
+    measure(planned, index) -> PointResult of one worker process, or a str: the point cannot
+    be measured at all (its graph failed); it then gets its failed row at once.
+    finish(planned, results or reason) -> (row, samples_ms, invocation index per sample).
+    Each invocation's result is stored the moment it finishes (rd.write_invocation), the
+    point's row once its last invocation is in. Stored invocations are reused (resume):
+    only the missing ones run, in the places the run's seeded order gives them. The seed
+    and the order are recorded in the run directory (schedule.json).
+    Returns counts {"ok": n, "failed": n} of the points written.
+    """
+    from speedbench.measure.result import PointResult
+
+    ids = [p.point_id for p in points]
+    by_id = {p.point_id: p for p in points}
+    stored = {pid: got for pid, got in rd.invocation_results().items() if pid in by_id}
+    previous = rd.schedule()
+    seed = int(previous["seed"]) if previous and "seed" in previous else new_seed()
+    done = {pid: set(got) for pid, got in stored.items()}
+    order = invocation_order(ids, invocations, seed, done)
+    rd.write_schedule({"seed": seed, "invocations": invocations, "settle_s": settle_s,
+                       "order": (previous or {}).get("order", []) + [list(x) for x in order]})
+    results = {pid: [PointResult.from_dict(d) for _, d in sorted(got.items())] for pid, got in stored.items()}
+    closed: set = set()
+    counts = {"ok": 0, "failed": 0}
+
+    def close(planned, what) -> None:
+        row, samples, index = finish(planned, what)
+        rd.write_point(row, samples, index)
+        closed.add(planned.point_id)
+        counts["ok" if row.get("status") == "ok" else "failed"] += 1
+        if on_point is not None:
+            on_point(planned, row)
+
+    for pid in ids:     # complete already (killed between its last invocation and its row)
+        if len(results.get(pid, ())) >= invocations:
+            close(by_id[pid], results[pid])
+    first = True
+    for pid, index in order:
+        if pid in closed:
+            continue
+        planned = by_id[pid]
+        if not first and settle_s > 0:
+            time.sleep(settle_s)
+        first = False
+        if on_start is not None:
+            on_start(planned, index)
+        got = measure(planned, index)
+        if isinstance(got, str):
+            close(planned, got)
+            continue
+        rd.write_invocation(pid, index, got.to_dict())
+        results.setdefault(pid, []).append(got)
+        if on_invocation is not None:
+            on_invocation(planned, index, got)
+        if len(results[pid]) >= invocations:
+            close(planned, results[pid])
+    return counts

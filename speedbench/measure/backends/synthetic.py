@@ -23,6 +23,8 @@ model "synthetic:work_ms=5,alloc_mib=300". Keys:
                out-of-memory worker does (MemoryError)
 - fail         "abort" | "segv" | "hang" | "raise" | "sigkill"
 - fail_at      "load" (default) or "run"; fail_after: runs before failing at "run"
+- fail_invocation  fail (as `fail` says, "raise" by default) only in the worker process of this
+               invocation index (the launcher puts it in SPEEDBENCH_INVOCATION)
 - stages       {"backbone": 0.6, ...} fractions of work_ms reported by profile()
 """
 from __future__ import annotations
@@ -38,7 +40,7 @@ DEFAULT_STAGES = {"preprocess": 0.1, "backbone": 0.5, "head": 0.3, "postprocess"
 
 
 KEYS = ("work_ms", "delay_ms", "mode", "jitter", "process_cov", "seed", "alloc_mib", "load_mib", "limit_mib",
-        "fail", "fail_at", "fail_after", "stages")
+        "fail", "fail_at", "fail_after", "fail_invocation", "stages")
 
 
 def settings(point) -> dict:
@@ -127,6 +129,11 @@ class Runner:
         self.rng = np.random.default_rng(int(self.opts.get("seed", 0)))
         self.offset = process_offset(self.opts, np.random.default_rng())   # fresh entropy per process
         self.runs = 0
+        if "fail_invocation" in self.opts:
+            if os.environ.get("SPEEDBENCH_INVOCATION") != str(int(self.opts["fail_invocation"])):
+                self.opts.pop("fail", None)        # not this process's turn
+            else:
+                self.opts.setdefault("fail", "raise")
         fail = self.opts.get("fail")
         if fail and self.opts.get("fail_at", "load") == "load":
             _fail(fail)
