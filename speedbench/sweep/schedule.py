@@ -41,9 +41,10 @@ def invocation_order(point_ids, invocations, seed: int, done=None) -> list[tuple
     return order
 
 
-def run_interleaved(rd, points, invocations: int, measure, finish, settle_s: float,
+def run_interleaved(rd, points, invocations: int, measure, finish, settle_s: float, complete=(),
                     on_start=None, on_invocation=None, on_point=None) -> dict:
-    """Run the invocations of `points` (K = 1 points not yet complete in `rd`) round-robin.
+    """Run the invocations of `points` (the plan's K = 1 points) round-robin; `complete`: ids of
+    points whose rows are stored and stay (resume), so nothing of theirs runs.
 
     measure(planned, index) -> PointResult of one worker process, or a str: the point cannot
     be measured at all (its graph failed); it then gets its failed row at once.
@@ -58,13 +59,18 @@ def run_interleaved(rd, points, invocations: int, measure, finish, settle_s: flo
 
     ids = [p.point_id for p in points]
     by_id = {p.point_id: p for p in points}
-    stored = {pid: got for pid, got in rd.invocation_results().items() if pid in by_id}
-    previous = rd.schedule()
-    seed = int(previous["seed"]) if previous and "seed" in previous else new_seed()
+    complete = set(complete)
+    stored = {pid: got for pid, got in rd.invocation_results().items() if pid in by_id and pid not in complete}
+    previous = rd.schedule() or {}
+    seed = int(previous.get("seed", new_seed()))
     done = {pid: set(got) for pid, got in stored.items()}
+    done.update({pid: set(range(invocations)) for pid in complete})
     order = invocation_order(ids, invocations, seed, done)
-    rd.write_schedule({"seed": seed, "invocations": invocations, "settle_s": settle_s,
-                       "order": (previous or {}).get("order", []) + [list(x) for x in order]})
+    if previous.get("seed") == seed and previous.get("invocations") == invocations:
+        rd.write_schedule({**previous, "resumed": int(previous.get("resumed", 0)) + 1})
+    else:
+        rd.write_schedule({"seed": seed, "invocations": invocations, "settle_s": settle_s,
+                           "order": [list(x) for x in invocation_order(ids, invocations, seed)]})
     results = {pid: [PointResult.from_dict(d) for _, d in sorted(got.items())] for pid, got in stored.items()}
     closed: set = set()
     counts = {"ok": 0, "failed": 0}
@@ -77,8 +83,8 @@ def run_interleaved(rd, points, invocations: int, measure, finish, settle_s: flo
         if on_point is not None:
             on_point(planned, row)
 
-    for pid in ids:     # complete already (killed between its last invocation and its row)
-        if len(results.get(pid, ())) >= invocations:
+    for pid in ids:     # all invocations in, no row yet (killed between the last one and the row)
+        if pid not in complete and len(results.get(pid, ())) >= invocations:
             close(by_id[pid], results[pid])
     first = True
     for pid, index in order:
