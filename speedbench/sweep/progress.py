@@ -19,7 +19,7 @@ class Progress:
         if not quiet:
             from tqdm import tqdm
 
-            what = "points" if steps is None else "worker runs"
+            what = "points" if steps is None or steps == total else "worker runs"
             self.bar = tqdm(total=total if steps is None else steps, file=stream, unit="pt", dynamic_ncols=True,
                             bar_format="{l_bar}{bar}| {n_fmt}/{total_fmt} " + what +
                                        " [{elapsed}<{remaining}]{postfix}")

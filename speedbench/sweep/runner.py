@@ -12,11 +12,13 @@ import time
 from pathlib import Path
 
 from speedbench.errors import UserError
+from speedbench.measure.launch import SETTLE_S
 from speedbench.sweep import steps
 from speedbench.sweep.plan import Plan, expand_plan
 from speedbench.sweep.profile import Profile, load_profile
 from speedbench.sweep.progress import Progress
 from speedbench.sweep.rundir import RunDir
+from speedbench.sweep.schedule import run_interleaved
 
 
 def run_sweep(profile_path, out_dir=None, resume: bool = False, quiet: bool = False,
@@ -107,29 +109,50 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
     timing_images = steps.timing_images(dataset, profile.timing_images)
     policy = steps.make_policy(profile.repetitions)
 
-    progress = Progress(len(todo), quiet=quiet, stream=stream)
+    reps = profile.invocations
+    one_stream = [p for p in plan.points if p.config["concurrency"] == 1]
+    throughput = [p for p in todo if p.config["concurrency"] != 1]
+    steps_total = reps * (len(todo) - len(throughput)) + len(throughput)
+    progress = Progress(len(todo), quiet=quiet, stream=stream, steps=steps_total)
+    rd.update_meta(invocations=reps)
+    if retry_failed:
+        for pid in rd.failed_ids():
+            rd.clear_invocations(pid)
     graph_info: dict = {}
-    # One-stream throughput of each configuration, for the scaling efficiency of K > 1 points.
-    single_fps = {_stream_key(r): single_stream_fps(r) for r in rd.rows()
-                  if r.get("concurrency") == 1 and r.get("status") == "ok"}
+
+    def info_of(point):
+        # The synthetic backend runs no graph: an export failure does not concern it.
+        return steps.GraphInfo() if point.config["backend"] == "synthetic" else graph_info[point.graph_key]
+
     try:
+        # Exports and accuracy first: nothing heavy runs in this process while a worker measures.
         for point in todo:
             key = point.graph_key
             if key not in graph_info and point.config["backend"] != "synthetic":
                 progress.status(f"export {key[0]} {key[2]}px")
                 graph_info[key] = steps.prepare_graph(point, profile, dataset, rd, cache, progress)
                 _note_thread_check(rd, key, graph_info[key])
-            # The synthetic backend runs no graph: an export failure does not concern it.
-            synthetic = point.config["backend"] == "synthetic"
-            info = steps.GraphInfo() if synthetic else graph_info[key]
+        got = run_interleaved(
+            rd, one_stream, reps, settle_s=SETTLE_S, complete=done,
+            measure=lambda p, i: steps.measure_invocation(p, info_of(p), profile, timing_images, policy, i),
+            finish=lambda p, what: steps.invocations_row(p, info_of(p), profile, what),
+            on_start=lambda p, i: progress.start(f"{p.label} #{i + 1}/{reps}"),
+            on_invocation=lambda p, i, result: progress.advance(),
+            on_point=lambda p, row: progress.done(p.label, row))
+        for k in ("ok", "failed"):
+            counts[k] += got[k]
+        # One-stream throughput of each configuration, for the scaling efficiency of K > 1 points
+        # (measured once each, after every K = 1 point).
+        single_fps = {_stream_key(r): single_stream_fps(r) for r in rd.rows()
+                      if r.get("concurrency") == 1 and r.get("status") == "ok"}
+        for point in throughput:
             progress.start(point.label)
             t0 = time.monotonic()
-            row, samples = steps.measure(point, info, profile, timing_images, policy,
+            row, samples = steps.measure(point, info_of(point), profile, timing_images, policy,
                                          baseline_fps=single_fps.get(_stream_key(point.config)))
-            if point.config["concurrency"] == 1 and row.get("status") == "ok":
-                single_fps[_stream_key(point.config)] = single_stream_fps(row)
             row["wall_s"] = round(time.monotonic() - t0, 3)
             rd.write_point(row, samples)
+            progress.advance()
             counts["ok" if row.get("status") == "ok" else "failed"] += 1
             progress.done(point.label, row)
     finally:
@@ -163,7 +186,7 @@ def single_stream_fps(row: dict):
 
 def _stream_key(config: dict) -> tuple:
     return tuple(config.get(c) for c in ("model", "weights", "size", "proposals", "backend", "intra_threads",
-                                          "inter_threads", "exec_mode", "opt_level", "affinity"))
+                                          "inter_threads", "exec_mode", "opt_level", "affinity", "spin_wait"))
 
 
 def orphaned_workers() -> int:

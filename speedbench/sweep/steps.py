@@ -10,6 +10,7 @@ import json
 import math
 import os
 import shutil
+import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -291,6 +292,50 @@ def measure(planned, info: GraphInfo, profile, images, policy, baseline_fps=None
                    "reason": f"{type(exc).__name__}: {_one_line(exc)}"}
     row.update(merge_columns(planned, info, profile))
     return row, samples
+
+
+def measure_invocation(planned, info: GraphInfo, profile, images, policy, index: int):
+    """One worker process (invocation `index`) of a one-stream point: its PointResult, or a str
+    saying why no worker could run (the graph failed; a harness error). Only invocation 0 runs
+    the stage profile: the others time only."""
+    import dataclasses
+
+    from speedbench.measure import Point
+    from speedbench.measure.launch import measure_point
+
+    c = planned.config
+    if not info.ok and c["backend"] != "eager":
+        return info.reason
+    point = Point(**c, graph=info.path, options=dict(profile.synthetic) if c["backend"] == "synthetic" else {})
+    if index:
+        policy = dataclasses.replace(policy, profile_stages=False)
+    try:
+        t0 = time.monotonic()
+        result = measure_point(point, images, policy, profile.timeout_s, invocation=index)
+        result.extra["wall_s"] = round(time.monotonic() - t0, 3)
+        return result
+    except UserError as exc:
+        return str(exc)
+    except Exception as exc:  # a harness bug on one point must not cost the others
+        return f"{type(exc).__name__}: {_one_line(exc)}"
+
+
+def invocations_row(planned, info: GraphInfo, profile, outcome) -> tuple[dict, list, list]:
+    """(row, samples, invocation index per sample) of a one-stream point from its invocations
+    (PointResults), or a failed row from the reason none ran."""
+    from speedbench.measure.result import combine_invocations
+
+    if isinstance(outcome, str):
+        row = {**planned.config, "point_id": planned.point_id, "status": "failed", "reason": outcome}
+        row.update(merge_columns(planned, info, profile))
+        return row, [], []
+    result = combine_invocations(list(outcome))
+    row = result.to_row()
+    row.update(_extra_columns(result.extra))
+    row["wall_s"] = round(sum(float(r.extra.get("wall_s", 0.0)) for r in outcome), 3)
+    row.update(merge_columns(planned, info, profile))
+    m = result.measurement
+    return row, ([] if m is None else m.samples_ms.tolist()), ([] if m is None else m.invocation.tolist())
 
 
 def _extra_columns(extra: dict) -> dict:
