@@ -135,11 +135,18 @@ def run_point(text: str, source: str, label: str, planned, baseline=None, baseli
         images = steps.timing_images(dataset, profile.timing_images)
         policy = steps.make_policy(profile.repetitions)
         info = _graph(planned, profile, dataset, label) if needs_data else steps.GraphInfo()
-        row, samples = steps.measure(planned, info, profile, images, policy, baseline_fps=baseline_fps)
+        index = None
+        if planned.config["concurrency"] == 1:
+            # [repetitions] invocations: R fresh worker processes, one after the other on this host.
+            row, samples, index = steps.invocations_row(planned, info, profile,
+                                                        _invocations(planned, info, profile, images, policy))
+        else:
+            row, samples = steps.measure(planned, info, profile, images, policy, baseline_fps=baseline_fps)
     except UserError as exc:
-        row, samples = _failed(planned, profile, str(exc)), []
+        row, samples, index = _failed(planned, profile, str(exc)), [], None
     except Exception as exc:  # a harness bug on one point must not cost the others
-        row, samples = _failed(planned, profile, f"{type(exc).__name__}: {' '.join(str(exc).split())[:300]}"), []
+        row, samples, index = (_failed(planned, profile, f"{type(exc).__name__}: {' '.join(str(exc).split())[:300]}"),
+                               [], None)
     finished = time.time()
     if info is not None and info.path:
         row["host_graph"] = info.path   # the graph stays on the host (its export cache)
@@ -148,7 +155,23 @@ def run_point(text: str, source: str, label: str, planned, baseline=None, baseli
     row["started_unix"], row["finished_unix"] = round(started, 3), round(finished, 3)
     if notes:
         row["note"] = "; ".join(([row["note"]] if row.get("note") else []) + notes)
-    return {"row": row, "samples": [float(x) for x in samples]}
+    return {"row": row, "samples": [float(x) for x in samples], "invocations": index}
+
+
+def _invocations(planned, info, profile, images, policy):
+    """The point's R invocations (PointResults), or the reason none could run."""
+    from speedbench.measure.launch import SETTLE_S
+    from speedbench.sweep import steps
+
+    results = []
+    for i in range(profile.invocations):
+        if i:
+            time.sleep(SETTLE_S)
+        got = steps.measure_invocation(planned, info, profile, images, policy, i)
+        if isinstance(got, str):
+            return got
+        results.append(got)
+    return results
 
 
 def _graph(planned, profile, dataset, label):
