@@ -226,14 +226,15 @@ def estimate_seconds(plan: Plan, profile: Profile, done_ids=(), n_images: int | 
                      cached_graphs=(), point_wall_s: float | None = None) -> dict:
     """Rough wall-time estimate for the points still to measure (a rule of thumb).
 
-    Per point: a worker start plus the repetition budget, or point_wall_s when
-    the run already measured points (their median wall time); per distinct
+    Per worker process (invocation): a worker start plus the repetition budget, or per
+    point point_wall_s when the run already measured points (their median wall time); per distinct
     graph still needed: one export and one accuracy pass over the dataset.
     """
     todo = plan.missing(done_ids)
     budget = profile.repetitions.get("max_seconds", DEFAULT_MAX_SECONDS)
-    per_point = point_wall_s if point_wall_s else WORKER_START_S + budget
-    measure_s = len(todo) * per_point
+    # A one-stream point runs in `invocations` worker processes; a stored row's wall_s covers all of them.
+    runs = sum(profile.invocations if p.config["concurrency"] == 1 else 1 for p in todo)
+    measure_s = len(todo) * point_wall_s if point_wall_s else runs * (WORKER_START_S + budget)
     graphs = []
     for p in todo:
         if p.graph_key not in graphs and p.config["backend"] != "synthetic":
