@@ -65,9 +65,9 @@ class PlannedPoint:
         for c in ("size", "proposals", "intra_threads", "inter_threads", "affinity"):
             config[c] = int(config[c] or 0)
         config["concurrency"] = int(config["concurrency"] or 1)
-        for c in ("exec_mode", "opt_level"):
+        for c in ("exec_mode", "opt_level", "spin_wait"):
             if not config[c]:
-                config.pop(c)   # Point's defaults (ORT) or blank (other backends)
+                config.pop(c)   # Point's defaults (ORT; spin_wait: ORT's own, as old rows ran) or blank (others)
         point = Point(**config)
         return cls(point=point, family=row.get("family") or "",
                    graph_key=GraphKey(point.model, point.weights, point.size, point.proposals))
