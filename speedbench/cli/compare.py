@@ -5,6 +5,8 @@ with no configuration in common: a gate must not pass on an empty comparison).
 """
 from __future__ import annotations
 
+from speedbench.cli.args import int_in
+
 
 def add_parser(subparsers):
     p = subparsers.add_parser(
@@ -14,27 +16,32 @@ def add_parser(subparsers):
                     "environment diff. Exit 0: no regression, 1: regression, 2: usage or input error.")
     p.add_argument("base", metavar="BASE_RUN", help="run directory before the change")
     p.add_argument("new", metavar="NEW_RUN", help="run directory after the change")
-    p.add_argument("--threshold", default="5%", type=_fraction,
+    p.add_argument("--threshold", default="5%", type=lambda t: _fraction(t, 0, 10, "[0, 10] (0%..1000%)"),
                    help="slowdown tolerated before a verdict of slower, e.g. 5%% or 0.05 (default 5%%)")
-    p.add_argument("--confidence", default=0.95, type=_fraction, help="confidence of the intervals (default 0.95)")
+    p.add_argument("--confidence", default=0.95, type=lambda t: _fraction(t, 0.5, 0.9999, "[0.5, 0.9999]"),
+                   help="confidence of the intervals, 0.5..0.9999 (default 0.95)")
     p.add_argument("--format", default="text", choices=["text", "md", "json"], help="output format")
     p.add_argument("--fail-on-drift", action="store_true",
                    help="count changed detections on the held-out images as a regression")
-    p.add_argument("--seed", type=int, default=0, help="bootstrap seed (default 0)")
+    p.add_argument("--seed", type=int_in(0, 2**32 - 1), default=0, help="bootstrap seed (default 0)")
     p.add_argument("--gate-single-process", action="store_true",
                    help="also fail on latency of points measured in one worker process on either side "
                         "(by default reported, not gated: one process cannot show how far a rerun moves)")
     p.set_defaults(run=run)
 
 
-def _fraction(text: str) -> float:
+def _fraction(text: str, lo: float = 0.0, hi: float = 10.0, span: str = "[0, 10]") -> float:
     import argparse
+    import math
 
     s = str(text).strip()
     try:
-        return float(s[:-1]) / 100 if s.endswith("%") else float(s)
+        value = float(s[:-1]) / 100 if s.endswith("%") else float(s)
     except ValueError:
         raise argparse.ArgumentTypeError(f"expected a fraction like 0.05 or a percentage like 5%, not {text!r}")
+    if not (math.isfinite(value) and lo <= value <= hi):
+        raise argparse.ArgumentTypeError(f"must be in {span}, not {text}")
+    return value
 
 
 def run(args) -> int:

@@ -1,6 +1,8 @@
 """speedbench demo: run the demo study offline and write its frontier plot and report."""
 from __future__ import annotations
 
+from speedbench.cli.args import float_in, output_dir
+
 
 def add_parser(subparsers):
     p = subparsers.add_parser(
@@ -8,8 +10,8 @@ def add_parser(subparsers):
         description="Generate held-out yard scenes if absent, run profiles/demo.toml with the trained demo "
                     "zoo, then write the accuracy-latency frontier plot and the review report. Offline; "
                     "about 10 minutes on 2 cores. Run it again to resume an interrupted demo.")
-    p.add_argument("-o", "--output", metavar="RUN_DIR", help="run directory (default: runs/demo)")
-    p.add_argument("--budget-ms", type=float, default=None,
+    p.add_argument("-o", "--output", metavar="RUN_DIR", type=output_dir, help="run directory (default: runs/demo)")
+    p.add_argument("--budget-ms", type=float_in(0, 1e6, open_lo=True), default=None,
                    help="latency budget per image for the report's pick (default: the report's own choice)")
     p.add_argument("--dry-run", action="store_true", help="print the demo plan and a time estimate only")
     p.add_argument("-q", "--quiet", action="store_true", help="one plain line per point instead of a progress bar")

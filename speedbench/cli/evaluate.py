@@ -4,6 +4,8 @@ from __future__ import annotations
 import json
 import sys
 
+from speedbench.cli.args import int_in, output_file
+
 FEW_BOXES = 10  # per-class AP from fewer ground-truth boxes than this is flagged (common practice)
 
 
@@ -18,10 +20,12 @@ def add_parser(subparsers):
     p.add_argument("--graph", help="ONNX graph to run over the set instead of reading DETS")
     p.add_argument("--model", help="zoo id whose class names label the graph's outputs (with --graph)")
     p.add_argument("--classes", help="comma-separated class names by label index (with --graph)")
-    p.add_argument("--threads", type=int, default=1, help="intra-op threads for --graph (default 1)")
-    p.add_argument("--save-dets", metavar="PATH", help="write the graph's detections here (with --graph)")
-    p.add_argument("--bootstrap", type=int, default=1000, help="bootstrap resamples (0 = no interval)")
-    p.add_argument("--seed", type=int, default=0, help="seed of the bootstrap (default 0)")
+    p.add_argument("--threads", type=int_in(0, 256), default=1, help="intra-op threads for --graph, 0..256 (default 1)")
+    p.add_argument("--save-dets", metavar="PATH", type=output_file(".json"),
+                   help="write the graph's detections here (.json, with --graph)")
+    p.add_argument("--bootstrap", type=int_in(0, 100_000), default=1000,
+                   help="bootstrap resamples, 0..100000 (0 = no interval)")
+    p.add_argument("--seed", type=int_in(0, 2**32 - 1), default=0, help="seed of the bootstrap (default 0)")
     p.add_argument("--json", action="store_true", help="print one JSON object")
     p.set_defaults(run=run)
 

@@ -1,6 +1,8 @@
 """`speedbench export MODEL`: export one configuration to ONNX and verify it against torch eager."""
 from __future__ import annotations
 
+from speedbench.cli.args import int_in, output_file
+
 
 def add_parser(subparsers):
     p = subparsers.add_parser(
@@ -9,14 +11,14 @@ def add_parser(subparsers):
                     "the graph is run on structured images in torch and ONNX Runtime and the detections "
                     "compared. Exits 1 if the export fails or diverges.")
     p.add_argument("model", help="zoo model id (speedbench models)")
-    p.add_argument("--size", type=int, default=None, help="input size the model's transform resizes to (px); "
+    p.add_argument("--size", type=int_in(32, 4096), default=None, help="input size the model's transform resizes to (px); "
                    "default: the model's native size")
-    p.add_argument("--proposals", type=int, default=None, help="proposal / candidate budget; default: the model's")
+    p.add_argument("--proposals", type=int_in(1, 10_000), default=None, help="proposal / candidate budget; default: the model's")
     p.add_argument("--weights", default=None, help="none | torchvision | demo | file:PATH (default: the model's)")
-    p.add_argument("--num-classes", type=int, default=None,
+    p.add_argument("--num-classes", type=int_in(1, 100_000), default=None,
                    help="classes of a file:PATH checkpoint (default: read off the checkpoint)")
-    p.add_argument("--opset", type=int, default=17, help="ONNX opset (default 17)")
-    p.add_argument("-o", "--out", default=None, help="also copy the verified graph here (record next to it)")
+    p.add_argument("--opset", type=int_in(7, 30), default=17, help="ONNX opset (default 17)")
+    p.add_argument("-o", "--out", default=None, type=output_file(".onnx"), help="also copy the verified graph here (record next to it)")
     p.add_argument("--cache-dir", default=None, help="export cache (default $SPEEDBENCH_CACHE or "
                    "~/.cache/speedbench/exports)")
     p.add_argument("--no-verify", action="store_true", help="skip the torch-vs-ONNX Runtime comparison")

@@ -1,6 +1,8 @@
 """speedbench pick RUN [RUN ...] --budget-ms X: the best configuration (and host) within a latency budget."""
 from __future__ import annotations
 
+from speedbench.cli.args import float_in, int_in
+
 
 def add_parser(subparsers):
     p = subparsers.add_parser(
@@ -13,11 +15,13 @@ def add_parser(subparsers):
     p.add_argument("run_dirs", nargs="+", metavar="RUN",
                    help="run directory written by `speedbench sweep`; several, or a parent of several "
                         "(a fleet sweep's output), to choose between hosts")
-    p.add_argument("--budget-ms", type=float, required=True, metavar="X", help="latency budget per image (ms)")
+    p.add_argument("--budget-ms", type=float_in(0, 1e6, open_lo=True), required=True, metavar="X",
+                   help="latency budget per image (ms), (0, 1e6]")
     p.add_argument("--latency", default="p50", choices=["p50", "p90", "p99"], help="statistic held to the budget")
-    p.add_argument("--threads", type=int, metavar="N", help="only configurations with N intra-op threads")
-    p.add_argument("--max-memory-mb", type=float, metavar="M", help="peak worker memory limit (MiB)")
-    p.add_argument("--min-map", type=float, metavar="A", help="minimum mAP (0-1)")
+    p.add_argument("--threads", type=int_in(0, 256), metavar="N", help="only configurations with N intra-op threads (0..256)")
+    p.add_argument("--max-memory-mb", type=float_in(0, 1e7, open_lo=True), metavar="M",
+                   help="peak worker memory limit (MiB), (0, 1e7]")
+    p.add_argument("--min-map", type=float_in(0, 1), metavar="A", help="minimum mAP, [0, 1]")
     p.add_argument("--price-table", metavar="FILE",
                    help="USD per host-hour: TOML `[prices] label = 0.34` or CSV `host,usd_per_hour`; "
                         "the pick becomes the cheapest per million frames")

@@ -13,11 +13,15 @@ def add_parser(subparsers):
     p.add_argument("run_dirs", nargs="+", metavar="RUN",
                    help="run directory with throughput rows; several, or a parent of several "
                         "(a fleet sweep's output), to size each host")
-    p.add_argument("--streams", required=True, help="number of camera streams")
-    p.add_argument("--fps", required=True, help="frames per second per stream")
-    p.add_argument("--p99-ms", default=None, help="p99 latency target per frame (ms)")
-    p.add_argument("--server-cores", default="8,16,32,64", help="server shapes in cores (default 8,16,32,64)")
-    p.add_argument("--headroom", default="0.7", help="highest planned utilisation, in (0, 1] (default 0.7)")
+    p.add_argument("--streams", required=True, help="number of camera streams, 1..1000000")
+    p.add_argument("--fps", required=True,
+                   help="frames per second per stream, 0.001..10000")
+    p.add_argument("--p99-ms", default=None,
+                   help="p99 latency target per frame (ms), (0, 1e6]")
+    p.add_argument("--server-cores", default="8,16,32,64",
+                   help="server shapes in cores, each 1..4096 (default 8,16,32,64)")
+    p.add_argument("--headroom", default="0.7",
+                   help="highest planned utilisation, in (0, 1] (default 0.7)")
     p.add_argument("--core-hour-cost", default=None,
                    help="price of one core for one hour (any currency, same for every host): cost_per_mframe = "
                         "servers x C x price / (required fps x 3600) x 1e6, C = server cores")
@@ -35,11 +39,13 @@ def run(args) -> int:
     import sys
 
     from speedbench.analyse import combine, load_prices, load_runs
-    from speedbench.analyse.sizing import size
+    from speedbench.analyse.sizing import check_args, size
 
+    shapes = [s.strip() for s in str(args.server_cores).split(",") if s.strip()]
+    # every figure checked (ranges: speedbench.analyse.sizing.check_args) before any run is read
+    check_args(args.streams, args.fps, args.p99_ms, shapes, args.headroom, args.core_hour_cost)
     prices = load_prices(args.price_table) if args.price_table else None
     data = combine(load_runs(args.run_dirs))
-    shapes = [s.strip() for s in str(args.server_cores).split(",") if s.strip()]
     table = size(data, args.streams, args.fps, p99_ms=args.p99_ms, server_cores=shapes,
                  headroom=args.headroom, core_hour_cost=args.core_hour_cost, use_frontier=not args.all,
                  prices=prices)

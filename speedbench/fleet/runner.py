@@ -196,7 +196,7 @@ class _Fleet:
             if h.out.exists() and (not h.out.is_dir() or any(h.out.iterdir())):
                 raise UserError(f"{h.out}: exists and is not an empty directory; choose another output directory")
             return
-        with RunDir.open(h.out) as rd:
+        with RunDir.open(h.out, readonly=True) as rd:
             try:
                 stored = parse_profile(rd.profile_text(), str(h.out / "profile.toml"))
             except UserError:

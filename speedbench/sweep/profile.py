@@ -4,9 +4,11 @@ Every key, with its default where it has one (the shipped profiles under
 profiles/ explain the keys they use in comments)::
 
     [run]
-    name       = "cpu-budget"     # required; names the run
-    host       = ""               # label for this machine in reports; "" = the hostname
-    output     = "runs/{name}"    # run directory; {name} and {host} are filled in
+    name       = "cpu-budget"     # required; names the run: 1..64 letters, digits, '.', '_', '-',
+                                  # starting with a letter or digit (it becomes a directory name)
+    host       = ""               # label for this machine in reports; "" = the hostname; same
+                                  # characters as name
+    output     = "runs/{name}"    # run directory; only the fields {name} and {host} are filled in
     cache      = ".speedbench-cache"  # exported graphs, generated scenes, accuracy results
     timeout_s  = 600              # per point (its worker process), seconds, 1..86400
 
@@ -16,6 +18,8 @@ profiles/ explain the keys they use in comments)::
     accuracy   = true             # evaluate mAP once per distinct graph (trained weights only)
     limit      = 0                # images used for mAP; 0 = all
     timing_images = 8             # images cycled during latency measurement, >= 1
+    max_pixels = 40000000         # refuse images with more pixels than this (width x height),
+                                  # 1..1000000000; a decompression bomb is refused by name, not decoded
 
     [sweep]                       # the global axes; each a non-empty list without repeats
     sizes       = ["native"]      # input sizes (px, 32..4096); "native" = the model's own
@@ -60,7 +64,9 @@ Relative paths are taken from the current directory. Errors are one line:
 """
 from __future__ import annotations
 
+import re
 import socket
+import string
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -70,6 +76,9 @@ from speedbench.errors import UserError
 BACKENDS = ("ort", "eager", "synthetic")
 OPT_LEVELS = ("disable", "basic", "extended", "all")
 EXEC_MODES = ("sequential", "parallel")
+NAME_RE = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,63}")   # run.name, run.host: one safe path component
+OUTPUT_FIELDS = {"name", "host"}
+DEFAULT_MAX_PIXELS = 40_000_000   # same default as speedbench.data.images.DEFAULT_MAX_PIXELS
 
 
 @dataclass(frozen=True)
@@ -114,6 +123,7 @@ class Profile:
     repetitions: dict = field(default_factory=dict)   # speedbench.measure.Policy fields
     invocations: int = 1                              # worker processes per point (R)
     synthetic: dict = field(default_factory=dict)     # options of the synthetic test backend
+    max_pixels: int = DEFAULT_MAX_PIXELS              # [dataset] max_pixels
 
     def output_dir(self) -> Path:
         return Path(self.output.format(name=self.name, host=self.host))
@@ -207,24 +217,37 @@ def parse_profile(text: str, source: str = "<profile>") -> Profile:
         doc = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise UserError(f"{source}: TOML syntax error: {exc}") from None
+    except RecursionError:
+        raise UserError(f"{source}: TOML nested too deeply; refused") from None
+    except ValueError as exc:   # e.g. an integer literal with more digits than Python converts
+        raise UserError(f"{source}: TOML value refused ({exc})") from None
     c = _Checker(source)
     c.table(doc, "", {"run", "dataset", "sweep", "models", "threads", "repetitions", "synthetic"},
             {"run", "dataset", "models", "threads"})
 
     run = c.table(doc["run"], "run", {"name", "host", "output", "cache", "timeout_s"}, {"name"})
     name = c.str_(run["name"], "run.name", allow_empty=False)
-    if any(ch in name for ch in "/\\\0"):
-        c.fail("run.name", "must not contain path separators")
-    host = c.str_(run.get("host", ""), "run.host") or socket.gethostname()
+    if not NAME_RE.fullmatch(name):
+        c.fail("run.name", f"{name[:80]!r} is not a run name: 1..64 letters, digits, '.', '_' or '-', "
+                           f"starting with a letter or digit (it names a directory)")
+    host = c.str_(run.get("host", ""), "run.host")
+    if host and not NAME_RE.fullmatch(host):
+        c.fail("run.host", f"{host[:80]!r} is not a host label: 1..64 letters, digits, '.', '_' or '-', "
+                           f"starting with a letter or digit")
+    host = host or socket.gethostname()
     output = c.str_(run.get("output", "runs/{name}"), "run.output", allow_empty=False)
     try:
-        output.format(name=name, host=host)
-    except (KeyError, IndexError, ValueError):
-        c.fail("run.output", "only {name} and {host} may be filled in")
+        fields = [(f, spec, conv) for _, f, spec, conv in string.Formatter().parse(output) if f is not None]
+    except ValueError:
+        fields = [("?", "", None)]
+    if any(f not in OUTPUT_FIELDS or spec or conv for f, spec, conv in fields):
+        c.fail("run.output", f"{output[:80]!r}: only the fields {{name}} and {{host}} may be filled in")
+    if "\0" in output or any(len(part.encode()) > 255 for part in output.split("/")):
+        c.fail("run.output", "not a usable path (a NUL character or a component longer than 255 bytes)")
     cache = c.str_(run.get("cache", ".speedbench-cache"), "run.cache", allow_empty=False)
     timeout_s = c.num(run.get("timeout_s", 600), "run.timeout_s", 1, 86400)
 
-    ds = c.table(doc["dataset"], "dataset", {"path", "scenes", "accuracy", "limit", "timing_images"})
+    ds = c.table(doc["dataset"], "dataset", {"path", "scenes", "accuracy", "limit", "timing_images", "max_pixels"})
     if ("path" in ds) == ("scenes" in ds):
         c.fail("dataset", "give exactly one of `path` or `scenes`")
     dataset_path, count, seed = None, 0, 0
@@ -237,6 +260,7 @@ def parse_profile(text: str, source: str = "<profile>") -> Profile:
     accuracy = c.bool_(ds.get("accuracy", True), "dataset.accuracy")
     limit = c.int_(ds.get("limit", 0), "dataset.limit", 0, 1_000_000)
     timing_images = c.int_(ds.get("timing_images", 8), "dataset.timing_images", 1, 10_000)
+    max_pixels = c.int_(ds.get("max_pixels", DEFAULT_MAX_PIXELS), "dataset.max_pixels", 1, 1_000_000_000)
 
     sw = c.table(doc.get("sweep", {}), "sweep", {"sizes", "proposals", "backends", "opt_levels", "concurrency"})
     sizes = c.list_(sw.get("sizes", ["native"]), "sweep.sizes", lambda v, k: _size(c, v, k))
@@ -322,7 +346,7 @@ def parse_profile(text: str, source: str = "<profile>") -> Profile:
         accuracy=accuracy, limit=limit, timing_images=timing_images, models=tuple(models),
         sizes=sizes, proposals=proposals, backends=backends, opt_levels=opt_levels,
         concurrency=concurrency, threads=tuple(threads), repetitions=repetitions,
-        invocations=invocations, synthetic=dict(synthetic),
+        invocations=invocations, synthetic=dict(synthetic), max_pixels=max_pixels,
     )
 
 

@@ -60,7 +60,12 @@ def _open_run(profile: Profile, out: Path, resume: bool) -> RunDir:
     if resume:
         rd = RunDir.open(out)
         try:
-            stored = parse_profile(rd.profile_text(), str(out / "profile.toml"))
+            text = rd.profile_text()   # a missing copy is said as such, not as "a different profile"
+        except UserError:
+            rd.close()
+            raise
+        try:
+            stored = parse_profile(text, str(out / "profile.toml"))
         except UserError:
             stored = None
         if stored is None or not same_study(stored, profile):

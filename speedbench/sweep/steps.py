@@ -26,8 +26,8 @@ def prepare_dataset(profile, cache: Path):
     from speedbench.data import load_dataset
 
     if profile.dataset_path:
-        return load_dataset(profile.dataset_path)
-    return load_dataset(scenes_path(profile, cache))
+        return load_dataset(profile.dataset_path, max_pixels=profile.max_pixels)
+    return load_dataset(scenes_path(profile, cache), max_pixels=profile.max_pixels)
 
 
 def scenes_path(profile, cache: Path) -> Path:
