@@ -117,6 +117,12 @@ RESULT_COLUMNS = (
     *[f"stage_{s}_profiled_ms" for s in STAGES],  # the profiled pass's own ms (inflated by the profiler)
     "stage_method",
     "profiled_ms", "profiling_overhead",
+    # opt-in check without the profiler: each stage's sub-graph timed alone (median ms), their
+    # sum, the whole graph timed alongside, and sum / whole - 1
+    *[f"stage_{s}_subgraph_ms" for s in STAGES],
+    "subgraph_sum_ms", "subgraph_whole_ms", "subgraph_residual",
+    *[f"stage_{s}_gmacs" for s in STAGES],       # counted multiply-accumulates per image (export facts)
+    "matmul_peak_gmac_s",      # this host's dense fp32 matmul peak at the point's thread count (meta)
     "rss_imports_mib", "rss_loaded_mib", "rss_peak_mib", "model_file_mib",
     "params", "gmacs",
     "map", "map50", "map75", "map_small", "map_medium", "map_large", "mar_100",
@@ -143,6 +149,14 @@ def stage_share_column(stage: str) -> str:
 
 def stage_profiled_column(stage: str) -> str:
     return f"stage_{stage}_profiled_ms"
+
+
+def stage_subgraph_column(stage: str) -> str:
+    return f"stage_{stage}_subgraph_ms"
+
+
+def stage_gmacs_column(stage: str) -> str:
+    return f"stage_{stage}_gmacs"
 
 
 def latency_column(stat: str) -> str:

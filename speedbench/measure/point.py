@@ -122,6 +122,8 @@ class Policy:
     profile_stages: bool = True
     profile_reps: int = 5
     memory_every: int = 5       # sample process RSS every N timed runs (outside the timed region)
+    subgraph_check: bool = False  # also time each stage's sub-graph alone (measure.subgraphs); costs time
+    subgraph_reps: int = 20
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -136,7 +138,7 @@ class Policy:
 
     def validate(self) -> None:
         for name in ("warmup_min", "warmup_max", "warmup_window", "min_reps", "max_reps", "profile_reps",
-                     "memory_every"):
+                     "memory_every", "subgraph_reps"):
             value = getattr(self, name)
             if not isinstance(value, int) or isinstance(value, bool) or value < 0:
                 raise UserError(f"repetition policy {name!r}: expected an integer >= 0, got {value!r}")

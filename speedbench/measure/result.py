@@ -9,7 +9,7 @@ import numpy as np
 from speedbench.measure.invocations import Replicated
 from speedbench.measure.point import Point
 from speedbench.measure.stats import Measurement
-from speedbench.measure.timebase import stage_columns
+from speedbench.measure.timebase import stage_columns, subgraph_columns
 from speedbench.schema import LATENCY_COLUMNS, MEMORY_COLUMNS
 
 NAN = float("nan")
@@ -47,6 +47,7 @@ class PointResult:
         # stage_X_ms in the unprofiled time base; the profiled pass's own ms under stage_X_profiled_ms
         median = self.measurement.median if self.measurement is not None else NAN
         row.update(stage_columns(self.stages, median))
+        row.update(subgraph_columns(self.extra.get("subgraphs")))
         row["profiled_ms"] = self.profiled_ms
         row["profiling_overhead"] = self.profiling_overhead
         for col in MEMORY_COLUMNS:

@@ -87,6 +87,12 @@ def run_worker(spec: dict) -> dict:
             runs = sorted(prof.get("run_ms") or [result.profiled_ms])
             result.profiling_overhead = float(np.median(runs)) / measurement.median - 1
             extra["profile"] = prof
+    if policy.subgraph_check and hasattr(runner, "subgraphs"):
+        # Opt-in: the stage split checked without the profiler (each stage's sub-graph timed alone).
+        try:
+            extra["subgraphs"] = runner.subgraphs(inputs, policy.subgraph_reps)
+        except Exception as exc:  # the check is extra; its failure must not cost the point
+            extra["subgraphs"] = {"error": f"{type(exc).__name__}: {' '.join(str(exc).split())}"[:300]}
     runner.close()
     return result.to_dict()
 

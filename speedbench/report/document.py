@@ -14,6 +14,7 @@ from speedbench.analyse.common import latency_col, split_ok
 from speedbench.analyse.runs import Run
 from speedbench.report import plots
 from speedbench.report.replication import invocations_of, replication_lines
+from speedbench.report.machine import efficiency_blocks, peak_rows
 from speedbench.schema import STAGES
 
 SAFETY = ("These are benchmark figures from one machine and a small held-out image set. They are no "
@@ -120,6 +121,7 @@ def build(runs, budget_ms=None, latency: str = "p50", title: str | None = None,
 
     blocks.append(("h2", "Stage breakdown"))
     blocks.append(("figure", "stages", plots.plot_stages(ok), _stage_caption(ok)))
+    blocks.extend(efficiency_blocks(ok))
 
     blocks.append(("h2", "Latency distributions"))
     blocks.append(("figure", "latency", plots.plot_latency_distributions(samples, ok), "Raw samples per configuration."))
@@ -284,6 +286,7 @@ def _env_rows(run: Run) -> list[list[str]]:
     pk = env.get("packages") or {}
     if pk:
         rows.append(["packages", ", ".join(f"{k} {v}" for k, v in sorted(pk.items()))])
+    rows.extend(peak_rows(m))
     te = env.get("thread_env") or {}
     rows.append(["thread environment", ", ".join(f"{k}={v}" for k, v in sorted(te.items())) or "(none set)"])
     return [[str(a), str(b)] for a, b in rows]

@@ -22,6 +22,7 @@ from speedbench import schema
 from speedbench.errors import UserError, one_line
 from speedbench.measure.launch import SETTLE_S
 from speedbench.measure.backends import get_backend
+from speedbench.measure.peak import ensure_peaks, peak_for
 from speedbench.sweep import steps
 from speedbench.sweep.plan import GraphKey, PlannedPoint
 from speedbench.zoo import trained_sizes
@@ -96,6 +97,12 @@ def _facts(record) -> dict:
     """Export facts as row columns: params, gmacs, file size, opset, parity with torch eager."""
     facts = dict(record.facts or {})
     out = {k: facts[k] for k in ("params", "gmacs") if facts.get(k) is not None}
+    per_stage = facts.get("gmacs_per_stage")
+    if isinstance(per_stage, dict):
+        # achieved GMAC/s per stage = these / the stage's ms (analyse.efficiency); a stage the
+        # counter saw no matrix op in has 0 (NaN would read as "not recorded")
+        for stage in schema.STAGES:
+            out[schema.stage_gmacs_column(stage)] = float(per_stage.get(stage) or 0.0)
     out["model_file_mib"] = round(Path(record.path).stat().st_size / 2**20, 3)
     out["opset"] = record.opset
     parity = record.parity or {}
@@ -136,6 +143,8 @@ class PointContext:
     policy: object                   # measure.Policy
     host: str
     load: LoadSettings | None = None
+    # this host's fp32 matmul peak (measure.peak), filled in for each thread count a point needs
+    peaks: dict | None = None
 
 
 @dataclass
@@ -189,14 +198,25 @@ def run_point(job: PointJob, context: PointContext) -> PointOutcome:
         if not graph.ok and planned.config["backend"] != "eager":   # eager builds its model itself
             reason = graph.reason
         else:
+            context.peaks = _peaks(context.peaks, planned.config)
             result = _measure(job, context, graph)
     except UserError as exc:
         reason = str(exc)
     except Exception as exc:  # a harness bug on one point must not cost the others
         reason = f"{type(exc).__name__}: {one_line(exc)}"
     row = build_row(planned, graph, context.host, result=result, reason=reason)
+    if result is not None and planned.config["backend"] != "synthetic":
+        row["matmul_peak_gmac_s"] = peak_for(context.peaks, int(planned.config["intra_threads"]))
     row["wall_s"] = round(time.monotonic() - t0, 3)
     return PointOutcome(row=row, samples=_samples(result), measured=result is not None, graph=graph)
+
+
+def _peaks(peaks: dict | None, config: dict) -> dict | None:
+    """The host's matmul peak at 1 thread and at this point's thread count, measured once per
+    context (a local sweep measures every thread count up front and records it in meta.json)."""
+    if config["backend"] == "synthetic":
+        return peaks
+    return ensure_peaks(peaks, {1, int(config["intra_threads"])})
 
 
 def _measure(job: PointJob, context: PointContext, graph: PreparedGraph):

@@ -55,6 +55,8 @@ profiles/ explain the keys they use in comments)::
     max_seconds = 30.0            # stop timing after this long, > 0 and < run.timeout_s
     rel_ci      = 0.02            # stop once the p50's CI half-width / p50 is below this, (0, 1)
     stages      = true            # also run a few profiled passes for per-stage times
+    subgraphs   = false           # also time each stage's sub-graph alone (an independent check
+                                  # of the stage split, no profiler; costs about 2x the point's time)
 
     [synthetic]                   # options of the synthetic backend, passed through as the
     work_ms = 5.0                 # points' options (see speedbench.measure.backends.synthetic)
@@ -310,7 +312,7 @@ def parse_profile(text: str, source: str = "<profile>") -> Profile:
 
     rep = c.table(doc.get("repetitions", {}), "repetitions",
                   {"warmup_min", "warmup_max", "min_reps", "max_reps", "max_seconds", "rel_ci", "stages",
-                   "invocations"})
+                   "invocations", "subgraphs"})
     repetitions = {}
     invocations = c.int_(rep.get("invocations", 1), "repetitions.invocations", 1, 1000)
     if "warmup_min" in rep:
@@ -319,6 +321,8 @@ def parse_profile(text: str, source: str = "<profile>") -> Profile:
         repetitions["warmup_max"] = c.int_(rep["warmup_max"], "repetitions.warmup_max", 0, 100_000)
     if "stages" in rep:
         repetitions["profile_stages"] = c.bool_(rep["stages"], "repetitions.stages")
+    if "subgraphs" in rep:
+        repetitions["subgraph_check"] = c.bool_(rep["subgraphs"], "repetitions.subgraphs")
     if "min_reps" in rep:
         repetitions["min_reps"] = c.int_(rep["min_reps"], "repetitions.min_reps", 1, 1_000_000)
     if "max_reps" in rep:

@@ -117,6 +117,8 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
     if retry_failed:
         for pid in rd.failed_ids():
             rd.clear_invocations(pid)
+    # the host's matmul peak at every thread count of the plan, once per run, recorded in meta.json
+    context.peaks = steps.host_peak(rd, todo, None if quiet else stream)
     try:
         # Exports and accuracy first: nothing heavy runs in this process while a worker measures.
         for planned in todo:

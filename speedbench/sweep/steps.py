@@ -73,6 +73,29 @@ def make_policy(repetitions: dict):
     return policy
 
 
+# ----------------------------------------------------------------- host peak
+def host_peak(rd, points, stream=None) -> dict | None:
+    """This host's dense fp32 matmul peak at 1 thread and at the points' thread counts, once per run.
+
+    Kept in meta["matmul_peak"]; a resumed run measures only thread counts it lacks.
+    Nothing is measured when no point runs a model (the synthetic test backend).
+    """
+    from speedbench.measure.peak import ensure_peaks
+
+    have = rd.meta().get("matmul_peak")
+    real = [p for p in points if p.config["backend"] != "synthetic"]
+    if not real:
+        return have
+    peak = ensure_peaks(have, {1} | {int(p.config["intra_threads"]) for p in real})
+    if peak != (have or {}):
+        if stream is not None:
+            print("note: measured this host's fp32 matmul peak (GMAC/s per thread count): " + ", ".join(
+                f"{t}: {r.get('gmac_s', float('nan')):.1f}" for t, r in sorted(peak["by_threads"].items())),
+                file=stream)
+        rd.update_meta(matmul_peak=peak)
+    return peak
+
+
 # ----------------------------------------------------------------- accuracy
 def _file_digest(path: Path) -> str:
     h = hashlib.sha256()

@@ -94,6 +94,21 @@ class Runner:
                            "so stage times can add up to more than the run")
         return out
 
+    def subgraphs(self, inputs, reps: int) -> dict:
+        """The stage split checked without the profiler (speedbench.measure.subgraphs)."""
+        import onnx
+        import onnxruntime as ort
+
+        from speedbench.measure import stages as st
+        from speedbench.measure.subgraphs import time_stage_subgraphs
+
+        def session(blob):
+            return ort.InferenceSession(blob, session_options(self.point), providers=["CPUExecutionProvider"])
+
+        model = onnx.load(self.point.graph)
+        return time_stage_subgraphs(model, st.stage_function(_spec(self.point.model)), inputs, session,
+                                    self.session, reps)
+
     def close(self):
         self.session = None
 
