@@ -272,6 +272,9 @@ def finish_point(job: PointJob, context: PointContext, outcome) -> PointOutcome:
         return PointOutcome(row=row, samples=[], measured=False, graph=graph)
     result = combine_invocations(list(outcome))
     row = build_row(job.planned, graph, context.host, result=result)
+    if job.planned.config["backend"] != "synthetic":
+        context.peaks = _peaks(context.peaks, job.planned.config)
+        row["matmul_peak_gmac_s"] = peak_for(context.peaks, int(job.planned.config["intra_threads"]))
     row["wall_s"] = round(sum(float(r.extra.get("wall_s", 0.0)) for r in outcome), 3)
     m = result.measurement
     return PointOutcome(row=row, samples=_samples(result), measured=True, graph=graph,
