@@ -35,6 +35,7 @@ CONFIG_COLUMNS = (
     "opt_level",      # ORT graph optimisation level name; "" for eager
     "affinity",       # number of cores the worker was pinned to; 0 = not pinned
     "concurrency",    # K concurrent workers for throughput points; 1 otherwise
+    "precision",      # "fp32" (the exported graph) or "int8" (its static QDQ quantisation)
     "spin_wait",      # ORT intra-/inter-op threads spin while waiting for work: "on" / "off"; "" for eager
 )
 
@@ -44,8 +45,14 @@ CONFIG_COLUMNS = (
 # A new identity column is appended to CONFIG_COLUMNS and entered here. A blank value
 # ("" or None: the knob does not apply to the point's backend) is left out too.
 ID_DEFAULTS: dict = {
+    "precision": "fp32",
     "spin_wait": "on",    # ONNX Runtime's own default: session.intra_op.allow_spinning = "1"
 }
+
+PRECISIONS = ("fp32", "int8")
+# int8 settings a profile may name ([quantisation]; speedbench.export.quantise documents them)
+QUANT_METHODS = ("minmax", "entropy", "percentile")
+QUANT_OP_TYPES = ("Conv", "MatMul", "Gemm")
 
 # Values of spin_wait. Spinning threads poll for work instead of sleeping: lower wake-up
 # latency, but they burn CPU while idle and fight other processes for the cores.
@@ -56,9 +63,9 @@ LATENCY_PERCENTILES = (50, 90, 99)
 LATENCY_STATS = tuple(f"p{p}" for p in LATENCY_PERCENTILES)
 
 # Columns that hold text and flags; every other schema column is numeric (NaN when missing).
-TEXT_COLUMNS = frozenset({"model", "weights", "backend", "exec_mode", "opt_level", "spin_wait",
-                          "point_id", "host", "family", "status", "reason", "stage_method", "ci_scope",
-                          "invocation_errors"})
+TEXT_COLUMNS = frozenset({"model", "weights", "backend", "exec_mode", "opt_level", "precision", "spin_wait",
+                          "point_id", "host", "family", "status", "reason", "stage_method",
+                          "calibration_fingerprint", "ci_scope", "invocation_errors"})
 BOOL_COLUMNS = frozenset({"noisy", "untrained", "between_dominates"})
 
 # Groups of result columns, named here once; RESULT_COLUMNS below lists them in table order.
@@ -127,6 +134,11 @@ RESULT_COLUMNS = (
     "params", "gmacs",
     "map", "map50", "map75", "map_small", "map_medium", "map_large", "mar_100",
     "map_ci_lo", "map_ci_hi", "untrained",
+    # int8 rows: accuracy change vs the fp32 graph of the same configuration (paired bootstrap
+    # over the same held-out images) and detection agreement with it
+    "map_change", "map_change_ci_lo", "map_change_ci_hi",
+    "agree_matched_fraction", "agree_box_mean_px", "agree_box_max_px",
+    "calibration_fingerprint",
 )
 
 
@@ -203,6 +215,9 @@ def config_label(row) -> str:
     pin = _int_or(get("affinity", None))
     if pin:
         parts.append(f"{pin} cores")
+    precision = get("precision", None)
+    if isinstance(precision, str) and precision not in ("", "fp32"):
+        parts.append(precision)
     if get("spin_wait", "") == "off":
         parts.append("no spin")
     return " / ".join(parts)

@@ -56,7 +56,7 @@ import pandas as pd
 from speedbench.analyse.frontier import frontier
 from speedbench.errors import UserError
 from speedbench.measure.point import ORT_ONLY_KNOBS, uses_ort_knobs
-from speedbench.schema import CONFIG_COLUMNS
+from speedbench.schema import CONFIG_COLUMNS, ID_DEFAULTS
 
 # Rule of thumb (ours): workers that got less than this share of their cores' CPU time were
 # competing with other work on the host (or idling threads), so the throughput understates a
@@ -180,7 +180,8 @@ def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
     df = df.copy()
     for col in CONFIG_KEY:
         if col not in df.columns:
-            df[col] = "" if col in ("model", "weights", "backend", "exec_mode", "opt_level") else 0
+            df[col] = ID_DEFAULTS[col] if col in ID_DEFAULTS else (
+                "" if col in ("model", "weights", "backend", "exec_mode", "opt_level") else 0)
     if "status" in df.columns:
         df = df[df["status"].fillna("ok").astype(str) == "ok"]
     for col in ("tput_fps", "tput_p99_ms", "tput_mean_ms", "cores_used", "concurrency",

@@ -22,6 +22,7 @@ def add_parser(subparsers):
     p.add_argument("--max-memory-mb", type=float_in(0, 1e7, open_lo=True), metavar="M",
                    help="peak worker memory limit (MiB), (0, 1e7]")
     p.add_argument("--min-map", type=float_in(0, 1), metavar="A", help="minimum mAP, [0, 1]")
+    p.add_argument("--precision", choices=["fp32", "int8"], help="only configurations of this precision")
     p.add_argument("--price-table", metavar="FILE",
                    help="USD per host-hour: TOML `[prices] label = 0.34` or CSV `host,usd_per_hour`; "
                         "the pick becomes the cheapest per million frames")
@@ -41,6 +42,7 @@ def run(args) -> int:
     for w in data.warnings():
         print(f"WARNING: {w}")
     result = pick(data.points, args.budget_ms, latency=args.latency, threads=args.threads,
-                  max_memory_mb=args.max_memory_mb, min_map=args.min_map, prices=prices)
+                  max_memory_mb=args.max_memory_mb, min_map=args.min_map, prices=prices,
+                  precision=args.precision)
     print(result.to_text())
     return 0 if result.best is not None else 1  # 1: nothing fits (scripts can branch on it)

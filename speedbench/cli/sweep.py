@@ -48,11 +48,13 @@ def run(args) -> int:
     if args.retry_failed and not args.resume:
         raise UserError("--retry-failed: only together with --resume")
     run_sweep(args.profile, out_dir=out, resume=args.resume, quiet=args.quiet, retry_failed=args.retry_failed)
-    from speedbench.sweep import load_run
+    from speedbench.sweep import RunDir
 
-    df = load_run(out)
-    ok = int((df["status"] == "ok").sum())
-    print(f"{out}: {len(df)} point(s), {ok} ok, {len(df) - ok} failed; load with speedbench.load_run({str(out)!r})")
+    with RunDir.open(out) as rd:  # the stored rows, without the pandas import a table would cost
+        status = [r.get("status") for r in rd.rows()]
+    ok = status.count("ok")
+    print(f"{out}: {len(status)} point(s), {ok} ok, {len(status) - ok} failed; "
+          f"load with speedbench.load_run({str(out)!r})")
     return 0
 
 
@@ -69,11 +71,12 @@ def format_plan(plan, profile, out, resume: bool = False) -> str:
     lines = [f"profile {profile.name!r} ({profile.source}) -> {out}",
              f"{len(plan.points)} point(s) over {len(plan.graphs)} distinct graph(s)"
              + (f"; {len(done & {p.point_id for p in plan.points})} already measured" if resume else "")]
-    lines.append(f"{'point_id':<12}  {'graph (model/weights/size/proposals)':<44}  backend  intra inter mode        "
-                 f"affinity  K  opt")
+    lines.append(f"{'point_id':<12}  {'graph (model/weights/size/proposals/prec)':<44}  backend  intra inter "
+                 f"mode        affinity  K  opt")
     for p in plan.points:
         c = p.config
         graph = f"{c['model']}/{c['weights']}/{c['size']}/{c['proposals']}"
+        graph += f"/{c['precision']}" if c.get("precision", "fp32") != "fp32" else ""
         mark = " (done)" if p.point_id in done else ""
         lines.append(f"{p.point_id:<12}  {graph:<44}  {c['backend']:<7}  {c['intra_threads']:>5} "
                      f"{c['inter_threads']:>5} {c['exec_mode'] or '-':<11} {c['affinity']:>8} "

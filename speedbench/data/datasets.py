@@ -20,6 +20,7 @@ import math
 import warnings
 from dataclasses import dataclass
 from functools import cached_property
+from itertools import chain
 from pathlib import Path
 
 import numpy as np
@@ -132,6 +133,29 @@ def load_dataset(path, images_dir=None, check_images: bool = True,
     max_pixels: images with more pixels (width x height, from the annotations and from each
     file's header) are refused, naming the file; the profile key [dataset] max_pixels.
     """
+    coco, root, source = _read_annotations(path, images_dir)
+    if not root.is_dir():
+        raise UserError(f"{root}: image folder not found")
+    images = [_record(im, root, source) for im in coco["images"]]
+    for rec in images:
+        if rec.width * rec.height > max_pixels:
+            raise UserError(f"{source}: image {rec.id}: {rec.file_name} is {rec.width}x{rec.height} = "
+                            f"{rec.width * rec.height} pixels, above the limit of {max_pixels} "
+                            f"(profile key dataset.max_pixels); refused")
+    if check_images:
+        for rec in images:
+            _check_image(rec, source, max_pixels)
+    return Dataset(root, coco, source, images, max_pixels)
+
+
+def load_annotations(path) -> dict:
+    """The validated COCO dict of a held-out set (any form load_dataset reads), without
+    touching its images: all that scoring a results file needs."""
+    return _read_annotations(path, None)[0]
+
+
+def _read_annotations(path, images_dir):
+    """(validated COCO dict, image root, source path) of a dataset path."""
     path = Path(path)
     if not path.exists():
         raise UserError(f"{path}: dataset not found")
@@ -148,19 +172,7 @@ def load_dataset(path, images_dir=None, check_images: bool = True,
     else:
         raise UserError(f"{path}: not a dataset (expected a COCO JSON file, a folder with "
                         f"{ANNOTATIONS_FILE}, or a Pascal VOC folder with Annotations/)")
-    if not root.is_dir():
-        raise UserError(f"{root}: image folder not found")
-    coco = validate_coco(coco, source)
-    images = [_record(im, root, source) for im in coco["images"]]
-    for rec in images:
-        if rec.width * rec.height > max_pixels:
-            raise UserError(f"{source}: image {rec.id}: {rec.file_name} is {rec.width}x{rec.height} = "
-                            f"{rec.width * rec.height} pixels, above the limit of {max_pixels} "
-                            f"(profile key dataset.max_pixels); refused")
-    if check_images:
-        for rec in images:
-            _check_image(rec, source, max_pixels)
-    return Dataset(root, coco, source, images, max_pixels)
+    return validate_coco(coco, source), root, source
 
 
 def category_map(dataset, model_classes) -> dict[int, int]:
@@ -240,6 +252,10 @@ def validate_coco(coco, source) -> dict:
             raise UserError(f"{where}: duplicate category name {c['name']!r}")
         names.add(_norm(c["name"]))
         cats[c["id"]] = {"id": c["id"], "name": c["name"]}
+    anns = _clean_annotations(coco["annotations"], images, cats)
+    if anns is not None:
+        return {"images": list(images.values()), "annotations": anns, "categories": list(cats.values())}
+    anns = []  # something is wrong: walk the entries to name the first bad one
     seen = set()
     for i, a in enumerate(coco["annotations"]):
         where = f"{source}: annotation {_label(a, i)}"
@@ -267,6 +283,48 @@ def validate_coco(coco, source) -> dict:
         anns.append({"id": a["id"], "image_id": a["image_id"], "category_id": a["category_id"],
                      "bbox": [float(v) for v in box], "area": float(area), "iscrowd": int(crowd)})
     return {"images": list(images.values()), "annotations": anns, "categories": list(cats.values())}
+
+
+_NO_AREA = object()  # an annotation without "area" (its box's w x h is used)
+
+
+def _clean_annotations(anns: list, images: dict, cats: dict):
+    """The clean annotation list when every entry passes validate_coco's checks, else None.
+
+    The same checks as the entry-by-entry loop, on whole columns at once (a large set has
+    tens of thousands of boxes); on None the loop runs and words the first problem.
+    """
+    if not all(type(a) is dict for a in anns):
+        return None
+    try:
+        ids = [a["id"] for a in anns]
+        img = [a["image_id"] for a in anns]
+        cat = [a["category_id"] for a in anns]
+        boxes = [a["bbox"] for a in anns]
+        areas = [a.get("area", _NO_AREA) for a in anns]
+        crowds = [a.get("iscrowd", 0) for a in anns]
+        if (not set(map(type, chain(ids, img, cat))) <= {int} or len(set(ids)) != len(ids)
+                or not set(img) <= images.keys() or not set(cat) <= cats.keys()
+                or not set(map(type, boxes)) <= {list} or not set(map(len, boxes)) <= {4}
+                or not set(map(type, chain.from_iterable(boxes))) <= {int, float}
+                or not set(map(type, areas)) <= {int, float, object}  # object: _NO_AREA
+                or not set(crowds) <= {0, 1}):
+            return None
+        if ids and not (min(chain(ids, img, cat)) >= -INT_LIMIT and max(chain(ids, img, cat)) < INT_LIMIT):
+            return None  # an id beyond 64 bits: the entry-by-entry check names it
+        box = np.array(boxes, dtype=np.float64).reshape(-1, 4)
+        size = np.array([(images[i]["width"], images[i]["height"]) for i in img], dtype=np.float64).reshape(-1, 2)
+        area = np.array([box[j, 2] * box[j, 3] if v is _NO_AREA else v for j, v in enumerate(areas)], np.float64)
+    except (KeyError, TypeError, OverflowError):  # a missing key, an unhashable iscrowd, a huge number
+        return None
+    x, y, w, h = box.T
+    t = BOX_TOLERANCE
+    if not (np.isfinite(box).all() and np.isfinite(area).all() and (area >= 0).all()
+            and (w > 0).all() and (h > 0).all() and (x >= -t).all() and (y >= -t).all()
+            and (x + w <= size[:, 0] + t).all() and (y + h <= size[:, 1] + t).all()):
+        return None
+    return [{"id": i, "image_id": m, "category_id": c, "bbox": b, "area": float(ar), "iscrowd": int(cr)}
+            for i, m, c, b, ar, cr in zip(ids, img, cat, box.tolist(), area.tolist(), crowds)]
 
 
 def check_box(x, y, w, h, width, height, where):

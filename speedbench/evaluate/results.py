@@ -23,12 +23,19 @@ _NUMBER_TYPES = (int, float, np.integer, np.floating)
 
 def load_detections(path, gt) -> list[dict]:
     """Read and validate a COCO results JSON file against ground truth (dict or Dataset)."""
-    path = Path(path)
     # Bounded nesting and 64-bit integers; NaN / inf get their per-field message below.
     dets = read_json(path, "detections file", allow_nonfinite=True)
-    ground = gt if isinstance(gt, GroundTruth) else GroundTruth(getattr(gt, "coco", gt))
-    parse_detections(dets, ground, source=str(path))
+    parse_detections(dets, _ground(gt), source=str(Path(path)))
     return dets
+
+
+def read_detections(path, gt) -> Detections:
+    """Read and validate a COCO results JSON file straight into arrays (parsed once)."""
+    return parse_detections(read_json(path, "detections file", allow_nonfinite=True), _ground(gt), source=str(Path(path)))
+
+
+def _ground(gt) -> GroundTruth:
+    return gt if isinstance(gt, GroundTruth) else GroundTruth(getattr(gt, "coco", gt))
 
 
 def parse_detections(dets, gt: GroundTruth, source: str = "detections") -> Detections:

@@ -116,7 +116,8 @@ def evaluate_graph(graph_path, dataset, label_map=None, *, model=None, model_cla
     if limit:
         dataset = dataset.first(int(limit))
     dets = detect_dataset(graph_path, dataset, label_map, intra_threads, cache_dir)
-    result = coco_evaluate(dataset.coco, dets, bootstrap=bootstrap, seed=seed)
+    # The bootstrap may use the cores the caller grants the graph (the figures do not depend on it).
+    result = coco_evaluate(dataset.coco, dets, bootstrap=bootstrap, seed=seed, threads=max(1, int(intra_threads)))
     lo, hi = result["map_ci95"] or (math.nan, math.nan)
     result.update(map_ci_lo=lo, map_ci_hi=hi, label_map={int(k): int(v) for k, v in label_map.items()})
     if check_threads:

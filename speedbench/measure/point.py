@@ -6,7 +6,7 @@ from pathlib import Path
 
 from speedbench.errors import UserError
 from speedbench.measure.backends import NAMES as BACKENDS
-from speedbench.schema import CONFIG_COLUMNS, SPIN_VALUES, point_id
+from speedbench.schema import CONFIG_COLUMNS, PRECISIONS, SPIN_VALUES, point_id
 from speedbench.system import cores_available
 
 EXEC_MODES = ("sequential", "parallel")
@@ -21,7 +21,7 @@ def uses_ort_knobs(backend: str) -> bool:
 
 @dataclass
 class Point:
-    """One configuration. Fields up to `concurrency` are its identity (schema.CONFIG_COLUMNS).
+    """One configuration. Fields up to `precision` are its identity (schema.CONFIG_COLUMNS).
 
     `graph` (the ONNX file for backend "ort") and `options` (settings of the
     synthetic test backend) are not part of the identity: the same configuration
@@ -39,6 +39,7 @@ class Point:
     opt_level: str = "all"
     affinity: int = 0
     concurrency: int = 1
+    precision: str = "fp32"      # "int8": `graph` is the quantised graph (the sweep prepares it)
     spin_wait: str = "on"
     graph: str | None = None
     options: dict = field(default_factory=dict)
@@ -76,6 +77,10 @@ class Point:
         cores = cores_available()
         if self.affinity > cores:
             raise UserError(f"point field 'affinity': {self.affinity} cores requested, {cores} available")
+        if self.precision not in PRECISIONS:
+            raise UserError(f"point field 'precision': {self.precision!r} is not one of {', '.join(PRECISIONS)}")
+        if self.precision != "fp32" and self.backend == "eager":
+            raise UserError("point field 'precision': the eager backend runs fp32 only")
         if self.backend == "ort":
             if self.exec_mode not in EXEC_MODES:
                 raise UserError(f"point field 'exec_mode': {self.exec_mode!r} is not one of {', '.join(EXEC_MODES)}")

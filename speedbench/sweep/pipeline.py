@@ -23,7 +23,7 @@ from speedbench.errors import UserError, one_line
 from speedbench.measure.launch import SETTLE_S
 from speedbench.measure.backends import get_backend
 from speedbench.measure.peak import ensure_peaks, peak_for
-from speedbench.sweep import steps
+from speedbench.sweep import quantised, steps
 from speedbench.sweep.plan import GraphKey, PlannedPoint
 from speedbench.zoo import trained_sizes
 
@@ -39,6 +39,7 @@ class PreparedGraph:
     facts: dict = field(default_factory=dict)       # params, gmacs, model_file_mib, opset, parity_passed
     accuracy: dict = field(default_factory=dict)    # schema.ACCURACY_COLUMNS (+ digest, thread check)
     notes: list = field(default_factory=list)
+    run_meta: dict = field(default_factory=dict)    # what the run's meta.json keeps of it (int8: quantisation)
 
 
 class GraphStore:
@@ -79,18 +80,39 @@ class GraphStore:
             return PreparedGraph(ok=False, reason=f"export: {exc}")
         except Exception as exc:  # an exporter crash is a failed graph, not a failed sweep
             return PreparedGraph(ok=False, reason=f"export: {type(exc).__name__}: {one_line(exc)}")
+        fp32 = record
+        if key.precision == "int8" and record.ok:
+            self.status(f"quantise {key.model} {key.size}px")
+            try:
+                record = quantised.quantised_record(record, self.profile, self.cache, self.dataset)
+            except UserError as exc:
+                return PreparedGraph(ok=False, reason=f"quantisation: {exc}")
         if not record.ok:
             return PreparedGraph(ok=False, reason=f"export: {record.reason}")
         graph = PreparedGraph(path=str(link_into(Path(record.path), self.exports_dir)), facts=_facts(record),
                               notes=list(record.notes or []))
+        if record is not fp32:   # its export record (settings, calibration set) goes with the run
+            link_into(Path(record.path).with_suffix(".json"), self.exports_dir)
+            graph.run_meta["quantisation"] = quantised.run_meta(self.profile, self.cache, self.dataset)
         if key.weights == "none" or not self.profile.accuracy or self.dataset is None:
             return graph
         self.status(f"accuracy {key.model} {key.size}px")
-        graph.accuracy = steps.accuracy(Path(record.path), key.model, self.profile, self.dataset, self.cache,
-                                        graph.notes)
-        if graph.accuracy.get("per_image_key") and self.per_image_dir is not None:
-            link_into(self.cache / "accuracy" / f"{graph.accuracy['per_image_key']}.npz", self.per_image_dir)
+        graph.accuracy = self._accuracy(record, key, graph.notes)
+        if record is not fp32 and graph.accuracy:
+            # the fp32 graph of the same configuration, on the same images (its accuracy is cached)
+            try:
+                graph.accuracy.update(quantised.change_vs_fp32(
+                    fp32.path, record.path, self._accuracy(fp32, key, []), graph.accuracy, self.dataset,
+                    self.profile, self.cache / "accuracy", steps.detections_dir(self.cache)))
+            except UserError as exc:
+                graph.notes.append(f"change vs fp32 not measured: {exc}")
         return graph
+
+    def _accuracy(self, record, key: GraphKey, notes: list) -> dict:
+        acc = steps.accuracy(Path(record.path), key.model, self.profile, self.dataset, self.cache, notes)
+        if acc.get("per_image_key") and self.per_image_dir is not None:
+            link_into(self.cache / "accuracy" / f"{acc['per_image_key']}.npz", self.per_image_dir)
+        return acc
 
 
 def _facts(record) -> dict:
@@ -108,6 +130,11 @@ def _facts(record) -> dict:
     parity = record.parity or {}
     if "passed" in parity:
         out["parity_passed"] = bool(parity["passed"])
+    if record.precision != "fp32":
+        q = record.quantisation or {}
+        out["calibration_fingerprint"] = (q.get("calibration") or {}).get("fingerprint")
+        out["quantisation"] = ", ".join(f"{k}={v}" for k, v in q.items()
+                                        if k in ("method", "per_channel", "op_types", "reduce_range"))
     return out
 
 

@@ -1,6 +1,6 @@
 """Plan: a profile expanded into the exact list of points to measure.
 
-Expansion is the cross product models x sizes x proposals x backends x
+Expansion is the cross product models x sizes x proposals x precisions x backends x
 opt_levels x threads x concurrency, after mapping the values that do not apply
 to a combination (so two combinations that mean the same measurement become one
 point), and skipping the ones that cannot be measured here. Every mapping or
@@ -9,6 +9,7 @@ skip leaves a note; none is an error.
 from __future__ import annotations
 
 import dataclasses
+import itertools
 from collections import Counter
 from dataclasses import dataclass, field
 from typing import NamedTuple
@@ -36,6 +37,7 @@ class GraphKey(NamedTuple):
     weights: str
     size: int
     proposals: int
+    precision: str = "fp32"      # "int8": the fp32 export quantised (sweep.quantised)
 
 
 @dataclass(frozen=True)
@@ -70,7 +72,8 @@ class PlannedPoint:
                 config.pop(c)   # Point's defaults (ORT; spin_wait: ORT's own, as old rows ran) or blank (others)
         point = Point(**config)
         return cls(point=point, family=row.get("family") or "",
-                   graph_key=GraphKey(point.model, point.weights, point.size, point.proposals))
+                   graph_key=GraphKey(point.model, point.weights, point.size, point.proposals,
+                                            point.precision))
 
     @property
     def label(self) -> str:
@@ -148,24 +151,22 @@ def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool = T
         else:
             proposals = _dedupe(spec.default_proposals if p == "default" else p for p in wanted)
             prop_note = ()
-        for size in sizes:
-            for prop in proposals:
-                for backend in profile.backends:
-                    for opt in profile.opt_levels:
-                        for t in profile.threads:
-                            for k in profile.concurrency:
-                                got = _one_point(profile, entry, spec, size, prop, backend, opt, t, k,
-                                                 cores, concurrency_supported, notes)
-                                if got is None:
-                                    continue
-                                point, point_notes = got
-                                if point.id in points:
-                                    merged += 1
-                                    continue
-                                points[point.id] = PlannedPoint(
-                                    point=point, family=spec.family,
-                                    graph_key=GraphKey(entry.id, entry.weights, int(size), int(prop)),
-                                    notes=prop_note + point_notes)
+        precisions = entry.precisions or profile.precisions
+        for size, prop, precision, backend, opt, t, k in itertools.product(
+                sizes, proposals, precisions, profile.backends, profile.opt_levels, profile.threads,
+                profile.concurrency):
+            got = _one_point(profile, entry, spec, size, prop, backend, opt, t, k,
+                             cores, concurrency_supported, notes, precision)
+            if got is None:
+                continue
+            point, point_notes = got
+            if point.id in points:
+                merged += 1
+                continue
+            points[point.id] = PlannedPoint(
+                point=point, family=spec.family,
+                graph_key=GraphKey(entry.id, entry.weights, int(size), int(prop), precision),
+                notes=prop_note + point_notes)
     if merged:
         notes[f"{merged} combination(s) mapped onto points already planned (measured once)"] += 1
     plan_notes = [n if c == 1 or n.startswith(tuple("0123456789")) else f"{n} ({c} combinations)"
@@ -173,9 +174,13 @@ def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool = T
     return Plan(points=list(points.values()), notes=plan_notes)
 
 
-def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, concurrency_supported, notes):
+def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, concurrency_supported, notes,
+               precision="fp32"):
     point_notes = []
     mode, inter = t.mode, t.inter
+    if precision != "fp32" and backend != "ort":
+        notes[f"skipped {precision} on backend {backend}: quantised graphs run on ONNX Runtime only"] += 1
+        return None
     if entry.id.startswith("synthetic") and backend != "synthetic":
         notes[f"skipped {entry.id} on backend {backend}: a synthetic model runs on the synthetic backend only"] += 1
         return None
@@ -203,7 +208,8 @@ def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, conc
         return None
     point = Point(model=entry.id, weights=entry.weights, size=int(size), proposals=int(prop), backend=backend,
                   intra_threads=t.intra, inter_threads=inter, exec_mode=mode, opt_level=opt,
-                  affinity=t.affinity, concurrency=k, spin_wait="on" if t.spin else "off")
+                  affinity=t.affinity, concurrency=k, precision=precision,
+                  spin_wait="on" if t.spin else "off")
     return point, tuple(point_notes)
 
 

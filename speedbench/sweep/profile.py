@@ -28,6 +28,8 @@ profiles/ explain the keys they use in comments)::
     backends    = ["ort"]         # "ort", "eager", or "synthetic" (a test harness, no model)
     opt_levels  = ["all"]         # ORT graph optimisation: "disable", "basic", "extended", "all"
     concurrency = [1]             # K concurrent workers (throughput points when K > 1)
+    precisions  = ["fp32"]        # "fp32" (the exported graph) and/or "int8" (its static QDQ
+                                  # quantisation, ORT backend only; see [quantisation])
 
     [[models]]                    # required: one table per model
     id        = "ssdlite320_mobilenet_v3_large"   # zoo id (`speedbench models`), or
@@ -36,6 +38,7 @@ profiles/ explain the keys they use in comments)::
                                   # cache only), "demo", or "file:PATH" (local checkpoint)
     sizes     = [320]             # optional: replaces [sweep].sizes for this model
     proposals = [100]             # optional: replaces [sweep].proposals for this model
+    precisions = ["fp32", "int8"] # optional: replaces [sweep].precisions for this model
 
     [[threads]]                   # required: one table per thread setting
     intra    = 2                  # required; intra-op threads, 0..256 (0 = library default)
@@ -58,6 +61,15 @@ profiles/ explain the keys they use in comments)::
     subgraphs   = false           # also time each stage's sub-graph alone (an independent check
                                   # of the stage split, no profiler; costs about 2x the point's time)
 
+    [quantisation]                # how "int8" graphs are made (speedbench.export.quantise)
+    method       = "minmax"       # activation ranges from calibration: "minmax", "entropy", "percentile"
+    per_channel  = true           # one weight scale per output channel (false: per tensor)
+    op_types     = ["Conv", "MatMul", "Gemm"]   # the only nodes quantised; the rest stays fp32
+    reduce_range = false          # 7-bit weights (ONNX Runtime's advice for CPUs without VNNI)
+    calibration  = {count = 16, seed = 1}   # generated calibration scenes (their own split, so
+                                  # never the held-out ones), or a path to a COCO JSON / VOC folder
+                                  # of images disjoint from the held-out set (checked)
+
     [synthetic]                   # options of the synthetic backend, passed through as the
     work_ms = 5.0                 # points' options (see speedbench.measure.backends.synthetic)
 
@@ -74,6 +86,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from speedbench.errors import UserError
+from speedbench.schema import PRECISIONS
+from speedbench.schema import QUANT_METHODS as METHODS
+from speedbench.schema import QUANT_OP_TYPES as QUANTISABLE_OPS
 
 BACKENDS = ("ort", "eager", "synthetic")
 OPT_LEVELS = ("disable", "basic", "extended", "all")
@@ -89,6 +104,7 @@ class ModelEntry:
     weights: str = "none"
     sizes: tuple | None = None        # None = use [sweep].sizes
     proposals: tuple | None = None    # None = use [sweep].proposals
+    precisions: tuple | None = None   # None = use [sweep].precisions
 
 
 @dataclass(frozen=True)
@@ -126,6 +142,11 @@ class Profile:
     invocations: int = 1                              # worker processes per point (R)
     synthetic: dict = field(default_factory=dict)     # options of the synthetic test backend
     max_pixels: int = DEFAULT_MAX_PIXELS              # [dataset] max_pixels
+    precisions: tuple = ("fp32",)
+    quantisation: dict = field(default_factory=dict)  # QuantSettings fields ([quantisation])
+    calibration_path: str | None = None               # else generated calibration scenes:
+    calibration_count: int = 16
+    calibration_seed: int = 1
 
     def output_dir(self) -> Path:
         return Path(self.output.format(name=self.name, host=self.host))
@@ -224,7 +245,7 @@ def parse_profile(text: str, source: str = "<profile>") -> Profile:
     except ValueError as exc:   # e.g. an integer literal with more digits than Python converts
         raise UserError(f"{source}: TOML value refused ({exc})") from None
     c = _Checker(source)
-    c.table(doc, "", {"run", "dataset", "sweep", "models", "threads", "repetitions", "synthetic"},
+    c.table(doc, "", {"run", "dataset", "sweep", "models", "threads", "repetitions", "synthetic", "quantisation"},
             {"run", "dataset", "models", "threads"})
 
     run = c.table(doc["run"], "run", {"name", "host", "output", "cache", "timeout_s"}, {"name"})
@@ -264,13 +285,15 @@ def parse_profile(text: str, source: str = "<profile>") -> Profile:
     timing_images = c.int_(ds.get("timing_images", 8), "dataset.timing_images", 1, 10_000)
     max_pixels = c.int_(ds.get("max_pixels", DEFAULT_MAX_PIXELS), "dataset.max_pixels", 1, 1_000_000_000)
 
-    sw = c.table(doc.get("sweep", {}), "sweep", {"sizes", "proposals", "backends", "opt_levels", "concurrency"})
+    sw = c.table(doc.get("sweep", {}), "sweep",
+                 {"sizes", "proposals", "backends", "opt_levels", "concurrency", "precisions"})
     sizes = c.list_(sw.get("sizes", ["native"]), "sweep.sizes", lambda v, k: _size(c, v, k))
     proposals = c.list_(sw.get("proposals", ["default"]), "sweep.proposals", lambda v, k: _proposal(c, v, k))
     backends = c.list_(sw.get("backends", ["ort"]), "sweep.backends", lambda v, k: c.str_(v, k, BACKENDS))
     opt_levels = c.list_(sw.get("opt_levels", ["all"]), "sweep.opt_levels",
                          lambda v, k: c.str_(v, k, OPT_LEVELS))
     concurrency = c.list_(sw.get("concurrency", [1]), "sweep.concurrency", lambda v, k: c.int_(v, k, 1, 256))
+    precisions = c.list_(sw.get("precisions", ["fp32"]), "sweep.precisions", lambda v, k: c.str_(v, k, PRECISIONS))
 
     if not isinstance(doc["models"], list):
         c.fail("models", "expected one or more [[models]] tables")
@@ -279,13 +302,15 @@ def parse_profile(text: str, source: str = "<profile>") -> Profile:
     models = []
     for i, m in enumerate(doc["models"]):
         kp = f"models[{i}]"
-        c.table(m, kp, {"id", "weights", "sizes", "proposals"}, {"id"})
+        c.table(m, kp, {"id", "weights", "sizes", "proposals", "precisions"}, {"id"})
         entry = ModelEntry(
             id=c.str_(m["id"], f"{kp}.id", allow_empty=False),
             weights=_weights(c, m.get("weights", "none"), f"{kp}.weights"),
             sizes=c.list_(m["sizes"], f"{kp}.sizes", lambda v, k: _size(c, v, k)) if "sizes" in m else None,
             proposals=(c.list_(m["proposals"], f"{kp}.proposals", lambda v, k: _proposal(c, v, k))
                        if "proposals" in m else None),
+            precisions=(c.list_(m["precisions"], f"{kp}.precisions", lambda v, k: c.str_(v, k, PRECISIONS))
+                        if "precisions" in m else None),
         )
         if any((e.id, e.weights) == (entry.id, entry.weights) for e in models):
             c.fail(kp, f"model {entry.id!r} with weights {entry.weights!r} is listed twice")
@@ -350,8 +375,32 @@ def parse_profile(text: str, source: str = "<profile>") -> Profile:
         accuracy=accuracy, limit=limit, timing_images=timing_images, models=tuple(models),
         sizes=sizes, proposals=proposals, backends=backends, opt_levels=opt_levels,
         concurrency=concurrency, threads=tuple(threads), repetitions=repetitions,
-        invocations=invocations, synthetic=dict(synthetic), max_pixels=max_pixels,
+        invocations=invocations, synthetic=dict(synthetic), max_pixels=max_pixels, precisions=precisions,
+        **_quantisation(c, doc.get("quantisation", {})),
     )
+
+
+def _quantisation(c: _Checker, q) -> dict:
+    """The [quantisation] table as Profile fields (defaults documented at the top)."""
+    q = c.table(q, "quantisation", {"method", "per_channel", "op_types", "reduce_range", "calibration"})
+    settings = {
+        "method": c.str_(q.get("method", "minmax"), "quantisation.method", METHODS),
+        "per_channel": c.bool_(q.get("per_channel", True), "quantisation.per_channel"),
+        "op_types": c.list_(q.get("op_types", list(QUANTISABLE_OPS)), "quantisation.op_types",
+                            lambda v, k: c.str_(v, k, QUANTISABLE_OPS)),
+        "reduce_range": c.bool_(q.get("reduce_range", False), "quantisation.reduce_range"),
+    }
+    out = {"quantisation": settings}
+    cal = q.get("calibration", {})
+    if isinstance(cal, str):
+        out["calibration_path"] = c.str_(cal, "quantisation.calibration", allow_empty=False)
+    elif isinstance(cal, dict):
+        c.table(cal, "quantisation.calibration", {"count", "seed"})
+        out["calibration_count"] = c.int_(cal.get("count", 16), "quantisation.calibration.count", 1, 10_000)
+        out["calibration_seed"] = c.int_(cal.get("seed", 1), "quantisation.calibration.seed", 0, 2**31 - 1)
+    else:
+        c.fail("quantisation.calibration", f"expected a path or a table {{count, seed}}, got {_kind(cal)}")
+    return out
 
 
 def _size(c: _Checker, value, keypath: str):

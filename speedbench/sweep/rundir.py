@@ -219,7 +219,9 @@ class RunDir:
         self._connect(create=True)
         # meta.json last: its presence marks the directory as a complete, openable run.
         _atomic_write_bytes(path / META_FILE, json.dumps(full, indent=2, default=_json_default).encode(), hint="")
-        self._export_tables()
+        # No copies yet: there is no point to copy, and writing an empty table costs the pandas
+        # import (seconds on a busy host) before the first point. The first point writes them.
+        self._copies_stale = True
 
     def _undo_create(self, made: bool) -> None:
         """Remove what create() wrote (only its own files; a directory it did not make stays)."""
@@ -311,6 +313,7 @@ class RunDir:
         except BaseException:
             rd._unlock()
             raise
+        rd._copies_stale = not _newer_or_same(path / CSV_FILE, path / DB_FILE)
         return rd
 
     # ----------------------------------------------------------------- database
@@ -487,12 +490,13 @@ class RunDir:
             raise RuntimeError(f"{self.path}: opened read-only")
 
     def finish(self) -> None:
-        """Stamp the end time into meta.json and regenerate the CSV/Parquet copies."""
+        """Stamp the end time into meta.json and regenerate the CSV/Parquet copies if they are behind."""
         self._check_writable()
         meta = self.meta()
         meta["finished"] = now_iso()
         _atomic_write_bytes(self.path / META_FILE, json.dumps(meta, indent=2, default=_json_default).encode())
-        self._export_tables()
+        if self._copies_stale or not (self.path / CSV_FILE).exists():
+            self._export_tables()
 
     def update_meta(self, **fields) -> None:
         self._check_writable()
@@ -599,6 +603,16 @@ class RunDir:
         self._copies_stale = False
 
 
+def _newer_or_same(copy: Path, source: Path) -> bool:
+    """Was `copy` written after the last change of `source` (and its journal)?"""
+    try:
+        t = copy.stat().st_mtime_ns
+    except FileNotFoundError:
+        return False
+    changed = [f.stat().st_mtime_ns for f in (source, source.with_name(source.name + "-wal")) if f.exists()]
+    return all(t >= c for c in changed)
+
+
 def rows_to_frame(rows: list[dict]):
     """Rows -> tidy DataFrame: schema columns first (always present), extra columns after.
 
@@ -628,7 +642,9 @@ def _known_column(values, col: str):
     import pandas as pd
 
     if col in schema.TEXT_COLUMNS:
-        return values.where(values.notna(), "").astype(str).astype(object)
+        text = values.where(values.notna(), "").astype(str).astype(object)
+        # rows recorded before an identity column existed had its legacy value
+        return text.replace("", schema.ID_DEFAULTS[col]) if col in schema.ID_DEFAULTS else text
     if col in schema.BOOL_COLUMNS:
         return values.where(values.notna(), False).astype(bool)
     out = pd.to_numeric(values, errors="coerce").astype("float64")

@@ -154,7 +154,10 @@ def _stored(outcome) -> tuple:
 
 
 def _note_thread_check(rd: RunDir, key: tuple, graph) -> None:
-    """meta["thread_invariance"]: per graph, did 1 and 2 intra-op threads detect the same?"""
+    """meta["thread_invariance"]: per graph, did 1 and 2 intra-op threads detect the same?
+    Also what a graph brings to meta.json (int8: quantisation settings and both fingerprints)."""
+    if graph.run_meta:
+        rd.update_meta(**graph.run_meta)
     acc = graph.accuracy or {}
     if "threads_identical" not in acc:
         return

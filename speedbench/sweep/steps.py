@@ -123,7 +123,7 @@ def accuracy(graph: Path, model: str, profile, dataset, cache: Path, notes: list
                 return cached
         except (OSError, json.JSONDecodeError):
             pass  # a damaged cache entry is recomputed
-    det_cache = Path(cache) / "detections" / f"ort-{ort}"
+    det_cache = detections_dir(cache)
     try:
         from speedbench.evaluate import detect_dataset, evaluate_graph
         from speedbench.evaluate.paired import per_image_results
@@ -172,6 +172,11 @@ def detections_digest(dets: list[dict]) -> str:
             (int(d["category_id"]), x, y, w, h, round(float(d["score"]), 4)))
     blob = json.dumps(sorted((k, sorted(v)) for k, v in per_image.items()), separators=(",", ":"))
     return hashlib.sha256(blob.encode()).hexdigest()[:20]
+
+
+def detections_dir(cache: Path) -> Path:
+    """Where a graph's raw detections are cached (per onnxruntime version)."""
+    return Path(cache) / "detections" / f"ort-{_ort_version()}"
 
 
 def _ort_version() -> str:
