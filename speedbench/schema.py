@@ -36,28 +36,37 @@ CONFIG_COLUMNS = (
     "affinity",       # number of cores the worker was pinned to; 0 = not pinned
     "concurrency",    # K concurrent workers for throughput points; 1 otherwise
     "precision",      # "fp32" (the exported graph) or "int8" (its static QDQ quantisation)
+    "spin_wait",      # ORT intra-/inter-op threads spin while waiting for work: "on" / "off"; "" for eager
 )
 
 # Identity columns added after runs already existed, with the value every older run
 # implicitly had. point_id leaves such a column out while it holds that value, so the
 # ids of configurations that existed before stay the same (resume and compare rely on it).
-# A new identity column is appended to CONFIG_COLUMNS and entered here.
-ID_DEFAULTS: dict = {"precision": "fp32"}
+# A new identity column is appended to CONFIG_COLUMNS and entered here. A blank value
+# ("" or None: the knob does not apply to the point's backend) is left out too.
+ID_DEFAULTS: dict = {
+    "precision": "fp32",
+    "spin_wait": "on",    # ONNX Runtime's own default: session.intra_op.allow_spinning = "1"
+}
 
 PRECISIONS = ("fp32", "int8")
 # int8 settings a profile may name ([quantisation]; speedbench.export.quantise documents them)
 QUANT_METHODS = ("minmax", "entropy", "percentile")
 QUANT_OP_TYPES = ("Conv", "MatMul", "Gemm")
 
+# Values of spin_wait. Spinning threads poll for work instead of sleeping: lower wake-up
+# latency, but they burn CPU while idle and fight other processes for the cores.
+SPIN_VALUES = ("on", "off")
+
 # Percentiles reported for every latency distribution, in milliseconds.
 LATENCY_PERCENTILES = (50, 90, 99)
 LATENCY_STATS = tuple(f"p{p}" for p in LATENCY_PERCENTILES)
 
 # Columns that hold text and flags; every other schema column is numeric (NaN when missing).
-TEXT_COLUMNS = frozenset({"model", "weights", "backend", "exec_mode", "opt_level", "precision",
+TEXT_COLUMNS = frozenset({"model", "weights", "backend", "exec_mode", "opt_level", "precision", "spin_wait",
                           "point_id", "host", "family", "status", "reason", "stage_method",
-                          "calibration_fingerprint"})
-BOOL_COLUMNS = frozenset({"noisy", "untrained"})
+                          "calibration_fingerprint", "ci_scope", "invocation_errors"})
+BOOL_COLUMNS = frozenset({"noisy", "untrained", "between_dominates"})
 
 # Groups of result columns, named here once; RESULT_COLUMNS below lists them in table order.
 LATENCY_COLUMNS = (
@@ -65,6 +74,7 @@ LATENCY_COLUMNS = (
     *[f"lat_{s}_{k}ms" for s in LATENCY_STATS for k in ("", "ci_lo_", "ci_hi_")],
     "noisy",
     "fps",                     # frames/s of one stream = 1000 / lat_p50_ms (concurrency 1)
+    "invocations", "between_cov", "between_dominates", "ci_scope",   # see RESULT_COLUMNS
 )
 MEMORY_COLUMNS = ("rss_imports_mib", "rss_loaded_mib", "rss_peak_mib", "model_file_mib")
 # Columns a throughput point (K concurrent workers, speedbench.measure.load) adds to its row;
@@ -101,6 +111,13 @@ RESULT_COLUMNS = (
     *[f"lat_{s}_ci_lo_ms" for s in LATENCY_STATS],
     *[f"lat_{s}_ci_hi_ms" for s in LATENCY_STATS],
     "noisy",
+    # Replicated invocations (each point measured in R independent worker processes)
+    "invocations",             # invocations that succeeded (R); 1 for runs made before replication
+    "invocations_failed",      # invocations that failed
+    "invocation_errors",       # their reasons, "; "-separated, each prefixed with the invocation index
+    "between_cov",             # CoV of the invocation medians (process-to-process spread)
+    "between_dominates",       # between-invocation variance of the median exceeds the within one
+    "ci_scope",                # what the latency intervals cover: one process, or R processes
     "fps",                     # frames/s of one stream = 1000 / lat_p50_ms (concurrency 1)
     *[f"stage_{s}_ms" for s in STAGES],          # in the unprofiled time base (see STAGE_METHOD)
     *[f"stage_{s}_share" for s in STAGES],       # share of the profiled pass's attributed time
@@ -170,7 +187,7 @@ def point_id(config: dict) -> str:
     import json
 
     key = {c: config.get(c) for c in CONFIG_COLUMNS
-           if not (c in ID_DEFAULTS and config.get(c, ID_DEFAULTS[c]) == ID_DEFAULTS[c])}
+           if not (c in ID_DEFAULTS and config.get(c, ID_DEFAULTS[c]) in (ID_DEFAULTS[c], "", None))}
     blob = json.dumps(key, sort_keys=True, default=str).encode()
     return hashlib.sha1(blob).hexdigest()[:12]
 
@@ -201,6 +218,8 @@ def config_label(row) -> str:
     precision = get("precision", None)
     if isinstance(precision, str) and precision not in ("", "fp32"):
         parts.append(precision)
+    if get("spin_wait", "") == "off":
+        parts.append("no spin")
     return " / ".join(parts)
 
 

@@ -117,13 +117,14 @@ def test_sqlite_full_is_reported_as_no_space_not_as_a_corrupt_database(tmp_path,
     monkeypatch.setattr(RunDir, "page_limit", None)
     original, calls = RunDir.write_point, []
 
-    def second_does_not_fit(self, row, samples):
+    def second_does_not_fit(self, row, samples, invocations=None):
         calls.append(row["point_id"])
         if len(calls) == 2:
             pages = self._db.execute("PRAGMA page_count").fetchone()[0]
             self._db.execute(f"PRAGMA max_page_count = {pages}")
             samples = list(samples) * 2000
-        return original(self, row, samples)
+            invocations = None if invocations is None else list(invocations) * 2000
+        return original(self, row, samples, invocations)
 
     monkeypatch.setattr(RunDir, "write_point", second_does_not_fit)
     run = tmp_path / "b"

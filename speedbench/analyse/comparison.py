@@ -44,8 +44,9 @@ class Comparison:
     def _table(self) -> list[list[str]]:
         rows = []
         for _, r in self.points.iterrows():
+            ungated = r["verdict"] in ("slower", "faster") and not bool(r.get("gated", True))
             rows.append([r["label"], _ms(r["base_p50_ms"]), _ms(r["new_p50_ms"]),
-                         _ratio(r), r["verdict"], _signed(r["mem_delta_mib"], "MiB", 0),
+                         _ratio(r), r["verdict"] + (" (1 process, not gated)" if ungated else ""), _signed(r["mem_delta_mib"], "MiB", 0),
                          _acc(r), r["drift"], r["stage_note"]])
         return rows
 

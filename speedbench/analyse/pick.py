@@ -213,6 +213,10 @@ def pick(df: pd.DataFrame, budget_ms: float, latency: str = "p50", threads=None,
         if best["_hi"] > budget_ms:
             notes.append(f"the {stat} CI of the pick reaches {best['_hi']:.2f} ms, past the budget: "
                          "a rerun may not fit")
+        reps = pd.to_numeric(pd.Series([best.get("invocations")]), errors="coerce").fillna(1).iloc[0]
+        if reps <= 1:
+            notes.append(f"the pick's {stat} interval covers one worker process only: a rerun in a new process "
+                         "can land outside it; measure with [repetitions] invocations >= 3 before relying on it")
         noisy = best.get("noisy", False)
         if isinstance(noisy, (bool, np.bool_)) and noisy:
             cov = best.get("lat_cov")

@@ -24,6 +24,9 @@ def add_parser(subparsers):
     p.add_argument("--fail-on-drift", action="store_true",
                    help="count changed detections on the held-out images as a regression")
     p.add_argument("--seed", type=int_in(0, 2**32 - 1), default=0, help="bootstrap seed (default 0)")
+    p.add_argument("--gate-single-process", action="store_true",
+                   help="also fail on latency of points measured in one worker process on either side "
+                        "(by default reported, not gated: one process cannot show how far a rerun moves)")
     p.set_defaults(run=run)
 
 
@@ -46,7 +49,7 @@ def run(args) -> int:
 
     base, new = Run.load(args.base), Run.load(args.new)
     result = compare(base, new, threshold=args.threshold, confidence=args.confidence, seed=args.seed,
-                     fail_on_drift=args.fail_on_drift)
+                     fail_on_drift=args.fail_on_drift, gate_single_process=args.gate_single_process)
     out = {"text": result.to_text, "md": result.to_markdown, "json": result.to_json}[args.format]()
     print(out)
     if not len(result.points):

@@ -26,6 +26,11 @@ def add_parser(subparsers):
     p.add_argument("--opt", choices=("disable", "basic", "extended", "all"), default="all",
                    help="ORT graph optimisation level (default all)")
     p.add_argument("--affinity", type=int_in(0, 1024), default=0, help="pin the worker to N cores (0 = no pinning)")
+    p.add_argument("--no-spin", action="store_true",
+                   help="ORT pool threads sleep instead of spinning while waiting for work (spin_wait off)")
+    p.add_argument("--invocations", type=int_in(1, 1000), default=1,
+                   help="measure in R fresh worker processes; R >= 2 gives intervals that include "
+                        "process-to-process variation (default 1)")
     src = p.add_mutually_exclusive_group()
     src.add_argument("--images", nargs="+", metavar="PATH", help="image files or folders to time on")
     src.add_argument("--dataset", help="COCO JSON / VOC folder; its images are used")
@@ -154,7 +159,7 @@ def run(args) -> int:
     point = Point(model=model, weights=args.weights, size=args.size, proposals=args.proposals,
                   backend=args.backend, intra_threads=args.threads, inter_threads=args.inter_threads,
                   exec_mode=args.mode if ort else "", opt_level=args.opt if ort else "",
-                  affinity=args.affinity, graph=graph)
+                  affinity=args.affinity, spin_wait="off" if args.no_spin else "on", graph=graph)
     return _run_point(args, point)
 
 
@@ -184,6 +189,7 @@ def _adapted_point(args, model):
                  proposals=(args.proposals or adapter.nms.candidates) if adapter.host_nms else 0,
                  backend="adapted", intra_threads=args.threads, inter_threads=args.inter_threads,
                  exec_mode=args.mode, opt_level=args.opt, affinity=args.affinity, graph=args.graph,
+                 spin_wait="off" if args.no_spin else "on",
                  adapter=adapter.to_dict())
 
 
@@ -193,11 +199,12 @@ def _run_point(args, point) -> int:
     import sys
     from pathlib import Path
 
-    from speedbench.measure import Policy, measure_point
+    from speedbench.measure import Policy
+    from speedbench.measure.launch import measure_invocations
 
     policy = Policy(min_reps=args.min_reps, max_reps=args.max_reps, max_seconds=args.max_seconds,
                     rel_ci=args.rel_ci, profile_stages=not args.no_stages)
-    res = measure_point(point, _images(args), policy, timeout_s=args.timeout)
+    res = measure_invocations(point, _images(args), policy, invocations=args.invocations, timeout_s=args.timeout)
     if args.out:
         Path(args.out).write_text(json.dumps(res.to_dict(), indent=1))
     if args.json:
@@ -223,6 +230,11 @@ def _print_summary(res) -> None:
     print(f"  latency ms: p50 {m.median:.2f} (95% CI {lo:.2f}-{hi:.2f})  p90 {m.percentile(90):.2f}  "
           f"p99 {m.percentile(99):.2f}  min {m.min:.2f}  mean {m.mean:.2f}  CoV {m.cov:.3f}  n {m.n} "
           f"({res.extra.get('stop')}) on {res.extra.get('n_images')} images")
+    scope = m.summary()
+    print(f"  invocations {scope['invocations']}: {scope['ci_scope']}"
+          + (f"; between-invocation CoV {scope['between_cov']:.1%}" if scope["invocations"] > 1 else ""))
+    if res.failed_invocations:
+        print(f"  failed invocations: {'; '.join(res.failed_invocations)}")
     if m.noisy:
         print("  NOISY: the spread is high or the CI target was not reached; do not rank on this point alone")
     if res.stages:

@@ -6,7 +6,7 @@ from pathlib import Path
 
 from speedbench.errors import UserError
 from speedbench.measure.backends import NAMES as BACKENDS
-from speedbench.schema import CONFIG_COLUMNS, PRECISIONS, point_id
+from speedbench.schema import CONFIG_COLUMNS, PRECISIONS, SPIN_VALUES, point_id
 from speedbench.system import cores_available
 
 EXEC_MODES = ("sequential", "parallel")
@@ -41,6 +41,7 @@ class Point:
     affinity: int = 0
     concurrency: int = 1
     precision: str = "fp32"      # "int8": `graph` is the quantised graph (the sweep prepares it)
+    spin_wait: str = "on"
     graph: str | None = None
     options: dict = field(default_factory=dict)
     adapter: dict = field(default_factory=dict)   # backend "adapted": the adapter table (adapt.Adapter.to_dict)
@@ -48,7 +49,7 @@ class Point:
     def __post_init__(self):
         # The one place ORT-only knobs are blanked: plan, stored row and point_id(row) then agree.
         if not uses_ort_knobs(self.backend):
-            self.exec_mode, self.opt_level = "", ""
+            self.exec_mode, self.opt_level, self.spin_wait = "", "", ""
 
     def config(self) -> dict:
         return {c: getattr(self, c) for c in CONFIG_COLUMNS}
@@ -87,6 +88,8 @@ class Point:
                 raise UserError(f"point field 'exec_mode': {self.exec_mode!r} is not one of {', '.join(EXEC_MODES)}")
             if self.opt_level not in OPT_LEVELS:
                 raise UserError(f"point field 'opt_level': {self.opt_level!r} is not one of {', '.join(OPT_LEVELS)}")
+            if self.spin_wait not in SPIN_VALUES:
+                raise UserError(f"point field 'spin_wait': {self.spin_wait!r} is not one of {', '.join(SPIN_VALUES)}")
             if not self.graph:
                 raise UserError(f"point field 'graph': backend {self.backend!r} needs the path of an ONNX file")
             if not Path(self.graph).is_file():

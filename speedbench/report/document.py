@@ -14,6 +14,7 @@ from speedbench.analyse.common import latency_col, split_ok
 from speedbench.analyse.precision import INT8_FLAGS, int8_flags, precision_pairs
 from speedbench.analyse.runs import Run
 from speedbench.report import plots
+from speedbench.report.replication import invocations_of, replication_lines
 from speedbench.report.machine import efficiency_blocks, peak_rows
 from speedbench.schema import STAGES
 
@@ -147,11 +148,15 @@ def build(runs, budget_ms=None, latency: str = "p50", title: str | None = None,
     blocks.append(("figure", "memory", plots.plot_memory(ok), "Worker resident memory per configuration."))
 
     blocks.append(("h2", "All points"))
-    blocks.append(("table", ["configuration", "p50", "p90", "p99", "CoV", "n", "fps", "peak MiB", "mAP", "noisy"],
-                   [[r["label"], _num(r.get("lat_p50_ms"), 2), _num(r.get("lat_p90_ms"), 2), _num(r.get("lat_p99_ms"), 2),
-                     _num(r.get("lat_cov"), 3), _num(r.get("n_samples"), 0), _num(r.get("fps"), 1),
+    reps = invocations_of(ok)
+    blocks.append(("table", ["configuration", "p50 [95 % CI]", "p90", "p99", "CoV", "R", "between CoV", "n", "fps",
+                             "peak MiB", "mAP", "noisy"],
+                   [[r["label"], f"{_num(r.get('lat_p50_ms'), 2)} [{_num(r.get('lat_p50_ci_lo_ms'), 2)}, "
+                     f"{_num(r.get('lat_p50_ci_hi_ms'), 2)}]", _num(r.get("lat_p90_ms"), 2),
+                     _num(r.get("lat_p99_ms"), 2), _num(r.get("lat_cov"), 3), f"{int(reps[i])}",
+                     _num(r.get("between_cov"), 3), _num(r.get("n_samples"), 0), _num(r.get("fps"), 1),
                      _num(r.get("rss_peak_mib"), 0), _num(r.get("map"), 3), "yes" if _flag(r.get("noisy")) else ""]
-                    for _, r in ok.sort_values(col).iterrows()]))
+                    for i, r in ok.sort_values(col).iterrows()]))
     if len(failed):
         blocks.append(("p", f"{len(failed)} configuration(s) failed and are excluded:"))
         blocks.append(("table", ["configuration", "reason"], [[r["label"], r["reason"]] for _, r in failed.iterrows()]))
@@ -314,8 +319,10 @@ def _noise_lines(ok) -> list[str]:
         lines.append(f"Run-to-run spread (coefficient of variation): median {cov.median():.1%}, worst {cov.max():.1%}.")
     noisy = int(ok["noisy"].fillna(False).astype(bool).sum()) if "noisy" in ok.columns else 0
     lines.append(f"{noisy} point(s) flagged noisy (high spread): treat their figures with extra care.")
-    lines.append("Latency intervals are distribution-free confidence intervals of each percentile (order "
-                 "statistics); accuracy intervals are bootstrap intervals over the held-out images.")
+    lines += replication_lines(ok)
+    lines.append("Latency intervals are 95 % confidence intervals of each percentile (hierarchical bootstrap "
+                 "with several invocations, order statistics of one process otherwise); accuracy intervals are "
+                 "bootstrap intervals over the held-out images.")
     if "per_image_file" in ok.columns and ok["per_image_file"].astype(str).ne("").any():
         lines.append("Accuracy comparisons between configurations (dominated / tied, the pick's runners-up) use a "
                      "paired bootstrap of the mAP difference over the same images; \"tied\" on accuracy means "
@@ -344,10 +351,10 @@ def _caveats(ok, trained, hosts, runs, priced=False) -> list[str]:
            "No extrapolation: sizes, proposal counts and thread settings that were not measured are not "
            "covered; latency is not linear in input size or thread count.",
            "The machine may be shared: points flagged noisy, and ties on the frontier, can swap on a rerun.",
-           "Latency intervals describe the runs of one worker process. The same configuration measured again "
-           "in a new process can land outside them (thread placement, other tenants of a virtual machine): "
-           "rerun the sweep and check the two runs with `speedbench compare` before relying on a small "
-           "difference."]
+           "Latency intervals measured with several invocations include process-to-process variation on this "
+           "host at the time of the run; a busier or quieter period, a new library version or another host "
+           "can still move them. Points measured in one process describe that process only. Rerun the sweep "
+           "and check the two runs with `speedbench compare` before relying on a small difference."]
     untrained = ok["untrained"].fillna(False).astype(bool).any() if "untrained" in ok.columns else not trained
     if untrained or not trained:
         out.append("Untrained weights: accuracy is unavailable for those points, and their latency may not "

@@ -20,6 +20,7 @@ from pathlib import Path
 
 from speedbench import schema
 from speedbench.errors import UserError, one_line
+from speedbench.measure.launch import SETTLE_S
 from speedbench.measure.backends import get_backend
 from speedbench.measure.peak import ensure_peaks, peak_for
 from speedbench.sweep import external, quantised, steps
@@ -210,6 +211,7 @@ class PointOutcome:
     samples: list
     measured: bool          # False: nothing ran (graph missing, a configuration this host cannot run)
     graph: PreparedGraph
+    invocations: list | None = None     # the invocation index of each sample (None: all 0)
 
 
 def make_context(profile, dataset, exports_dir, host: str, per_image_dir=None, status=None, on_prepared=None,
@@ -222,8 +224,23 @@ def make_context(profile, dataset, exports_dir, host: str, per_image_dir=None, s
 
 def run_point(job: PointJob, context: PointContext) -> PointOutcome:
     """Prepare the point's graph, measure it in its own worker(s), build its row. Never raises
-    for a failure of the point: the row then has status "failed" and the reason."""
+    for a failure of the point: the row then has status "failed" and the reason.
+
+    A one-stream point runs its profile's `invocations` worker processes one after the other
+    (the local sweep interleaves them over all points instead: run_invocation + finish_point).
+    """
     planned = job.planned
+    if planned.config["concurrency"] == 1 and context.load is None:
+        outcome = []
+        for i in range(max(1, int(getattr(context.profile, "invocations", 1)))):
+            if i:
+                time.sleep(SETTLE_S)
+            got = run_invocation(job, context, i)
+            if isinstance(got, str):
+                outcome = got
+                break
+            outcome.append(got)
+        return finish_point(job, context, outcome)
     graph, result, reason = PreparedGraph(), None, ""
     t0 = time.monotonic()
     try:
@@ -270,6 +287,51 @@ def _measure(job: PointJob, context: PointContext, graph: PreparedGraph):
     if job.curve:
         add_curve(result, point, context.images, job.curve, **kwargs)
     return result
+
+
+def run_invocation(job: PointJob, context: PointContext, index: int):
+    """One worker process (invocation `index`) of a one-stream point: its PointResult, or a str
+    saying why no worker could run (the graph failed; a harness error). Only invocation 0 runs
+    the stage profile: the others time only."""
+    from speedbench.measure import measure_point
+
+    planned, profile = job.planned, context.profile
+    try:
+        graph = context.graphs.prepare(planned)
+        if not graph.ok and planned.config["backend"] != "eager":   # eager builds its model itself
+            return graph.reason
+        point = dataclasses.replace(planned.point, graph=graph.path,
+                                    options=dict(profile.synthetic) if planned.config["backend"] == "synthetic" else {})
+        policy = context.policy if index == 0 else dataclasses.replace(context.policy, profile_stages=False)
+        t0 = time.monotonic()
+        result = measure_point(point, context.images, policy, profile.timeout_s, invocation=index)
+        result.extra["wall_s"] = round(time.monotonic() - t0, 3)
+        return result
+    except UserError as exc:
+        return str(exc)
+    except Exception as exc:  # a harness bug on one point must not cost the others
+        return f"{type(exc).__name__}: {one_line(exc)}"
+
+
+def finish_point(job: PointJob, context: PointContext, outcome) -> PointOutcome:
+    """The row of a one-stream point from its invocations (PointResults, combined by the
+    hierarchical bootstrap), or a failed row from the reason none ran."""
+    from speedbench.measure.result import combine_invocations
+
+    graph = context.graphs.prepare(job.planned)     # prepared already: served from the store
+    if isinstance(outcome, str):
+        row = build_row(job.planned, graph, context.host, reason=outcome)
+        row["wall_s"] = 0.0
+        return PointOutcome(row=row, samples=[], measured=False, graph=graph)
+    result = combine_invocations(list(outcome))
+    row = build_row(job.planned, graph, context.host, result=result)
+    if job.planned.config["backend"] != "synthetic":
+        context.peaks = _peaks(context.peaks, job.planned.config)
+        row["matmul_peak_gmac_s"] = peak_for(context.peaks, int(job.planned.config["intra_threads"]))
+    row["wall_s"] = round(sum(float(r.extra.get("wall_s", 0.0)) for r in outcome), 3)
+    m = result.measurement
+    return PointOutcome(row=row, samples=_samples(result), measured=True, graph=graph,
+                        invocations=None if m is None else m.invocation.tolist())
 
 
 def _samples(result) -> list:

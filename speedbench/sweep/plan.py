@@ -67,9 +67,9 @@ class PlannedPoint:
         for c in ("size", "proposals", "intra_threads", "inter_threads", "affinity"):
             config[c] = int(config[c] or 0)
         config["concurrency"] = int(config["concurrency"] or 1)
-        for c in ("exec_mode", "opt_level"):
+        for c in ("exec_mode", "opt_level", "spin_wait"):
             if not config[c]:
-                config.pop(c)   # Point's defaults (ORT) or blank (other backends)
+                config.pop(c)   # Point's defaults (ORT; spin_wait: ORT's own, as old rows ran) or blank (others)
         point = Point(**config)
         return cls(point=point, family=row.get("family") or "",
                    graph_key=GraphKey(point.model, point.weights, point.size, point.proposals,
@@ -266,7 +266,8 @@ def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, conc
         return None
     point = Point(model=entry.id, weights=entry.weights, size=int(size), proposals=int(prop), backend=backend,
                   intra_threads=t.intra, inter_threads=inter, exec_mode=mode, opt_level=opt,
-                  affinity=t.affinity, concurrency=k, precision=precision)
+                  affinity=t.affinity, concurrency=k, precision=precision,
+                  spin_wait="on" if t.spin else "off")
     return point, tuple(point_notes)
 
 
@@ -282,14 +283,15 @@ def estimate_seconds(plan: Plan, profile: Profile, done_ids=(), n_images: int | 
                      cached_graphs=(), point_wall_s: float | None = None) -> dict:
     """Rough wall-time estimate for the points still to measure (a rule of thumb).
 
-    Per point: a worker start plus the repetition budget, or point_wall_s when
-    the run already measured points (their median wall time); per distinct
+    Per worker process (invocation): a worker start plus the repetition budget, or per
+    point point_wall_s when the run already measured points (their median wall time); per distinct
     graph still needed: one export and one accuracy pass over the dataset.
     """
     todo = plan.missing(done_ids)
     budget = profile.repetitions.get("max_seconds", DEFAULT_MAX_SECONDS)
-    per_point = point_wall_s if point_wall_s else WORKER_START_S + budget
-    measure_s = len(todo) * per_point
+    # A one-stream point runs in `invocations` worker processes; a stored row's wall_s covers all of them.
+    runs = sum(profile.invocations if p.config["concurrency"] == 1 else 1 for p in todo)
+    measure_s = len(todo) * point_wall_s if point_wall_s else runs * (WORKER_START_S + budget)
     graphs = []
     for p in todo:
         if p.graph_key not in graphs and p.config["backend"] != "synthetic":

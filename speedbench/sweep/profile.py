@@ -56,12 +56,16 @@ profiles/ explain the keys they use in comments)::
     inter    = 1                  # inter-op threads, 0..256 (ORT uses them in parallel mode only)
     mode     = "sequential"       # ORT execution mode: "sequential" or "parallel"
     affinity = 0                  # pin the worker to this many cores; 0 = not pinned
+    spin     = true               # ORT pool threads spin while waiting for work (ORT's default);
+                                  # false sleeps them: less CPU burned, steadier on a busy host
 
     [repetitions]                 # how long each point is measured (speedbench.measure.Policy)
     warmup_min  = 3               # warm-up runs at least, >= 0
     warmup_max  = 50              # warm-up runs at most (warm-up ends once latency settles)
     min_reps    = 10              # timed runs at least, >= 1
-    max_reps    = 1000            # timed runs at most, >= min_reps
+    max_reps    = 1000            # timed runs at most, >= min_reps (per invocation)
+    invocations = 1               # R independent worker processes per point, >= 1; R >= 2 gives
+                                  # intervals that include process-to-process variation
     max_seconds = 30.0            # stop timing after this long, > 0 and < run.timeout_s
     rel_ci      = 0.02            # stop once the p50's CI half-width / p50 is below this, (0, 1)
     stages      = true            # also run a few profiled passes for per-stage times
@@ -130,6 +134,7 @@ class ThreadSetting:
     inter: int = 1
     mode: str = "sequential"
     affinity: int = 0
+    spin: bool = True               # ORT's default; see schema.SPIN_VALUES
 
 
 @dataclass
@@ -155,6 +160,7 @@ class Profile:
     concurrency: tuple[int, ...]
     threads: tuple[ThreadSetting, ...]
     repetitions: dict = field(default_factory=dict)   # speedbench.measure.Policy fields
+    invocations: int = 1                              # worker processes per point (R)
     synthetic: dict = field(default_factory=dict)     # options of the synthetic test backend
     max_pixels: int = DEFAULT_MAX_PIXELS              # [dataset] max_pixels
     precisions: tuple = ("fp32",)
@@ -273,12 +279,13 @@ def parse_profile(text: str, source: str = "<profile>") -> Profile:
     threads = []
     for i, t in enumerate(doc["threads"]):
         kp = f"threads[{i}]"
-        c.table(t, kp, {"intra", "inter", "mode", "affinity"}, {"intra"})
+        c.table(t, kp, {"intra", "inter", "mode", "affinity", "spin"}, {"intra"})
         setting = ThreadSetting(
             intra=c.int_(t["intra"], f"{kp}.intra", 0, 256),
             inter=c.int_(t.get("inter", 1), f"{kp}.inter", 0, 256),
             mode=c.str_(t.get("mode", "sequential"), f"{kp}.mode", EXEC_MODES),
             affinity=c.int_(t.get("affinity", 0), f"{kp}.affinity", 0, 1024),
+            spin=c.bool_(t.get("spin", True), f"{kp}.spin"),
         )
         if setting in threads:
             c.fail(kp, "same thread setting listed twice")
@@ -286,8 +293,9 @@ def parse_profile(text: str, source: str = "<profile>") -> Profile:
 
     rep = c.table(doc.get("repetitions", {}), "repetitions",
                   {"warmup_min", "warmup_max", "min_reps", "max_reps", "max_seconds", "rel_ci", "stages",
-                   "subgraphs"})
+                   "invocations", "subgraphs"})
     repetitions = {}
+    invocations = c.int_(rep.get("invocations", 1), "repetitions.invocations", 1, 1000)
     if "warmup_min" in rep:
         repetitions["warmup_min"] = c.int_(rep["warmup_min"], "repetitions.warmup_min", 0, 10_000)
     if "warmup_max" in rep:
@@ -323,7 +331,7 @@ def parse_profile(text: str, source: str = "<profile>") -> Profile:
         accuracy=accuracy, limit=limit, timing_images=timing_images, models=tuple(models),
         sizes=sizes, proposals=proposals, backends=backends, opt_levels=opt_levels,
         concurrency=concurrency, threads=tuple(threads), repetitions=repetitions,
-        synthetic=dict(synthetic), max_pixels=max_pixels, precisions=precisions,
+        invocations=invocations, synthetic=dict(synthetic), max_pixels=max_pixels, precisions=precisions,
         **_quantisation(c, doc.get("quantisation", {})),
     )
 

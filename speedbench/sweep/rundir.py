@@ -5,7 +5,10 @@ Layout of a run directory::
     meta.json        profile name, host label, start/end times, version, environment
     profile.toml     verbatim copy of the profile the sweep ran
     points.sqlite    the source of truth: points(point_id PRIMARY KEY, seq, row JSON),
-                     samples(point_id, i, ms)
+                     samples(point_id, i, ms, invocation), and invocations(point_id,
+                     invocation, status, result JSON): each worker process's result the
+                     moment it finishes, before its point's row exists (resume per invocation)
+    schedule.json    the seeded shuffled order the invocations were run in
     points.csv       the points table, regenerated as points arrive (temp file + os.replace)
     points.parquet   the same, when pyarrow is installed
     exports/         the ONNX graphs the sweep exported (content-hash cache)
@@ -63,6 +66,7 @@ LOCK_FILE = ".lock"
 KEPT = "points stored so far are kept; make room, then continue with --resume"
 UNDONE = "nothing was measured: the incomplete run directory was removed, start again once the problem is fixed"
 
+SCHEDULE_FILE = "schedule.json"
 
 _SCHEMA_SQL = """
 CREATE TABLE IF NOT EXISTS points (
@@ -74,7 +78,18 @@ CREATE TABLE IF NOT EXISTS samples (
     point_id TEXT NOT NULL,
     i INTEGER NOT NULL,
     ms REAL NOT NULL,
+    invocation INTEGER NOT NULL DEFAULT 0,
     PRIMARY KEY (point_id, i)
+);
+"""
+# One row per finished worker process of a point not yet complete (and kept after).
+_INVOCATIONS_SQL = """
+CREATE TABLE IF NOT EXISTS invocations (
+    point_id TEXT NOT NULL,
+    invocation INTEGER NOT NULL,
+    status TEXT NOT NULL,
+    result TEXT NOT NULL,
+    PRIMARY KEY (point_id, invocation)
 );
 """
 
@@ -324,6 +339,9 @@ class RunDir:
                     raise UserError(f"{db_path}: missing table {name!r} (incomplete or foreign run directory)")
             db.execute("SELECT point_id, seq, row FROM points LIMIT 1").fetchall()
             db.execute("SELECT point_id, i, ms FROM samples LIMIT 1").fetchall()
+            # Runs made before replicated invocations have no invocation column (all index 0).
+            self._has_invocation = "invocation" in {r[1] for r in db.execute("PRAGMA table_info(samples)")}
+            self._has_invocations_table = "invocations" in tables
         except sqlite3.Error as exc:
             if db is not None:
                 db.close()
@@ -360,11 +378,12 @@ class RunDir:
         self.close()
 
     # ----------------------------------------------------------------- writing
-    def write_point(self, row: dict, samples_ms) -> None:
+    def write_point(self, row: dict, samples_ms, invocations=None) -> None:
         """Store one finished point and its raw samples in a single transaction.
 
         The row is keyed by row["point_id"]; writing the same point_id again
-        replaces both the row and its samples. The CSV/Parquet copies are
+        replaces both the row and its samples. invocations: the invocation index of
+        each sample (all 0 when omitted). The CSV/Parquet copies are
         regenerated afterwards (they are conveniences; SQLite is the truth).
         """
         self._check_writable()
@@ -372,15 +391,20 @@ class RunDir:
         if not pid:
             raise ValueError("row has no point_id")
         blob = json.dumps({k: _clean(v) for k, v in row.items()}, default=_json_default)
-        samples = [(pid, i, float(ms)) for i, ms in enumerate(samples_ms or [])]
+        samples_ms = [] if samples_ms is None else list(samples_ms)
+        index = [0] * len(samples_ms) if invocations is None else [int(k) for k in invocations]
+        if len(index) != len(samples_ms):
+            raise ValueError("one invocation index per sample")
+        samples = [(pid, i, float(ms), k) for i, (ms, k) in enumerate(zip(samples_ms, index))]
         db = self._db
+        self._add_invocation_column()
         try:
             db.execute("BEGIN IMMEDIATE")
             io_step("commit", self.path / DB_FILE)
             seq = db.execute("SELECT COALESCE(MAX(seq), 0) + 1 FROM points").fetchone()[0]
             db.execute("INSERT OR REPLACE INTO points (point_id, seq, row) VALUES (?, ?, ?)", (pid, seq, blob))
             db.execute("DELETE FROM samples WHERE point_id = ?", (pid,))
-            db.executemany("INSERT INTO samples (point_id, i, ms) VALUES (?, ?, ?)", samples)
+            db.executemany("INSERT INTO samples (point_id, i, ms, invocation) VALUES (?, ?, ?, ?)", samples)
             db.execute("COMMIT")
         except (sqlite3.Error, OSError) as exc:
             if db.in_transaction:
@@ -400,6 +424,58 @@ class RunDir:
         self._copies_stale = True
         if time.monotonic() - self._copies_at >= max(1.0, 10 * self._copies_cost):
             self._export_tables()
+
+    def _add_invocation_column(self) -> None:
+        """A run started before replicated invocations gains the column when it is resumed."""
+        if not self._has_invocation:
+            self._db.execute("ALTER TABLE samples ADD COLUMN invocation INTEGER NOT NULL DEFAULT 0")
+            self._has_invocation = True
+
+    def write_invocation(self, point_id: str, invocation: int, result: dict) -> None:
+        """Store one worker process's result (PointResult.to_dict()) the moment it finishes."""
+        blob = json.dumps(result, default=_json_default)
+        try:
+            if not self._has_invocations_table:
+                self._db.executescript(_INVOCATIONS_SQL)
+                self._has_invocations_table = True
+            self._db.execute("INSERT OR REPLACE INTO invocations (point_id, invocation, status, result) "
+                             "VALUES (?, ?, ?, ?)", (point_id, int(invocation), str(result.get("status", "")), blob))
+        except sqlite3.Error as exc:
+            raise UserError(f"{self.path / DB_FILE}: cannot store invocation {invocation} of point {point_id} "
+                            f"({exc}); results stored so far are kept") from None
+
+    def invocation_results(self, point_id: str | None = None) -> dict:
+        """{point_id: {invocation: result dict}} of the stored worker processes (of one point, or all)."""
+        if not self._has_invocations_table:
+            return {}
+        sql, args = "SELECT point_id, invocation, result FROM invocations", ()
+        if point_id is not None:
+            sql, args = sql + " WHERE point_id = ?", (point_id,)
+        out: dict = {}
+        try:
+            for pid, k, blob in self._db.execute(sql + " ORDER BY point_id, invocation", args):
+                out.setdefault(pid, {})[int(k)] = json.loads(blob)
+        except (sqlite3.DatabaseError, json.JSONDecodeError) as exc:
+            raise UserError(f"{self.path / DB_FILE}: corrupt invocations table ({exc})") from None
+        return out
+
+    def clear_invocations(self, point_id: str) -> None:
+        """Forget a point's stored worker processes (before measuring a failed point again)."""
+        if self._has_invocations_table:
+            self._db.execute("DELETE FROM invocations WHERE point_id = ?", (point_id,))
+
+    def write_schedule(self, schedule: dict) -> None:
+        """The order the invocations ran in (seed and list), next to the points table."""
+        _atomic_write_bytes(self.path / SCHEDULE_FILE, json.dumps(schedule, indent=1, default=_json_default).encode())
+
+    def schedule(self) -> dict | None:
+        """The recorded invocation order (schedule.json), or None before the first one."""
+        try:
+            return json.loads((self.path / SCHEDULE_FILE).read_text())
+        except FileNotFoundError:
+            return None
+        except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+            raise UserError(f"{self.path / SCHEDULE_FILE}: corrupt schedule ({exc})") from None
 
     def done_ids(self) -> set[str]:
         """Ids of every point already stored (measured or failed)."""
@@ -493,13 +569,14 @@ class RunDir:
         import pandas as pd
 
         db_path = self.path / DB_FILE
+        inv = "invocation" if self._has_invocation else "0"
         try:
-            got = self._db.execute("SELECT point_id, i, ms FROM samples ORDER BY point_id, i").fetchall()
+            got = self._db.execute(f"SELECT point_id, i, ms, {inv} FROM samples ORDER BY point_id, i").fetchall()
         except sqlite3.Error as exc:
             raise _db_error(exc, db_path) from None
-        df = pd.DataFrame(got, columns=["point_id", "i", "ms"])
+        df = pd.DataFrame(got, columns=["point_id", "i", "ms", "invocation"])
         try:
-            return df.astype({"point_id": "object", "i": "int64", "ms": "float64"})
+            return df.astype({"point_id": "object", "i": "int64", "ms": "float64", "invocation": "int64"})
         except (TypeError, ValueError, OverflowError):
             bad = next(r for r in got if not (isinstance(r[1], int) and isinstance(r[2], (int, float))))
             raise UserError(f"{db_path}: damaged run directory: sample {bad[1]!r} of point {str(bad[0])[:40]!r} "
@@ -557,7 +634,8 @@ def rows_to_frame(rows: list[dict]):
 
 
 # Config knobs are whole numbers; kept integral when every row has them.
-_INT_COLUMNS = ("size", "proposals", "intra_threads", "inter_threads", "affinity", "concurrency", "n_samples")
+_INT_COLUMNS = ("size", "proposals", "intra_threads", "inter_threads", "affinity", "concurrency", "n_samples",
+                "invocations", "invocations_failed")
 
 
 def _known_column(values, col: str):
@@ -630,7 +708,7 @@ def load_run(path):
 
 
 def load_samples(path):
-    """Raw latency samples of a run: DataFrame[point_id, i, ms]."""
+    """Raw latency samples of a run: DataFrame[point_id, i, ms, invocation] (invocation 0 in older runs)."""
     with RunDir.open(path, readonly=True) as rd:
         return rd.samples()
 

@@ -35,6 +35,10 @@ def session_options(point, profile_dir: str | None = None):
     so.inter_op_num_threads = int(point.inter_threads)
     so.execution_mode = getattr(ort.ExecutionMode, _MODES[point.exec_mode])
     so.graph_optimization_level = getattr(ort.GraphOptimizationLevel, _LEVELS[point.opt_level])
+    # Spin-waiting (ORT's default) keeps idle pool threads polling for work: see schema.SPIN_VALUES.
+    spin = "0" if getattr(point, "spin_wait", "on") == "off" else "1"
+    so.add_session_config_entry("session.intra_op.allow_spinning", spin)
+    so.add_session_config_entry("session.inter_op.allow_spinning", spin)
     if profile_dir is not None:
         so.enable_profiling = True
         so.profile_file_prefix = os.path.join(profile_dir, "ort_profile")
