@@ -156,7 +156,7 @@ def test_measure_of_a_corrupt_graph_is_bad_input_exit_2(tmp_path, capsys):
     bad.write_bytes(b"\x08\x07garbage" * 50)
     refused(capsys, ["measure", str(bad), "--model", "demo_ssdlite"], "broken.onnx: not a readable ONNX graph")
     refused(capsys, ["measure", str(tmp_path / "missing.onnx"), "--model", "demo_ssdlite"],
-            "missing.onnx: ONNX file not found")
+            "missing.onnx: ONNX graph file not found")
 
 
 def test_load_worker_counts_have_a_range(capsys):

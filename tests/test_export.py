@@ -129,7 +129,7 @@ def test_cache_hit_imports_neither_torch_nor_onnx(records, cache):
 
     import torchvision
 
-    from speedbench.zoo.build import UNTRAINED_RECIPE
+    from speedbench.zoo.weights import UNTRAINED_RECIPE
     from speedbench.zoo.weights import weights_digest
 
     rec = records["ssdlite320_mobilenet_v3_large"]

@@ -88,7 +88,7 @@ def test_render_scene_in_memory_respects_size_and_has_objects():
 @pytest.mark.parametrize("argv, needle", [
     (["--count", "0"], "--count"),
     (["--count", "-3"], "--count"),
-    (["--count", "2", "--width", "10"], "64"),
+    (["--count", "2", "--width", "10"], "--width: must be between 32 and 4096, not 10"),
 ])
 def test_cli_bad_input_is_one_line_exit_2(tmp_path, capsys, argv, needle):
     from speedbench.cli import main

@@ -206,9 +206,13 @@ def test_unknown_model_is_one_line_error_with_close_match(capsys):
 
 
 @pytest.mark.parametrize("argv,needle", [
-    (["--size", "0"], "--size 0"), (["--size", "-5"], "--size -5"), (["--size", "100000"], "--size 100000"),
-    (["--proposals", "0"], "--proposals 0"), (["--proposals", "-3"], "--proposals -3"),
-    (["--weights", "imagenet"], "weights 'imagenet'"), (["--opset", "5"], "--opset 5"),
+    # the message names the option and the value given (argparse's own "argument --X:" form)
+    (["--size", "0"], "--size: must be between 32 and 4096, not 0"),
+    (["--size", "-5"], "--size: must be between 32 and 4096, not -5"),
+    (["--size", "100000"], "--size: must be between 32 and 4096, not 100000"),
+    (["--proposals", "0"], "--proposals: must be between 1 and 10000, not 0"),
+    (["--proposals", "-3"], "--proposals: must be between 1 and 10000, not -3"),
+    (["--weights", "imagenet"], "weights 'imagenet'"), (["--opset", "5"], "--opset: must be between 7 and 30, not 5"),
 ])
 def test_bad_export_arguments_exit_2(capsys, tmp_path, argv, needle):
     code = main(["export", "ssdlite320_mobilenet_v3_large", "--cache-dir", str(tmp_path), *argv])

@@ -110,7 +110,7 @@ def check_graph(graph: str) -> None:
 
     path = Path(graph)
     if not path.is_file():
-        raise UserError(f"{path}: ONNX file not found")
+        raise UserError(f"{path}: ONNX graph file not found")
     try:
         import onnx
 

@@ -270,15 +270,22 @@ def _peaks(peaks: dict | None, config: dict) -> dict | None:
     return ensure_peaks(peaks, {1, int(config["intra_threads"])})
 
 
+def _worker_point(planned: PlannedPoint, profile, graph: PreparedGraph):
+    """The measure.Point a worker runs: the planned point with its graph file, the synthetic
+    backend's settings, and an external graph's adapter (the proposals axis applied)."""
+    c = planned.config
+    entry = external.entry_of(profile, c["model"]) if c["backend"] == "adapted" else None
+    return dataclasses.replace(planned.point, graph=graph.path,
+                               options=dict(profile.synthetic) if c["backend"] == "synthetic" else {},
+                               **(external.point_fields(entry, c["proposals"]) if entry is not None else {}))
+
+
 def _measure(job: PointJob, context: PointContext, graph: PreparedGraph):
     from speedbench.measure import measure_load, measure_point
     from speedbench.measure.load import add_curve
 
     c, profile = job.planned.config, context.profile
-    entry = external.entry_of(profile, c["model"]) if c["backend"] == "adapted" else None
-    point = dataclasses.replace(job.planned.point, graph=graph.path,
-                                options=dict(profile.synthetic) if c["backend"] == "synthetic" else {},
-                                **(external.point_fields(entry, c["proposals"]) if entry is not None else {}))
+    point = _worker_point(job.planned, profile, graph)
     if c["concurrency"] == 1 and context.load is None:
         return measure_point(point, context.images, context.policy, profile.timeout_s)
     load = context.load or LoadSettings(seconds=None)
@@ -300,8 +307,7 @@ def run_invocation(job: PointJob, context: PointContext, index: int):
         graph = context.graphs.prepare(planned)
         if not graph.ok and planned.config["backend"] != "eager":   # eager builds its model itself
             return graph.reason
-        point = dataclasses.replace(planned.point, graph=graph.path,
-                                    options=dict(profile.synthetic) if planned.config["backend"] == "synthetic" else {})
+        point = _worker_point(planned, profile, graph)
         policy = context.policy if index == 0 else dataclasses.replace(context.policy, profile_stages=False)
         t0 = time.monotonic()
         result = measure_point(point, context.images, policy, profile.timeout_s, invocation=index)
