@@ -46,6 +46,11 @@ ID_DEFAULTS: dict = {}
 # Percentiles reported for every latency distribution, in milliseconds.
 LATENCY_STATS = ("p50", "p90", "p99")
 
+# Host speed probe (speedbench/measure/probe.py), timed at the start and the end of each worker
+# process: median ms of its rounds; probe_raw keeps every round time as JSON
+# ({"start": {"hash_ms": [...], "copy_ms": [...], "ms": m, "version": v}, "end": {...}}).
+PROBE_COLUMNS = ("probe_start_ms", "probe_end_ms", "probe_raw")
+
 # Other columns of the points table (see README.md for their meaning).
 RESULT_COLUMNS = (
     "point_id", "host", "family", "status", "reason",
@@ -64,6 +69,7 @@ RESULT_COLUMNS = (
     "params", "gmacs",
     "map", "map50", "map75", "map_small", "map_medium", "map_large", "mar_100",
     "map_ci_lo", "map_ci_hi", "untrained",
+    *PROBE_COLUMNS,
 )
 
 

@@ -21,6 +21,10 @@ def add_parser(subparsers):
     p.add_argument("--fail-on-drift", action="store_true",
                    help="count changed detections on the held-out images as a regression")
     p.add_argument("--seed", type=int, default=0, help="bootstrap seed (default 0)")
+    p.add_argument("--host-adjusted", action="store_true",
+                   help="gate on the latency verdict adjusted by the host speed probe (the machine's own "
+                        "speed change between the runs) instead of the raw one; both are always shown "
+                        "when they differ")
     p.set_defaults(run=run)
 
 
@@ -39,7 +43,7 @@ def run(args) -> int:
 
     base, new = Run.load(args.base), Run.load(args.new)
     result = compare(base, new, threshold=args.threshold, confidence=args.confidence, seed=args.seed,
-                     fail_on_drift=args.fail_on_drift)
+                     fail_on_drift=args.fail_on_drift, host_adjusted=args.host_adjusted)
     out = {"text": result.to_text, "md": result.to_markdown, "json": result.to_json}[args.format]()
     print(out)
     if not len(result.points):

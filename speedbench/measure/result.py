@@ -1,6 +1,7 @@
 """The outcome of measuring one point, and its rendering as one flat table row."""
 from __future__ import annotations
 
+import json
 import math
 from dataclasses import dataclass, field
 
@@ -48,6 +49,7 @@ class PointResult:
         row["profiling_overhead"] = self.profiling_overhead
         for col in MEMORY_COLUMNS:
             row[col] = float(self.memory.get(col, NAN))
+        row.update(probe_columns(self.extra.get("probe")))
         return row
 
     def to_dict(self) -> dict:
@@ -79,6 +81,17 @@ class PointResult:
             return f"{head}, {self.reason})"
         stages = ", ".join(f"{k}={v:.2f}" for k, v in self.stages.items() if v > 0)
         return f"{head}, {self.measurement!r}" + (f", stages ms: {stages}" if stages else "") + ")"
+
+
+def probe_columns(probe: dict | None) -> dict:
+    """schema.PROBE_COLUMNS from the worker's probe record (NaN / "" when it took none)."""
+    probe = probe or {}
+    out = {}
+    for phase in ("start", "end"):
+        ms = (probe.get(phase) or {}).get("ms")
+        out[f"probe_{phase}_ms"] = float(ms) if isinstance(ms, (int, float)) else NAN
+    out["probe_raw"] = json.dumps(probe, sort_keys=True) if probe else ""
+    return out
 
 
 def _json_float(x):

@@ -14,6 +14,8 @@ import os
 import sys
 import traceback
 
+from speedbench.measure.probe import run_probe
+
 # Libraries whose import cost belongs to "after imports" for each backend.
 IMPORTS = {"ort": ("numpy", "onnxruntime", "onnx"), "eager": ("numpy", "torch", "torchvision"),
            "synthetic": ("numpy",)}
@@ -45,6 +47,8 @@ def run_worker(spec: dict) -> dict:
     extra = {}
     if point_d.get("affinity"):
         extra["cpus"] = pin(int(point_d["affinity"]))
+    # Host speed before anything of the measured stack is imported (see measure/probe.py).
+    probe = {"start": run_probe()}
 
     import importlib
 
@@ -91,6 +95,8 @@ def run_worker(spec: dict) -> dict:
             result.profiling_overhead = float(np.median(runs)) / measurement.median - 1
             extra["profile"] = prof
     runner.close()
+    probe["end"] = run_probe()
+    extra["probe"] = probe
     return result.to_dict()
 
 

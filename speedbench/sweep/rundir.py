@@ -44,7 +44,7 @@ PER_IMAGE_DIR = "per_image"   # per-image accuracy results of each graph (<per_i
 
 # Columns that hold text; every other schema column is numeric (NaN when missing).
 TEXT_COLUMNS = {"model", "weights", "backend", "exec_mode", "opt_level",
-                "point_id", "host", "family", "status", "reason", "stage_method"}
+                "point_id", "host", "family", "status", "reason", "stage_method", "probe_raw"}
 BOOL_COLUMNS = {"noisy", "untrained"}
 
 _SCHEMA_SQL = """
