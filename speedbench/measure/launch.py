@@ -69,8 +69,14 @@ def signal_reason(returncode: int) -> str:
     return _SIGNAL_REASONS.get(sig, f"killed by {sig.name}")
 
 
-def measure_point(point: Point, images, policy: Policy | None = None, timeout_s: float = 600) -> PointResult:
-    """Measure one point in its own worker process; never raises for a worker failure."""
+def measure_point(point: Point, images, policy: Policy | None = None, timeout_s: float = 600,
+                  python: str | None = None) -> PointResult:
+    """Measure one point in its own worker process; never raises for a worker failure.
+
+    python: the interpreter the worker is started with (default: this one). An upgrade check
+    measures the same point under two environments' interpreters (speedbench.sweep.interpreters
+    checks them first).
+    """
     policy = policy or Policy()
     point.validate()
     policy.validate()
@@ -88,7 +94,7 @@ def measure_point(point: Point, images, policy: Policy | None = None, timeout_s:
                 "parent_pid": os.getpid()}
         (tmp / "spec.json").write_text(json.dumps(spec))
         with open(tmp / "stderr.txt", "wb") as err:
-            proc = subprocess.Popen([sys.executable, "-m", "speedbench.measure.worker", str(tmp / "spec.json")],
+            proc = subprocess.Popen([python or sys.executable, "-m", "speedbench.measure.worker", str(tmp / "spec.json")],
                                     env=thread_env(point), stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
                                     stderr=err, start_new_session=True)
             timed_out = False

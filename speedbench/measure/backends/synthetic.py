@@ -20,6 +20,9 @@ model "synthetic:work_ms=5,alloc_mib=300". Keys:
 - fail         "abort" | "segv" | "hang" | "raise" | "sigkill"
 - fail_at      "load" (default) or "run"; fail_after: runs before failing at "run"
 - stages       {"backbone": 0.6, ...} fractions of work_ms reported by profile()
+- drift_per_s  a slow drift of the whole machine: work_ms x (1 + drift_per_s x (t - drift_t0)),
+               t the wall clock (s since the epoch) when a run starts, drift_t0 a given
+               start time (default: when the worker loaded); see drift_factor
 """
 from __future__ import annotations
 
@@ -34,7 +37,7 @@ DEFAULT_STAGES = {"preprocess": 0.1, "backbone": 0.5, "head": 0.3, "postprocess"
 
 
 KEYS = ("work_ms", "delay_ms", "mode", "jitter", "seed", "alloc_mib", "load_mib", "limit_mib",
-        "fail", "fail_at", "fail_after", "stages")
+        "fail", "fail_at", "fail_after", "stages", "drift_per_s", "drift_t0")
 
 
 def settings(point) -> dict:
@@ -56,6 +59,18 @@ def settings(point) -> dict:
         size = point.size or 320
         opts["work_ms"] = 2.0 * (size / 320) ** 2 + 0.002 * (point.proposals or 0)
     return opts
+
+
+def drift_factor(opts: dict, t: float) -> float:
+    """How much slower the simulated machine is at wall-clock time t (1 = not at all).
+
+    Linear in time from drift_t0, floored at 0.1 so that a long negative drift stays a
+    machine getting faster, not one taking no time at all.
+    """
+    rate = float(opts.get("drift_per_s", 0.0) or 0.0)
+    if not rate:
+        return 1.0
+    return max(0.1, 1.0 + rate * (t - float(opts.get("drift_t0", t))))
 
 
 def _number(v: str):
@@ -105,6 +120,7 @@ class Runner:
         self.alloc = int(float(self.opts.get("alloc_mib", 0)) * 2**20)
         self.rng = np.random.default_rng(int(self.opts.get("seed", 0)))
         self.runs = 0
+        self.opts.setdefault("drift_t0", time.time())
         fail = self.opts.get("fail")
         if fail and self.opts.get("fail_at", "load") == "load":
             _fail(fail)
@@ -122,9 +138,10 @@ class Runner:
         return np.asarray(image)
 
     def _ms(self) -> float:
+        ms = self.work_ms * drift_factor(self.opts, time.time())
         if self.jitter:
-            return self.work_ms * (1 + self.rng.uniform(-self.jitter, self.jitter))
-        return self.work_ms
+            return ms * (1 + self.rng.uniform(-self.jitter, self.jitter))
+        return ms
 
     def __call__(self, x):
         self.runs += 1
