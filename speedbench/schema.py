@@ -35,16 +35,21 @@ CONFIG_COLUMNS = (
     "opt_level",      # ORT graph optimisation level name; "" for eager
     "affinity",       # number of cores the worker was pinned to; 0 = not pinned
     "concurrency",    # K concurrent workers for throughput points; 1 otherwise
+    "env",            # interleaved A/B runs: which Python environment ("A" old, "B" new); "" otherwise
 )
 
 # Identity columns added after runs already existed, with the value every older run
 # implicitly had. point_id leaves such a column out while it holds that value, so the
 # ids of configurations that existed before stay the same (resume and compare rely on it).
 # A new identity column is appended to CONFIG_COLUMNS and entered here.
-ID_DEFAULTS: dict = {}
+ID_DEFAULTS: dict = {"env": ""}
 
 # Percentiles reported for every latency distribution, in milliseconds.
 LATENCY_STATS = ("p50", "p90", "p99")
+
+# Interleaved A/B runs (speedbench compare --envs): the environment's interpreter and a digest of
+# its software (Python, package versions, code revision), and the worker invocations of the row.
+INTERLEAVED_COLUMNS = ("env_python", "env_fingerprint", "invocations")
 
 # Host speed probe (speedbench/measure/probe.py), timed at the start and the end of each worker
 # process: median ms of its rounds; probe_raw keeps every round time as JSON
@@ -54,6 +59,7 @@ PROBE_COLUMNS = ("probe_start_ms", "probe_end_ms", "probe_raw")
 # Other columns of the points table (see README.md for their meaning).
 RESULT_COLUMNS = (
     "point_id", "host", "family", "status", "reason",
+    *INTERLEAVED_COLUMNS,
     "n_samples", "lat_min_ms", "lat_mean_ms", "lat_std_ms", "lat_cov",
     *[f"lat_{s}_ms" for s in LATENCY_STATS],
     *[f"lat_{s}_ci_lo_ms" for s in LATENCY_STATS],
@@ -100,6 +106,11 @@ def latency_column(stat: str) -> str:
     return f"lat_{stat}_ms"
 
 
+def _is_default(column: str, value) -> bool:
+    """A later identity column that is missing (None, NaN: a frame without it) or at its default."""
+    return value is None or value != value or value == ID_DEFAULTS[column]
+
+
 def point_id(config: dict) -> str:
     """Stable id of a configuration: a digest of its CONFIG_COLUMNS values.
 
@@ -109,7 +120,6 @@ def point_id(config: dict) -> str:
     import hashlib
     import json
 
-    key = {c: config.get(c) for c in CONFIG_COLUMNS
-           if not (c in ID_DEFAULTS and config.get(c, ID_DEFAULTS[c]) == ID_DEFAULTS[c])}
+    key = {c: config.get(c) for c in CONFIG_COLUMNS if not (c in ID_DEFAULTS and _is_default(c, config.get(c)))}
     blob = json.dumps(key, sort_keys=True, default=str).encode()
     return hashlib.sha1(blob).hexdigest()[:12]

@@ -30,6 +30,9 @@ def label(row) -> str:
     opt = get("opt_level", "")
     if isinstance(opt, str) and opt not in ("", "all"):
         parts.append(f"opt {opt}")
+    env = get("env", "")
+    if isinstance(env, str) and env:
+        parts.append(f"[{env}]")
     pin = _int_or(get("affinity", None))
     if pin:
         parts.append(f"{pin} cores")

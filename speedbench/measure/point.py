@@ -33,6 +33,7 @@ class Point:
     opt_level: str = "all"
     affinity: int = 0
     concurrency: int = 1
+    env: str = ""
     graph: str | None = None
     options: dict = field(default_factory=dict)
 
@@ -64,6 +65,8 @@ class Point:
             value = getattr(self, name)
             if not isinstance(value, int) or isinstance(value, bool) or value < 0:
                 raise UserError(f"point field {name!r}: expected an integer >= 0, got {value!r}")
+        if not isinstance(self.env, str):
+            raise UserError(f"point field 'env': expected a text label, got {self.env!r}")
         if not isinstance(self.concurrency, int) or isinstance(self.concurrency, bool) or self.concurrency < 1:
             raise UserError(f"point field 'concurrency': expected an integer >= 1, got {self.concurrency!r}")
         cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()

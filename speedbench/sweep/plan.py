@@ -198,7 +198,7 @@ def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, conc
     config = {
         "model": entry.id, "weights": entry.weights, "size": int(size), "proposals": int(prop),
         "backend": backend, "intra_threads": t.intra, "inter_threads": inter, "exec_mode": mode,
-        "opt_level": opt, "affinity": t.affinity, "concurrency": k,
+        "opt_level": opt, "affinity": t.affinity, "concurrency": k, "env": "",
     }
     return config, tuple(point_notes)
 

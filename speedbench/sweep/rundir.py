@@ -5,7 +5,8 @@ Layout of a run directory::
     meta.json        profile name, host label, start/end times, version, environment
     profile.toml     verbatim copy of the profile the sweep ran
     points.sqlite    the source of truth: points(point_id PRIMARY KEY, seq, row JSON),
-                     samples(point_id, i, ms)
+                     samples(point_id, i, ms); in an interleaved A/B run also
+                     invocations(point_id, invocation, seq, row JSON, samples JSON)
     points.csv       the points table, regenerated as points arrive (temp file + os.replace)
     points.parquet   the same, when pyarrow is installed
     exports/         the ONNX graphs the sweep exported (content-hash cache)
@@ -44,7 +45,8 @@ PER_IMAGE_DIR = "per_image"   # per-image accuracy results of each graph (<per_i
 
 # Columns that hold text; every other schema column is numeric (NaN when missing).
 TEXT_COLUMNS = {"model", "weights", "backend", "exec_mode", "opt_level",
-                "point_id", "host", "family", "status", "reason", "stage_method", "probe_raw"}
+                "point_id", "host", "family", "status", "reason", "stage_method", "probe_raw",
+                "env", "env_python", "env_fingerprint"}
 BOOL_COLUMNS = {"noisy", "untrained"}
 
 _SCHEMA_SQL = """
@@ -59,6 +61,20 @@ CREATE TABLE IF NOT EXISTS samples (
     ms REAL NOT NULL,
     PRIMARY KEY (point_id, i)
 );
+"""
+
+
+# Worker invocations of points measured in several (interleaved A/B runs); created on first use,
+# so runs without it read as having none. samples: that invocation's raw samples, JSON list (ms).
+_INVOCATIONS_SQL = """
+CREATE TABLE IF NOT EXISTS invocations (
+    point_id TEXT NOT NULL,
+    invocation INTEGER NOT NULL,
+    seq INTEGER NOT NULL,
+    row TEXT NOT NULL,
+    samples TEXT NOT NULL,
+    PRIMARY KEY (point_id, invocation)
+)
 """
 
 
@@ -200,6 +216,17 @@ class RunDir:
         replaces both the row and its samples. The CSV/Parquet copies are
         regenerated afterwards (they are conveniences; SQLite is the truth).
         """
+        self._transaction(row, samples_ms)
+
+    def write_invocation(self, row: dict, samples_ms, invocation: dict, invocation_samples_ms) -> None:
+        """Store one worker invocation of a point measured in several (an interleaved A/B run)
+        together with the point's updated row and pooled samples, in one transaction.
+
+        invocation: that invocation's own row; its key is (row["point_id"], invocation["invocation"]).
+        """
+        self._transaction(row, samples_ms, (invocation, invocation_samples_ms))
+
+    def _transaction(self, row: dict, samples_ms, invocation=None) -> None:
         pid = row.get("point_id")
         if not pid:
             raise ValueError("row has no point_id")
@@ -212,6 +239,15 @@ class RunDir:
             db.execute("INSERT OR REPLACE INTO points (point_id, seq, row) VALUES (?, ?, ?)", (pid, seq, blob))
             db.execute("DELETE FROM samples WHERE point_id = ?", (pid,))
             db.executemany("INSERT INTO samples (point_id, i, ms) VALUES (?, ?, ?)", samples)
+            if invocation is not None:
+                inv, inv_samples = invocation
+                db.execute(_INVOCATIONS_SQL)
+                inv_seq = db.execute("SELECT COALESCE(MAX(seq), 0) + 1 FROM invocations").fetchone()[0]
+                db.execute("INSERT OR REPLACE INTO invocations (point_id, invocation, seq, row, samples) "
+                           "VALUES (?, ?, ?, ?, ?)",
+                           (pid, int(inv["invocation"]), inv_seq,
+                            json.dumps({k: _clean(v) for k, v in inv.items()}, default=_json_default),
+                            json.dumps([float(x) for x in inv_samples or []])))
             db.execute("COMMIT")
         except sqlite3.Error as exc:
             if db.in_transaction:
@@ -292,6 +328,27 @@ class RunDir:
                      for k in df["per_image_key"]]
             df["per_image_file"] = [f if f and os.path.isfile(f) else "" for f in files]
         return df
+
+    def invocations(self) -> list[dict]:
+        """Every stored worker invocation's row (with point_id, invocation, seq and samples_ms)."""
+        try:
+            if not self._db.execute("SELECT 1 FROM sqlite_master WHERE type='table' AND name='invocations'").fetchone():
+                return []
+            got = self._db.execute("SELECT point_id, invocation, seq, row, samples FROM invocations "
+                                   "ORDER BY seq").fetchall()
+        except sqlite3.DatabaseError as exc:
+            raise UserError(f"{self.path / DB_FILE}: corrupt points database ({exc})") from None
+        out = []
+        for pid, inv, seq, blob, samples in got:
+            try:
+                row, ms = json.loads(blob), json.loads(samples)
+            except json.JSONDecodeError:
+                raise UserError(f"{self.path / DB_FILE}: corrupt invocation {inv} of point {pid}") from None
+            if not isinstance(row, dict) or not isinstance(ms, list):
+                raise UserError(f"{self.path / DB_FILE}: corrupt invocation {inv} of point {pid}")
+            row.update(point_id=pid, invocation=inv, seq=seq, samples_ms=ms)
+            out.append(row)
+        return out
 
     def samples(self):
         import pandas as pd
