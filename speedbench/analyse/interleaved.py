@@ -13,13 +13,19 @@ from __future__ import annotations
 
 import math
 import zlib
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
+from speedbench.analyse.common import label
+from speedbench.analyse.compare import _accuracy_delta
 from speedbench.analyse.comparison import Comparison
+from speedbench.analyse.rundiff import env_diff
 from speedbench.analyse.hostspeed import verdict as threshold_verdict
 from speedbench.errors import UserError
+from speedbench.schema import point_id
+from speedbench.sweep.rundir import RunDir
 
 N_BOOT = 2000
 MIN_PAIRS = 3     # fewer complete pairs than this: the ratio is reported without a verdict
@@ -130,3 +136,71 @@ def _drift(inv: pd.DataFrame) -> str:
         return "not recorded"
     return "same" if d["A"] == d["B"] else "changed"
 
+
+
+# ----------------------------------------------------------------- a stored interleaved run
+def compare_run(path, threshold: float = 0.05, confidence: float = 0.95, seed: int = 0, n_boot: int = N_BOOT,
+                fail_on_drift: bool = False) -> Comparison:
+    """The verdicts of an interleaved run directory (made by `speedbench compare --envs`)."""
+    if not Path(path).exists():
+        raise UserError(f"{path}: run directory not found")
+    with RunDir.open(path) as rd:
+        meta, invs, points = rd.meta(), rd.invocations(), rd.points()
+    setup = meta.get("interleaved")
+    if not isinstance(setup, dict) or not isinstance(setup.get("envs"), dict):
+        raise UserError(f"{path}: not an interleaved run (one made by speedbench compare --envs)")
+    envs = setup["envs"]
+    recs = [{"point_id": r.get("config_id"), "label": label({**r, "env": ""}), "env": r.get("env"),
+             "pair": r.get("pair"), "status": r.get("status"), "lat_p50_ms": _num(r.get("lat_p50_ms")),
+             "rss_peak_mib": _num(r.get("rss_peak_mib")), "det_digest": r.get("det_digest"),
+             "reason": r.get("reason") or ""} for r in invs]
+    inv = pd.DataFrame(recs, columns=[*INVOCATION_COLUMNS, "rss_peak_mib", "det_digest", "reason"])
+    names = {s: f"{s} ({(envs.get(s) or {}).get('python', '?')})" for s in ("A", "B")}
+    notes = [f"interleaved run: {setup.get('pairs')} A/B pair(s) per point in a seeded ABBA order "
+             f"(seed {setup.get('seed')}); {_graph_mode(setup)}"]
+    expected = len({tuple(o[1:3]) for o in setup.get("order") or []})
+    got = len(complete_pairs_all(inv))
+    if got < expected:
+        notes.append(f"{got} of {expected} planned pairs complete (an interrupted run: resume it with --resume)")
+    c = compare_invocations(inv, threshold, confidence, seed, n_boot, fail_on_drift, names["A"], names["B"],
+                            env_diff({"env": (envs.get("A") or {}).get("env")}, {"env": (envs.get("B") or {}).get("env")}),
+                            notes)
+    _add_accuracy(c, points)
+    drift = c.points["drift"].value_counts().to_dict() if len(c.points) else {}
+    if drift.get("changed"):
+        c.notes.append(f"detections on the held-out images differ between the environments for {drift['changed']} "
+                       f"configuration(s)" + ("" if fail_on_drift else " (reported; --fail-on-drift gates on it)"))
+    elif drift.get("same"):
+        c.notes.append("detections on the held-out images are the same in both environments")
+    return c
+
+
+def complete_pairs_all(inv: pd.DataFrame) -> list:
+    return [(pid, p) for pid, g in inv.groupby("point_id", sort=False) for p in complete_pairs(g)["pair"]]
+
+
+def _graph_mode(setup: dict) -> str:
+    if setup.get("graph_mode") == "same":
+        return "one graph file (exported in A) measured in both environments: the runtime alone is compared"
+    return "each environment exported its own graph: the whole stack is compared, exporter included"
+
+
+def _add_accuracy(c: Comparison, points: pd.DataFrame) -> None:
+    """mAP change B - A per configuration (paired over the same images where both kept per-image results)."""
+    if not len(c.points) or "env" not in points.columns:
+        return
+    rows = {}
+    for r in points.to_dict("records"):
+        rows[(point_id({**r, "env": ""}), r.get("env"))] = pd.Series(r)   # A's and B's rows share this id
+    for i, p in c.points.iterrows():
+        a, b = rows.get((p["point_id"], "A")), rows.get((p["point_id"], "B"))
+        if a is None or b is None or str(p["verdict"]).startswith("failed"):
+            continue
+        for k, v in _accuracy_delta(a, b).items():
+            c.points.at[i, k] = v
+        if c.points.at[i, "accuracy"] == "lower":
+            c.points.at[i, "regression"] = True
+
+
+def _num(v) -> float:
+    return float(v) if isinstance(v, (int, float)) and v is not None else math.nan

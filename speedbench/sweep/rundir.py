@@ -329,13 +329,16 @@ class RunDir:
             df["per_image_file"] = [f if f and os.path.isfile(f) else "" for f in files]
         return df
 
-    def invocations(self) -> list[dict]:
-        """Every stored worker invocation's row (with point_id, invocation, seq and samples_ms)."""
+    def invocations(self, point_id: str | None = None) -> list[dict]:
+        """Stored worker invocations' rows (with point_id, invocation, seq and samples_ms), all or one point's."""
         try:
             if not self._db.execute("SELECT 1 FROM sqlite_master WHERE type='table' AND name='invocations'").fetchone():
                 return []
-            got = self._db.execute("SELECT point_id, invocation, seq, row, samples FROM invocations "
-                                   "ORDER BY seq").fetchall()
+            sql = "SELECT point_id, invocation, seq, row, samples FROM invocations"
+            args = ()
+            if point_id is not None:
+                sql, args = sql + " WHERE point_id = ?", (point_id,)
+            got = self._db.execute(sql + " ORDER BY seq", args).fetchall()
         except sqlite3.DatabaseError as exc:
             raise UserError(f"{self.path / DB_FILE}: corrupt points database ({exc})") from None
         out = []
