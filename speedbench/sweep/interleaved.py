@@ -39,6 +39,7 @@ from speedbench.sweep.plan import expand_plan
 from speedbench.sweep.profile import load_profile, parse_profile
 from speedbench.sweep.progress import Progress
 from speedbench.sweep.rundir import PER_IMAGE_DIR, RunDir, now_iso
+from speedbench.sweep.runner import same_study
 
 SIDES = ("A", "B")
 DEFAULT_PAIRS = 6
@@ -83,8 +84,7 @@ def _open(out: Path, profile, setup: dict, resume: bool) -> RunDir:
         meta = rd.meta()
         stored = meta.get("interleaved") or {}
         try:
-            same_profile = parse_profile(rd.profile_text(), str(out / "profile.toml")) == \
-                dataclasses.replace(profile, source=str(out / "profile.toml"), text=rd.profile_text())
+            same_profile = same_study(parse_profile(rd.profile_text(), str(out / "profile.toml")), profile)
         except UserError:
             same_profile = False
         problem = ("it is not an interleaved run" if not stored else

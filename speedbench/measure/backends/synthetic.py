@@ -20,6 +20,8 @@ model "synthetic:work_ms=5,alloc_mib=300". Keys:
 - fail         "abort" | "segv" | "hang" | "raise" | "sigkill"
 - fail_at      "load" (default) or "run"; fail_after: runs before failing at "run"
 - stages       {"backbone": 0.6, ...} fractions of work_ms reported by profile()
+- SPEEDBENCH_SYNTHETIC_FACTOR (environment variable, not a setting): multiplies work_ms; a test
+               gives it to one side of an interleaved A/B run to stand for a slower environment
 - drift_per_s  a slow drift of the whole machine: work_ms x (1 + drift_per_s x (t - drift_t0)),
                t the wall clock (s since the epoch) when a run starts, drift_t0 a given
                start time (default: when the worker loaded); see drift_factor
@@ -114,7 +116,7 @@ class Runner:
 
     def __init__(self, point):
         self.opts = settings(point)
-        self.work_ms = float(self.opts["work_ms"])
+        self.work_ms = float(self.opts["work_ms"]) * float(os.environ.get("SPEEDBENCH_SYNTHETIC_FACTOR") or 1.0)
         self.mode = self.opts.get("mode", "busy")
         self.jitter = float(self.opts.get("jitter", 0.0))
         self.alloc = int(float(self.opts.get("alloc_mib", 0)) * 2**20)
