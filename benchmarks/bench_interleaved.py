@@ -2,6 +2,7 @@
 
     python benchmarks/bench_interleaved.py [--repeats 3] [--pairs 4] [--seconds 1.5]
                                            [--other /path/to/other-venv/bin/python] [--out DIR]
+                                           [--parts aa,seq,other,other-same]
 
 Uses the upgrade-check profile's points (profiles/upgrade-check.toml) with shorter timing per
 worker invocation (--seconds; an interleaved run spreads its samples over 2 x pairs invocations).
@@ -71,7 +72,8 @@ def main() -> int:
     ap.add_argument("--seconds", type=float, default=1.5)
     ap.add_argument("--other", help="interpreter of a second environment (e.g. another onnxruntime)")
     ap.add_argument("--out", default="/tmp/bench-interleaved")
-    ap.add_argument("--skip-aa", action="store_true")
+    ap.add_argument("--parts", default="aa,seq,other,other-same",
+                    help="which parts to run, in this order (a loaded machine may not leave time for all)")
     args = ap.parse_args()
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
@@ -82,44 +84,53 @@ def main() -> int:
           flush=True)
 
     # warm the export and accuracy caches so that no run below pays for them
-    code, _, wall = sb("sweep", str(prof), "-o", str(out / "warm"), "-q", out_json=False)
-    print(f"cache warm-up sweep: exit {code}, {wall:.0f} s; {load()}", flush=True)
-
-    if not args.skip_aa:
-        exits = []
-        for r in range(args.repeats):
-            run = out / f"aa{r}"
-            code, doc, wall = sb("compare", "--envs", py, py, str(prof), "-o", str(run), "--pairs", str(args.pairs),
-                                 "--seed", str(r), "-q")
-            exits.append(code)
-            print(f"A/A interleaved repeat {r}: exit {code}, {wall:.0f} s; {load()}\n  {ratios(doc)}", flush=True)
-        print(f"A/A interleaved: {exits.count(0)} of {len(exits)} exit 0", flush=True)
-        inter_wall = wall
-
-        seq = []
-        for name in ("seq_before", "seq_after"):
-            code, _, wall = sb("sweep", str(prof), "-o", str(out / name), "-q", out_json=False)
-            seq.append(wall)
-            print(f"sequential sweep {name}: exit {code}, {wall:.0f} s; {load()}", flush=True)
-        code, doc, _ = sb("compare", str(out / "seq_before"), str(out / "seq_after"))
-        host = doc.get("host_speed") if isinstance(doc, dict) else None
-        print(f"sequential A/A compare: exit {code}; host probe {host}\n  {ratios(doc)}", flush=True)
-        print(f"wall time: interleaved A/A run ({2 * args.pairs} invocations per point) {inter_wall:.0f} s vs two "
-              f"sequential sweeps (1 invocation per point each) {sum(seq):.0f} s: "
-              f"{inter_wall / sum(seq):.2f}x; {load()}", flush=True)
-
-    if args.other:
-        for extra in ([], ["--same-graph"]):
-            run = out / ("other" + ("-same" if extra else ""))
-            code, doc, wall = sb("compare", "--envs", py, args.other, str(prof), "-o", str(run),
-                                 "--pairs", str(args.pairs), "-q", *extra)
-            print(f"old {py} vs new {args.other} {' '.join(extra)}: exit {code}, {wall:.0f} s; {load()}\n"
-                  f"  {ratios(doc)}", flush=True)
-            if isinstance(doc, dict):
-                print("  env diff: " + "; ".join(f"{d['key']}: {d['base']} -> {d['new']}" for d in doc["env_diff"]
-                                                 if d["key"].startswith("packages")))
-                print("  notes: " + " | ".join(doc["notes"]), flush=True)
+    if not (out / "warm" / "meta.json").exists():
+        code, _, wall = sb("sweep", str(prof), "-o", str(out / "warm"), "-q", out_json=False)
+        print(f"cache warm-up sweep: exit {code}, {wall:.0f} s; {load()}", flush=True)
+    for part in args.parts.split(","):
+        if part == "aa":
+            aa(args, out, prof, py)
+        elif part == "seq":
+            sequential(out, prof)
+        elif part in ("other", "other-same") and args.other:
+            other(args, out, prof, py, part == "other-same")
     return 0
+
+
+def aa(args, out, prof, py):
+    exits = []
+    for r in range(args.repeats):
+        run = out / f"aa{r}"
+        code, doc, wall = sb("compare", "--envs", py, py, str(prof), "-o", str(run), "--pairs", str(args.pairs),
+                             "--seed", str(r), "-q")
+        exits.append(code)
+        print(f"A/A interleaved repeat {r}: exit {code}, {wall:.0f} s ({2 * args.pairs} invocations per point); "
+              f"{load()}\n  {ratios(doc)}", flush=True)
+    print(f"A/A interleaved: {exits.count(0)} of {len(exits)} exit 0", flush=True)
+
+
+def sequential(out, prof):
+    seq = []
+    for name in ("seq_before", "seq_after"):
+        code, _, wall = sb("sweep", str(prof), "-o", str(out / name), "-q", out_json=False)
+        seq.append(wall)
+        print(f"sequential sweep {name}: exit {code}, {wall:.0f} s (1 invocation per point); {load()}", flush=True)
+    code, doc, _ = sb("compare", str(out / "seq_before"), str(out / "seq_after"))
+    host = doc.get("host_speed") if isinstance(doc, dict) else None
+    print(f"sequential A/A compare: exit {code}; host probe {host}\n  {ratios(doc)}", flush=True)
+
+
+def other(args, out, prof, py, same):
+    extra = ["--same-graph"] if same else []
+    run = out / ("other-same" if same else "other")
+    code, doc, wall = sb("compare", "--envs", py, args.other, str(prof), "-o", str(run),
+                         "--pairs", str(args.pairs), "-q", *extra)
+    print(f"old {py} vs new {args.other} {' '.join(extra)}: exit {code}, {wall:.0f} s; {load()}\n"
+          f"  {ratios(doc)}", flush=True)
+    if isinstance(doc, dict):
+        print("  env diff: " + "; ".join(f"{d['key']}: {d['base']} -> {d['new']}" for d in doc["env_diff"]
+                                         if d["key"].startswith("packages")))
+        print("  notes: " + " | ".join(doc["notes"]), flush=True)
 
 
 if __name__ == "__main__":

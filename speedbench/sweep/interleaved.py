@@ -29,7 +29,7 @@ from pathlib import Path
 
 from speedbench.errors import UserError
 from speedbench.measure.result import NAN
-from speedbench.schema import point_id
+from speedbench.measure.stats import Measurement
 from speedbench.sweep import steps
 from speedbench.sweep.env import environment_fingerprint
 from speedbench.sweep.interleave import schedule
@@ -122,10 +122,10 @@ def _run(rd: RunDir, profile, points, order, envs, same_graph, notes, quiet, str
     progress = Progress(len(todo), quiet=quiet, stream=stream)
     try:
         graphs = _prepare_graphs(rd, profile, points, envs, same_graph, progress, quiet) if needs_data else {}
+        images, policy = steps.timing_images(dataset, profile.timing_images), steps.make_policy(profile.repetitions)
         contexts = {s: PointContext(profile=profile, graphs=GraphStore.prepared(profile, graphs.get(s, {})),
-                                    images=steps.timing_images(dataset, profile.timing_images),
-                                    policy=steps.make_policy(profile.repetitions), host=profile.host,
-                                    python=envs[s].python) for s in SIDES}
+                                    images=images, policy=policy, host=profile.host, python=envs[s].python)
+                    for s in SIDES}
         for slot in todo:
             planned = by_id[slot.point_id]
             side = dataclasses.replace(planned, point=dataclasses.replace(planned.point, env=slot.side))
@@ -172,8 +172,6 @@ def _pooled_row(others: list[dict], inv: dict, pooled: list) -> dict:
     invocations: how many succeeded; between_cov: CoV of their medians (the spread between
     worker processes, which pooled samples hide); probe_raw: every invocation's probe record.
     """
-    from speedbench.measure.stats import Measurement
-
     own = ("invocation", "pair", "slot", "samples_ms", "seq")
     ok = [x for x in others if x.get("status") == "ok"] + ([inv] if inv.get("status") == "ok" else [])
     row = {k: v for k, v in (inv if inv.get("status") == "ok" or not ok else ok[-1]).items() if k not in own}
@@ -234,8 +232,3 @@ def _graphs_in(env: Interpreter, rd: RunDir, profile, keys, side: str, given, qu
             return {k: PreparedGraph(ok=False, reason=reason) for k in keys}
         got = json.loads(result.read_text())
     return {GraphKey(*json.loads(k)): PreparedGraph(**v) for k, v in got.items()}
-
-
-def config_id(row: dict) -> str:
-    """The id of a row's configuration without its environment: A's and B's rows share it."""
-    return point_id({**row, "env": ""})
