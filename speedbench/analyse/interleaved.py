@@ -196,7 +196,8 @@ def compare_run(path, threshold: float = 0.05, confidence: float = 0.95, seed: i
     expected = len({tuple(o[1:3]) for o in setup.get("order") or []})
     got = len(complete_pairs_all(inv))
     if got < expected:
-        notes.append(f"{got} of {expected} planned pairs complete (an interrupted run: resume it with --resume)")
+        notes.append(f"{got} of {expected} planned pairs complete (an unfinished run: still running, or "
+                     f"interrupted; --resume continues it)")
     c = compare_invocations(inv, threshold, confidence, seed, n_boot, fail_on_drift, names["A"], names["B"],
                             env_diff({"env": (envs.get("A") or {}).get("env")}, {"env": (envs.get("B") or {}).get("env")}),
                             notes)
