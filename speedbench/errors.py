@@ -13,3 +13,8 @@ class UserError(Exception):
     def __init__(self, message: str):
         # Keep it to one line whatever the caller passed in.
         super().__init__(" ".join(str(message).split()))
+
+
+def one_line(exc, limit: int = 300) -> str:
+    """An exception's text on one line, cut at `limit` characters (for a failed row's reason)."""
+    return " ".join(str(exc).split())[:limit]

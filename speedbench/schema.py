@@ -45,7 +45,48 @@ CONFIG_COLUMNS = (
 ID_DEFAULTS: dict = {"env": ""}
 
 # Percentiles reported for every latency distribution, in milliseconds.
-LATENCY_STATS = ("p50", "p90", "p99")
+LATENCY_PERCENTILES = (50, 90, 99)
+LATENCY_STATS = tuple(f"p{p}" for p in LATENCY_PERCENTILES)
+
+# Columns that hold text and flags; every other schema column is numeric (NaN when missing).
+TEXT_COLUMNS = frozenset({"model", "weights", "backend", "exec_mode", "opt_level",
+                          "point_id", "host", "family", "status", "reason", "stage_method",
+                          "probe_raw", "env", "env_python", "env_fingerprint"})
+BOOL_COLUMNS = frozenset({"noisy", "untrained"})
+
+# Groups of result columns, named here once; RESULT_COLUMNS below lists them in table order.
+LATENCY_COLUMNS = (
+    "n_samples", "lat_min_ms", "lat_mean_ms", "lat_std_ms", "lat_cov",
+    *[f"lat_{s}_{k}ms" for s in LATENCY_STATS for k in ("", "ci_lo_", "ci_hi_")],
+    "noisy",
+    "fps",                     # frames/s of one stream = 1000 / lat_p50_ms (concurrency 1)
+)
+MEMORY_COLUMNS = ("rss_imports_mib", "rss_loaded_mib", "rss_peak_mib", "model_file_mib")
+# Columns a throughput point (K concurrent workers, speedbench.measure.load) adds to its row;
+# speedbench/analyse/sizing.py reads them:
+#   tput_fps            aggregate frames/s of the K workers over the common window
+#   tput_p50/p90/p99_ms per-request latency under load (paced: from arrival, queueing included)
+#   tput_mean_ms        mean of the same (W of Little's law)
+#   scaling_eff         X(K) / (K X(1)); NaN when X(1) was not measured alongside
+#   littles_L           time-average requests in flight, from the timestamps
+#   littles_XW          X W, to set beside littles_L (Little's law)
+#   cores_used          K x T (K x affinity when pinned); host_cores: cores of the measuring host
+#   tput_window_s       length of the common window; tput_requests: requests completed in it
+#   tput_cpu_util       process CPU time / (span x cores_used); tput_cpu_util_xs: X x CPU per request
+#   tput_cpu_ms         mean process CPU time per request (all threads)
+#   tput_rss_total_mib  sum of the workers' peak resident memory
+#   tput_busy           busy fraction per worker; tput_busy_xs: X x mean service time / K (U = X S)
+#   tput_service_ms     mean service time (equals tput_mean_ms in a closed loop)
+#   load_curve          JSON list of paced points of the largest K: load (offered / capacity),
+#                       util (busy), offered_fps, tput_fps, p50_ms, p99_ms, mean_ms, status
+LOAD_COLUMNS = (
+    "tput_fps", "tput_p50_ms", "tput_p90_ms", "tput_p99_ms", "tput_mean_ms", "scaling_eff",
+    "littles_L", "littles_XW", "cores_used", "host_cores", "tput_window_s", "tput_requests",
+    "tput_cpu_util", "tput_cpu_util_xs", "tput_cpu_ms", "tput_rss_total_mib",
+    "tput_busy", "tput_busy_xs", "tput_service_ms", "load_curve",
+)
+ACCURACY_COLUMNS = ("map", "map50", "map75", "map_small", "map_medium", "map_large", "mar_100",
+                    "map_ci_lo", "map_ci_hi")
 
 # Interleaved A/B runs (speedbench compare --envs): the environment's interpreter and a digest of
 # its software (Python, package versions, code revision), and the worker invocations of the row.
@@ -123,3 +164,41 @@ def point_id(config: dict) -> str:
     key = {c: config.get(c) for c in CONFIG_COLUMNS if not (c in ID_DEFAULTS and _is_default(c, config.get(c)))}
     blob = json.dumps(key, sort_keys=True, default=str).encode()
     return hashlib.sha1(blob).hexdigest()[:12]
+
+
+def config_label(row) -> str:
+    """The one human label of a configuration (progress lines, tables, plots, reports):
+    ``model @ size / proposals / threads`` plus the knobs that differ from the usual setting."""
+    get = row.get if hasattr(row, "get") else (lambda k, d=None: getattr(row, k, d))
+    size, props = _int_or(get("size", None)), _int_or(get("proposals", None))
+    intra, inter = _int_or(get("intra_threads", None)), _int_or(get("inter_threads", None))
+    threads = f"{intra}t" if inter in (None, 0, 1) else f"{intra}x{inter}t"
+    parts = [f"{get('model', '?')} @ {size}", f"{props}p" if props else "-", threads]
+    conc = _int_or(get("concurrency", None))
+    if conc and conc > 1:
+        parts.append(f"K={conc}")
+    backend = get("backend", None)
+    if backend and backend != "ort":
+        parts.append(str(backend))
+    # Knobs shown only when they differ from the usual setting, to keep labels short.
+    if get("exec_mode", "") == "parallel":
+        parts.append("parallel")
+    opt = get("opt_level", "")
+    if isinstance(opt, str) and opt not in ("", "all"):
+        parts.append(f"opt {opt}")
+    env = get("env", "")
+    if isinstance(env, str) and env:
+        parts.append(f"[{env}]")      # interleaved A/B runs: which environment
+    pin = _int_or(get("affinity", None))
+    if pin:
+        parts.append(f"{pin} cores")
+    return " / ".join(parts)
+
+
+def _int_or(v):
+    try:
+        if v is None or (isinstance(v, float) and v != v):   # None or NaN
+            return None
+        return int(v)
+    except (TypeError, ValueError):
+        return v

@@ -402,3 +402,28 @@ def test_killed_client_keeps_what_it_stored_and_resume_finishes_without_duplicat
     df = _assert_plan_equal(out / "a", prof)      # the full plan, each point once
     assert (df["status"] == "ok").all()
 
+
+
+def test_scaling_efficiency_has_one_definition_locally_and_on_the_fleet(cluster, tmp_path):
+    # One K = 2 profile run by a local sweep and by the fleet: both store
+    # scaling_eff = X(2) / (2 X(1)) with X(1) = 1000 / mean latency of the K = 1 row (one
+    # closed-loop stream, Little's law with L = 1). The fleet used 1000 / p50 (the row's fps)
+    # until both went through sweep.pipeline.run_point.
+    from speedbench.fleet import run_fleet_sweep
+    from speedbench.sweep import run_sweep
+
+    _, client = cluster
+    path = tmp_path / "fleet.toml"
+    path.write_text(PROFILE.format(cache=tmp_path / "cache", sizes="[64]", proposals="[10]")
+                    .replace('backends = ["synthetic"]', 'backends = ["synthetic"]\nconcurrency = [1, 2]')
+                    )
+    local = load_run(run_sweep(path, out_dir=tmp_path / "local", quiet=True, stream=open(os.devnull, "w")))
+    runs = run_fleet_sweep(path, client, out_dir=tmp_path / "fleet", hosts="a", quiet=True,
+                           stream=open(os.devnull, "w"))
+    fleet = load_run(runs["a"])
+    for df in (local, fleet):
+        assert sorted(df["concurrency"]) == [1, 2] and set(df["status"]) == {"ok"}
+        one, two = df[df.concurrency == 1].iloc[0], df[df.concurrency == 2].iloc[0]
+        assert two["scaling_eff"] == pytest.approx(two["tput_fps"] / (2 * 1000.0 / one["lat_mean_ms"]), rel=1e-9)
+        # the p50 baseline is another number, so the check above can tell the two apart
+        assert two["scaling_eff"] != pytest.approx(two["tput_fps"] / (2 * one["fps"]), rel=1e-9)

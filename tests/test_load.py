@@ -122,22 +122,25 @@ def scaling():
 
 
 def test_scaling_k1_k2_structure(scaling):
+    # Checked against the raw per-request timestamps and the synthetic backend's known work,
+    # not against the formulas of measure/load.py.
     r1, r2 = scaling
     assert r1.ok and r2.ok, (r1.reason, r2.reason)
     for r, k in ((r1, 1), (r2, 2)):
         row = r.to_row()
-        assert set(LOAD_COLUMNS) <= set(row)
-        assert row["concurrency"] == k and row["cores_used"] == k
-        assert row["host_cores"] == host_cores()
-        assert row["tput_p50_ms"] <= row["tput_p90_ms"] <= row["tput_p99_ms"]
-        assert row["n_samples"] == row["tput_requests"] == len(r.latencies_ms)
-        # every worker contributed requests inside the common window
+        assert set(LOAD_COLUMNS) <= set(row) and row["concurrency"] == k
         assert len(r.workers) == k and all(len(w["starts_ns"]) > 5 for w in r.workers)
+        for w in r.workers:
+            starts, ends = np.asarray(w["starts_ns"]), np.asarray(w["ends_ns"])
+            # a closed loop: each worker's next request starts only after its last one ended
+            assert (starts[1:] >= ends[:-1]).all() and (ends >= starts).all()
+        # every request busy-waits work_ms = 4 ms (the synthetic backend's contract), so no
+        # latency under load can be shorter; the requests counted are those latencies
+        assert min(r.latencies_ms) >= 4.0 and row["tput_requests"] == len(r.latencies_ms)
+        # in flight on average: at most one request per worker (closed loop, K workers)
+        assert 0 < row["littles_L"] <= k + 1e-9
+        assert row["tput_p50_ms"] == pytest.approx(float(np.percentile(r.latencies_ms, 50)))
     assert r1.to_row()["point_id"] != r2.to_row()["point_id"]
-    assert r1.summary["scaling_eff"] == 1.0
-    # scaling efficiency is X(2) / (2 X(1)), by definition
-    assert r2.summary["scaling_eff"] == pytest.approx(r2.tput_fps / (2 * r1.tput_fps))
-    assert 0 < r2.summary["scaling_eff"] < 1.5
 
 
 def test_littles_law_on_measured_data(scaling):
@@ -359,18 +362,15 @@ def test_load_cli_missing_target(tmp_path, capsys):
     assert "neither a run directory nor a profile" in capsys.readouterr().err
 
 
-def test_concurrency_as_a_sweep_axis_then_size(tmp_path, monkeypatch):
-    # The sweep plans K > 1 points only when the measure package says it supports them; set the
-    # flag here so the test exercises the sweep -> measure_load path whether or not it is set yet.
+def test_concurrency_as_a_sweep_axis_then_size(tmp_path):
+    # The sweep's concurrency axis -> measure_load -> a K = 2 row; sizing then reads that run.
     import os
 
-    import speedbench.measure
     from speedbench.analyse.sizing import size
     from speedbench.sweep import load_run, run_sweep
 
     if host_cores() < 2:
         pytest.skip("needs 2 cores for K=2")
-    monkeypatch.setattr(speedbench.measure, "SUPPORTS_CONCURRENCY", True, raising=False)
     prof = tmp_path / "axis.toml"
     prof.write_text(LOAD_PROFILE.replace('backends = ["synthetic"]', 'backends = ["synthetic"]\nconcurrency = [1, 2]'))
     run = run_sweep(prof, out_dir=tmp_path / "run", quiet=True, stream=open(os.devnull, "w"))
@@ -382,6 +382,8 @@ def test_concurrency_as_a_sweep_axis_then_size(tmp_path, monkeypatch):
     assert len(out) == 1 and "single-stream" in out["k1_source"].iloc[0]
     assert out["scaling_eff"].iloc[0] == pytest.approx(
         df.loc[2, "tput_fps"] / (2 * 1000.0 / df.loc[1, "lat_mean_ms"]))
+    # the sweep stored the same efficiency the sizing model recomputes from the rows
+    assert df.loc[2, "scaling_eff"] == pytest.approx(out["scaling_eff"].iloc[0], rel=1e-9)
 
 
 def test_small_real_detector_k1_k2():
@@ -402,7 +404,9 @@ def test_small_real_detector_k1_k2():
     # min_requests=20 per worker: the window edge effect on L vs X W is about one request in n
     r1, r2 = measure_scaling(point, images, ks=(1, 2), policy=FAST, seconds=1.0, min_requests=20, timeout_s=300)
     assert r1.ok and r2.ok, (r1.reason, r2.reason)
-    assert r2.summary["scaling_eff"] == pytest.approx(r2.tput_fps / (2 * r1.tput_fps))
+    # K separate processes each hold their own session: the summed peak memory of two workers
+    # is about twice one worker's (not a timing; memory of processes that share nothing)
+    assert 1.5 < r2.summary["tput_rss_total_mib"] / r1.summary["tput_rss_total_mib"] < 2.5
     for r in (r1, r2):
         s = r.summary
         assert s["littles_L"] == pytest.approx(s["littles_XW"], rel=0.10)

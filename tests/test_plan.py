@@ -9,9 +9,9 @@ from speedbench.zoo.spec import ModelSpec
 
 SPECS = {
     "one": ModelSpec(id="one", builder="x.y", family="one-stage", native_size=320,
-                     detections_per_img=100, score_thresh=0.05, default_proposals=0),
+                     detections_per_img=100, score_thresh=0.05, default_proposals=0, arch="RetinaNet"),
     "two": ModelSpec(id="two", builder="x.y", family="two-stage", native_size=512,
-                     detections_per_img=100, score_thresh=0.05, default_proposals=1000),
+                     detections_per_img=100, score_thresh=0.05, default_proposals=1000, arch="FasterRCNN"),
 }
 
 
@@ -111,10 +111,18 @@ def test_unknown_model_names_key_path():
 
 
 def test_point_ids_match_schema_and_are_stable():
+    # Literal ids, computed by the code of 0.1.0 before the point pipeline was refactored: resume
+    # and compare match rows of runs made by older versions on these, so they must never change.
     body = '[sweep]\nsizes = [256, 320]\n[[models]]\nid = "one"\n[[threads]]\nintra = 1\n'
-    a, b = plan_of(body), plan_of(body)
-    assert [pt.point_id for pt in a.points] == [pt.point_id for pt in b.points]
-    for pt in a.points:
+    assert [pt.point_id for pt in plan_of(body).points] == ["04d5f0bf5eec", "b80ead739f33"]
+    body = ('[sweep]\nsizes = [320]\nproposals = [100]\nbackends = ["ort", "eager"]\nconcurrency = [1, 2]\n'
+            '[[models]]\nid = "two"\n[[threads]]\nintra = 2\ninter = 1\nmode = "parallel"\n')
+    points = plan_of(body).points
+    # ORT, then eager (ORT-only knobs blanked before the id is taken), each at K = 1 and K = 2
+    assert [pt.point_id for pt in points] == ["3e317b12e98c", "d9f98e50fc14", "4a306bfe1ab5", "0c9b09d3a679"]
+    assert [(pt.config["exec_mode"], pt.config["opt_level"]) for pt in points] == \
+        [("parallel", "all")] * 2 + [("", "")] * 2
+    for pt in points:
         assert pt.point_id == schema.point_id(pt.config)
         assert set(pt.config) == set(schema.CONFIG_COLUMNS)
 

@@ -21,7 +21,11 @@ def _write_run(path, untrained=False, evil=EVIL):
     rng = np.random.default_rng(0)
     env = {"cpu_model": "Test CPU <b>", "cores_logical": 2, "packages": {"torch": "2.14.1"},
            "thread_env": {"OMP_NUM_THREADS": "1"}}
-    rd = RunDir.create(path, "[run]\nname = 'unit'\n", {"profile_name": "unit", "host": "box", "env": env})
+    from speedbench.measure.backends.ort import TIMED_REGION
+
+    # what a sweep records in meta.json (sweep.pipeline.run_facts), here written by hand
+    rd = RunDir.create(path, "[run]\nname = 'unit'\n", {"profile_name": "unit", "host": "box", "env": env,
+                                                       "timed_regions": {"ort": TIMED_REGION}})
     for model, fam, props in ((evil, "one-stage", 0), ("twostage", "two-stage", 100)):
         for size in (256, 320):
             for t in (1, 2):
@@ -98,12 +102,17 @@ def test_markdown_from_a_bare_frame(run_dir, tmp_path):
     # Backslash escapes, not HTML entities (CommonMark spec, "Backslash escapes": an escaped
     # ASCII punctuation character is literal text, so the tag stays inert but reads as typed).
     assert "&lt;" not in text and "&#x27;" not in text and "&amp;" not in text
-    assert "\\<script\\>alert(1)\\</script\\>det" in text
+    assert "\\<script>alert(1)\\</script>det" in text
     prose = re.sub(r"```.*?```", "", text, flags=re.S)   # code blocks show text verbatim
-    assert not re.search(r"(?<!\\)[<&]", prose), "an unescaped < or & outside code blocks"
+    # CommonMark "Raw HTML": only "<" opens a tag; "&" matters only as an entity reference
+    assert not re.search(r"(?<!\\)<|(?<!\\)&#?\w+;", prose), "an unescaped tag or entity outside code blocks"
+    # nothing else is escaped: versions and code spans read as written
+    assert not re.search(r"\d\\\.", text) and "\\`" not in text
     pngs = sorted((tmp_path / "r_files").glob("*.png"))
     assert len(pngs) >= 6 and all(f"r_files/{p.name}" in text for p in pngs)
     assert "## Frontier" in text and "> **Caution.**" in text
+    # a bare frame recorded no timed region: the report says so instead of asking today's code
+    assert "Timed region, backend ort: not recorded" in text
 
 
 def test_markdown_escape_of_names():
@@ -113,6 +122,11 @@ def test_markdown_escape_of_names():
     assert _md("# not a heading") == "\\# not a heading" and _md("1. x") == "1\\. x"
     assert _md("a|b") == "a\\|b" and _cell("a|b\nc") == "a\\|b c"
     assert _md("it's 3.2 ms") == "it's 3.2 ms"   # nothing Markdown interprets: left as written
+    # only a number followed by "." and a space starts an ordered list; a pair of backticks is
+    # the code span the writer meant; "-" starts a bullet only before a space
+    assert _md("0.1.0") == "0.1.0" and _md("3.11.7 on x") == "3.11.7 on x"
+    assert _md("run `speedbench pick`") == "run `speedbench pick`" and _md("-k 1,2") == "-k 1,2"
+    assert _md("- item") == "\\- item" and _md("a & b &amp; c") == "a & b \\&amp; c"
 
 
 def test_cli(run_dir, tmp_path, capsys):
@@ -145,24 +159,36 @@ def test_renders_in_headless_chromium(html_report, tmp_path):
     assert img[..., :3].std() > 0.05 and len(np.unique((img[..., 0] * 255).astype(int))) > 50
 
 
-def test_caveat_for_sizes_outside_the_weights_training_sizes():
-    # The shipped demo manifest records the training sizes (recipe.train_sizes, else
-    # recipe.image_size): demo_ssdlite 256-352 px, demo_fcos 320 px only.
-    import json
-
+def test_caveat_for_sizes_outside_the_weights_training_sizes(monkeypatch):
+    # The caveat comes from the training sizes the run recorded when it was measured, never from
+    # today's manifest: re-rendering an old run after retraining must not change its caveats.
+    import speedbench.zoo.weights as weights
+    from speedbench.analyse.runs import Run
     from speedbench.report.document import _outside_training
-    from speedbench.zoo import trained_sizes
-    from speedbench.zoo.weights import DEMO_ROOT
+    from speedbench.sweep.pipeline import run_facts
+    from speedbench.sweep.plan import PlannedPoint
 
-    manifest = json.loads((DEMO_ROOT / "manifest.json").read_text())["models"]
-    assert trained_sizes("demo_ssdlite", "demo") == sorted(manifest["demo_ssdlite"]["recipe"]["train_sizes"])
-    assert trained_sizes("demo_fcos", "demo") == [320]
-    assert trained_sizes("demo_fcos", "file:x.pt") is None   # no record for a user's checkpoint
+    planned = [PlannedPoint.from_row({"model": m, "weights": w, "size": 320, "backend": "ort", "intra_threads": 1})
+               for m, w in (("demo_ssdlite", "demo"), ("demo_fcos", "file:x.pt"))]
+    facts = run_facts(planned)
+    # README: demo_ssdlite's second phase trained at 256-352 px; a user's checkpoint records nothing
+    assert min(facts["trained_sizes"]["demo_ssdlite|demo"]) == 256
+    assert max(facts["trained_sizes"]["demo_ssdlite|demo"]) == 352
+    assert facts["trained_sizes"]["demo_fcos|file:x.pt"] is None
+    assert facts["timed_regions"] == {"ort": __import__("speedbench.measure.backends.ort").measure.backends.ort.TIMED_REGION}
 
     ok = pd.DataFrame({"model": ["demo_ssdlite", "demo_ssdlite", "demo_ssdlite", "demo_fcos", "ssd300_vgg16"],
                        "weights": ["demo", "demo", "demo", "demo", "torchvision"],
                        "size": [192, 256, 352, 320, 128]})
-    (line,) = _outside_training(ok)
+    recorded = Run(points=ok, meta={"trained_sizes": {"demo_ssdlite|demo": [256, 288, 320, 352],
+                                                      "demo_fcos|demo": [320], "ssd300_vgg16|torchvision": None}})
+    monkeypatch.setattr(weights, "demo_manifest", lambda: (_ for _ in ()).throw(AssertionError("manifest read")))
+    (line,) = _outside_training(ok, [recorded])
     assert "demo_ssdlite at 192 px (its demo weights were trained at 256-352 px)" in line
     assert "demo_fcos" not in line and "ssd300" not in line      # inside its range / no record
-    assert _outside_training(ok[ok["model"] == "demo_fcos"]) == []
+    assert _outside_training(ok[ok["model"] == "demo_fcos"], [recorded]) == []
+    # a run made before the record existed says so instead of guessing
+    (old,) = _outside_training(ok, [Run(points=ok)])
+    assert "not recorded" in old and "demo_ssdlite" in old and "demo_fcos" in old
+
+

@@ -146,3 +146,23 @@ def test_write_failure_keeps_earlier_points(tmp_path):
     blocker.close()
     rd.close()
     assert list(load_run(tmp_path / "run")["point_id"]) == ["a"]
+
+
+def test_loaded_frame_takes_a_new_column_without_warnings(tmp_path):
+    # pandas warns "DataFrame is highly fragmented" (PerformanceWarning) when a column is added
+    # to a frame that was assembled column by column; load_run builds it in one go.
+    import warnings
+
+    with RunDir.create(tmp_path / "run", "[run]\n", {"env": {}}) as rd:
+        # a real run's rows: the schema columns plus throughput and worker details (extras)
+        extras = {c: 1.0 for c in schema.LOAD_COLUMNS if c != "load_curve"}
+        extras.update({f"detail_{i}": None for i in range(30)})   # extras nobody measured here
+        rd.write_point({**_row("a"), **extras, "extra_text": "x", "extra_num": 1.5}, [1.0, 2.0])
+        rd.write_point(_row("b"), [])
+    df = load_run(tmp_path / "run")
+    assert len(df.columns) > 100
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        df["mine"] = df["lat_p50_ms"] * 2
+        df["mine2"] = 1
+    assert list(df["extra_text"]) == ["x", ""] and df["size"].dtype == "int64"

@@ -140,6 +140,10 @@ def test_threads_per_worker_set_the_workers_per_server():
     assert math.isnan(b1["servers"]) and "cannot host" in b1["assumption"]
 
 
+# tput_mean_ms of table()'s rows by (model, cores used / host cores)
+MEAN_MS_AT = {("a", 0.5): 40.0, ("a", 1.0): 44.4, ("b", 1.0): 33.3, ("c", 0.5): 100.0}
+
+
 def test_utilisation_law_and_littles_law_hold_for_every_row():
     out = size(table(), 7, 12.5, server_cores=(2, 8, 16, 32, 64), use_frontier=False)
     out = out[out["servers"].notna()]
@@ -153,6 +157,11 @@ def test_utilisation_law_and_littles_law_hold_for_every_row():
         per_server = r["capacity_fps"] / r["servers"]
         assert r["servers"] * per_server * 0.7 >= r["required_fps"] - 1e-9
         assert (r["servers"] - 1) * per_server * 0.7 < r["required_fps"]
+        # Little's law L = lambda W: frames in flight = arrival rate x mean time in the system,
+        # W being the mean latency the table above measured at the utilisation the row looked up
+        # (host of 2 cores: K x T = 1 core -> 0.5, 2 cores -> 1.0).
+        w_ms = MEAN_MS_AT[(r["model"], r["p99_at_util"])]
+        assert r["in_flight"] == pytest.approx(r["required_fps"] * w_ms / 1000.0)
 
 
 def test_frontier_drops_dominated_configurations():

@@ -176,6 +176,7 @@ def test_ort_sweep_exports_and_evaluates_once_then_reuses_the_cache(tmp_path, mo
     import torch
 
     from speedbench.sweep import RunDir, steps
+    from speedbench.sweep.pipeline import GraphStore
     from speedbench.zoo import build_model
 
     weights = tmp_path / "ssd.pt"
@@ -219,8 +220,7 @@ def test_ort_sweep_exports_and_evaluates_once_then_reuses_the_cache(tmp_path, mo
     profile = load_profile(prof)
     planned = expand_plan(profile).points[0]
     rd = RunDir.create(tmp_path / "run2", profile.text, {"env": {}})
-    info = steps.prepare_graph(planned, profile, steps.prepare_dataset(profile, cache), rd, cache,
-                               type("Quiet", (), {"status": lambda self, text: None})())
+    info = GraphStore(profile, steps.prepare_dataset(profile, cache), rd.exports).prepare(planned)
     rd.close()
     assert info.ok and info.accuracy["map"] == row["map"] and info.facts["params"] == row["params"]
     assert planned.point_id == row["point_id"]   # same configuration, same id in every run
@@ -269,11 +269,11 @@ def test_cli_progress_bar_and_quiet_lines(tmp_path, capsys):
     prof = write_profile(tmp_path, sizes="[64]")
     assert main(["sweep", str(prof), "-o", str(tmp_path / "bar")]) == 0
     cap = capsys.readouterr()
-    assert "2/2 points" in cap.err and "measuring synthetic 64px" in cap.err   # tqdm bar on stderr
+    assert "2/2 points" in cap.err and "measuring synthetic @ 64 / 10p" in cap.err   # tqdm bar on stderr
     assert "2 point(s), 2 ok, 0 failed" in cap.out
     assert main(["sweep", str(prof), "-o", str(tmp_path / "quiet"), "--quiet"]) == 0
     lines = [l for l in capsys.readouterr().err.splitlines() if l.startswith("[")]
-    assert len(lines) == 2 and lines[-1].startswith("[2/2] synthetic 64px p20 synthetic t1: ok p50 ")
+    assert len(lines) == 2 and lines[-1].startswith("[2/2] synthetic @ 64 / 20p / 1t / synthetic: ok p50 ")
     meta_resumed = main(["sweep", str(prof), "-o", str(tmp_path / "quiet"), "--resume", "-q"])
     assert meta_resumed == 0
     from speedbench.sweep import load_meta
@@ -329,6 +329,11 @@ def test_concurrency_axis_measures_throughput_points(tmp_path):
     # the same baseline speedbench.analyse.sizing derives from the K=1 row.
     assert two["scaling_eff"] == pytest.approx(two["tput_fps"] / (2 * 1000.0 / one["lat_mean_ms"]), rel=1e-9)
     assert two["point_id"] != one["point_id"]
+    # what a report quotes later is recorded now, in meta.json (the report never asks today's code)
+    from speedbench.measure.backends.synthetic import TIMED_REGION
+    from speedbench.sweep import load_meta
+
+    assert load_meta(tmp_path / "run")["timed_regions"] == {"synthetic": TIMED_REGION}
 
 
 

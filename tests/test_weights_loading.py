@@ -191,7 +191,17 @@ def test_demo_manifest_cannot_point_outside_its_root(tmp_path, monkeypatch):
 
 
 def test_untrained_weights_are_deterministic():
+    # weights "none" = torchvision's own builder under torch.manual_seed(0), then BatchNorm
+    # statistics calibrated: every conv / linear weight is what torchvision draws from that seed.
+    import torchvision
+
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(0)
+        ref = torchvision.models.detection.ssdlite320_mobilenet_v3_large(
+            weights=None, weights_backbone=None, num_classes=91).state_dict()
     a = build_model(SSD).state_dict()
-    b = build_model(SSD).state_dict()
+    drawn = [k for k in ref if k.endswith(".weight") and ref[k].dim() > 1]
+    assert len(drawn) > 50 and all(torch.equal(a[k], ref[k]) for k in drawn)
+    b = build_model(SSD).state_dict()       # the calibration is deterministic too
     assert all(torch.equal(a[k], b[k]) for k in a)
     assert weights_digest(SSD, "none") == weights_digest(SSD, "none") != weights_digest("ssd300_vgg16", "none")

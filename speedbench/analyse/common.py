@@ -1,58 +1,22 @@
 """Small helpers shared by frontier, pick and compare: labels, CI columns, row filters."""
 from __future__ import annotations
 
+import re
+
 import numpy as np
 import pandas as pd
 
 from speedbench.errors import UserError
-from speedbench.schema import CONFIG_COLUMNS, LATENCY_STATS, point_id
-
-
-def label(row) -> str:
-    """Human label of a configuration: ``model @ size / proposals / threads``."""
-    get = row.get if hasattr(row, "get") else (lambda k, d=None: getattr(row, k, d))
-    model = get("model", "?")
-    size = _int_or(get("size", None))
-    props = _int_or(get("proposals", None))
-    intra = _int_or(get("intra_threads", None))
-    inter = _int_or(get("inter_threads", None))
-    threads = f"{intra}t" if inter in (None, 0, 1) else f"{intra}x{inter}t"
-    parts = [f"{model} @ {size}", f"{props}p" if props else "-", threads]
-    conc = _int_or(get("concurrency", None))
-    if conc and conc > 1:
-        parts.append(f"K={conc}")
-    backend = get("backend", None)
-    if backend and backend != "ort":
-        parts.append(str(backend))
-    # Knobs shown only when they differ from the usual setting, to keep labels short.
-    if get("exec_mode", "") == "parallel":
-        parts.append("parallel")
-    opt = get("opt_level", "")
-    if isinstance(opt, str) and opt not in ("", "all"):
-        parts.append(f"opt {opt}")
-    env = get("env", "")
-    if isinstance(env, str) and env:
-        parts.append(f"[{env}]")
-    pin = _int_or(get("affinity", None))
-    if pin:
-        parts.append(f"{pin} cores")
-    return " / ".join(parts)
-
-
-def _int_or(v):
-    try:
-        if v is None or (isinstance(v, float) and np.isnan(v)):
-            return None
-        return int(v)
-    except (TypeError, ValueError):
-        return v
+from speedbench.schema import CONFIG_COLUMNS, LATENCY_STATS, latency_column, point_id
+from speedbench.schema import config_label as label  # noqa: F401 (the one labeller, re-exported)
 
 
 def latency_col(stat: str) -> str:
+    """schema.latency_column for a user's --latency value (p99, lat_p99_ms, ...)."""
     stat = str(stat).lower().removeprefix("lat_").removesuffix("_ms")
     if stat not in LATENCY_STATS:
         raise UserError(f"--latency: must be one of {', '.join(LATENCY_STATS)}, not {stat!r}")
-    return f"lat_{stat}_ms"
+    return latency_column(stat)
 
 
 def ci_columns(col: str) -> tuple[str, str] | None:
@@ -139,3 +103,27 @@ def as_float(v) -> float:
         return float(v)
     except (TypeError, ValueError):
         return float("nan")
+
+
+# The one Markdown escaping rule (reports and compare): backslash escapes, never HTML entities
+# (which a Markdown viewer shows literally), and only where the character would change the
+# rendering (CommonMark: "Backslash escapes", "Entity references", "Raw HTML", list items, ATX
+# headings, block quotes, tables). So `0.1.0`, `3.11.7` and `speedbench pick` in backticks read as typed.
+_MD_INLINE = re.compile(r"\\(?=[!-/:-@\[-`{-~])"      # a backslash that would escape what follows
+                        r"|<"                            # could open a raw HTML tag
+                        r"|&(?=#?[A-Za-z0-9]+;)"         # would start an entity reference
+                        r"|[|\[\]]")                     # table cell separator, link brackets
+# Only at the start of a line: heading, block quote, bullet ("- x"), ordered list ("1. x").
+_MD_LEADING = re.compile(r"^(\s*)(#{1,6}(?=\s|$)|>|[*+-](?=\s|$)|\d{1,9}(?=[.)](?:\s|$)))", re.M)
+
+
+def md(text) -> str:
+    """Text as Markdown that renders exactly as written (an escaped "<script>" stays inert text)."""
+    out = _MD_INLINE.sub(lambda m: "\\" + m.group(0), str(text))
+    return _MD_LEADING.sub(lambda m: m.group(1) + (m.group(2) + "\\" if m.group(2)[0].isdigit()
+                                                     else "\\" + m.group(2)), out)
+
+
+def md_cell(text) -> str:
+    """md() for one table cell: on one line."""
+    return md(str(text).replace("\n", " "))

@@ -1,7 +1,6 @@
 """The result of a comparison and its three renderings: terminal text, Markdown, JSON."""
 from __future__ import annotations
 
-import html
 import json
 import math
 from dataclasses import dataclass, field
@@ -11,6 +10,7 @@ import pandas as pd
 
 from speedbench.analyse.common import as_float as _f
 from speedbench.analyse.hostspeed import host_lines
+from speedbench.analyse.common import md_cell as _md
 
 
 @dataclass
@@ -150,11 +150,6 @@ def _aligned(header, rows):
     widths = [max(len(str(x)) for x in col) for col in zip(header, *rows)] if rows else [len(h) for h in header]
     fmt = lambda cells: "  ".join(str(c).ljust(w) for c, w in zip(cells, widths)).rstrip()  # noqa: E731
     return [fmt(header)] + [fmt(r) for r in rows]
-
-
-def _md(text) -> str:
-    """Escape for a Markdown table cell: HTML special characters and pipes."""
-    return html.escape(str(text)).replace("|", "\\|").replace("\n", " ")
 
 
 def _records(df: pd.DataFrame) -> list[dict]:

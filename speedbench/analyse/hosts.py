@@ -207,7 +207,8 @@ def _split_hosts(run: Run) -> list[Run]:
         shared = sorted({x.strip() for v in p.get("shares_machine_with", pd.Series(dtype=str))
                          if isinstance(v, str) for x in v.split(",") if x.strip()})
         parts.append(Run(points=p.drop(columns=["shares_machine_with"], errors="ignore"), samples=s,
-                         meta={"host": h, "fleet": {"shares_machine_with": shared}}, path=f"{run.name} [{h}]"))
+                         meta={**run.meta, "host": h, "fleet": {"shares_machine_with": shared}},
+                         path=f"{run.name} [{h}]", profile_text=run.profile_text))
     return parts
 
 

@@ -15,6 +15,7 @@ class Run:
     samples: pd.DataFrame | None = None        # [point_id, i, ms]
     meta: dict = field(default_factory=dict)
     path: str = ""
+    profile_text: str = ""                      # the profile the run was made with, as recorded
 
     @classmethod
     def load(cls, path) -> "Run":
@@ -25,7 +26,8 @@ class Run:
         if not p.exists():
             raise UserError(f"{p}: run directory not found")
         with RunDir.open(p) as rd:
-            return cls(points=rd.points(), samples=rd.samples(), meta=rd.meta(), path=str(p))
+            return cls(points=rd.points(), samples=rd.samples(), meta=rd.meta(), path=str(p),
+                       profile_text=rd.profile_text())
 
     @property
     def name(self) -> str:

@@ -53,17 +53,15 @@ import math
 import numpy as np
 import pandas as pd
 
+from speedbench.analyse.frontier import frontier
 from speedbench.errors import UserError
+from speedbench.measure.point import ORT_ONLY_KNOBS, uses_ort_knobs
 from speedbench.schema import CONFIG_COLUMNS
 
 # Rule of thumb (ours): workers that got less than this share of their cores' CPU time were
 # competing with other work on the host (or idling threads), so the throughput understates a
 # dedicated server and the sizing errs on the side of more servers.
 CONTENDED_CPU_UTIL = 0.8
-
-# Columns a throughput (load) row carries on top of a point row.
-THROUGHPUT_COLUMNS = ("tput_fps", "tput_p50_ms", "tput_p90_ms", "tput_p99_ms", "tput_mean_ms",
-                      "scaling_eff", "littles_L", "cores_used", "host_cores")
 
 # A configuration is everything that identifies a point except how many copies run at once.
 CONFIG_KEY = tuple(c for c in CONFIG_COLUMNS if c != "concurrency")
@@ -189,9 +187,8 @@ def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
                 "intra_threads", "host_cores", "lat_mean_ms", "lat_p99_ms"):
         df[col] = pd.to_numeric(df[col], errors="coerce") if col in df.columns else np.nan
     df["concurrency"] = df["concurrency"].fillna(1)
-    # ORT-only knobs mean nothing for other backends; rows may record them either way.
-    not_ort = df["backend"].astype(str) != "ort"
-    df.loc[not_ort, ["exec_mode", "opt_level"]] = ""
+    # ORT-only knobs mean nothing for other backends; rows of old runs may record them either way.
+    df.loc[~df["backend"].astype(str).map(uses_ort_knobs), list(ORT_ONLY_KNOBS)] = ""
     # cores_used = K x T; rebuild it for rows that lack it.
     df["cores_used"] = df["cores_used"].fillna(df["concurrency"] * df["intra_threads"].fillna(1).clip(lower=1))
     key = list(CONFIG_KEY) + (["host"] if "host" in df.columns else [])
@@ -289,10 +286,6 @@ def _frontier(configs: pd.DataFrame, by_host: bool = False) -> pd.DataFrame:
     """
     if configs.empty:
         return configs
-    try:
-        from speedbench.analyse.frontier import frontier
-    except ImportError:  # frontier module not available: size every configuration
-        return configs.assign(frontier_status="not computed")
     marked = frontier(configs.drop(columns=["curve", "paced"]), x="per_core_fps", y="map", minimize_x=False,
                       by="host" if by_host else None)
     keep = marked[marked["frontier_status"].isin(["frontier", "tied"])]

@@ -30,13 +30,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"speedbench {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     for name in COMMANDS:
-        try:
-            module = importlib.import_module(f"speedbench.cli.{name}")
-        except ModuleNotFoundError as exc:
-            if exc.name == f"speedbench.cli.{name}":
-                continue  # command not built yet
-            raise
-        module.add_parser(sub)
+        importlib.import_module(f"speedbench.cli.{name}").add_parser(sub)
     return parser
 
 

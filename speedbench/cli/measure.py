@@ -73,10 +73,8 @@ def _graph(args, model):
 
     if args.graph:
         return args.graph
-    try:
-        from speedbench.export import export_onnx
-    except ImportError:
-        raise UserError("give the ONNX file to measure (speedbench.export is not available)") from None
+    from speedbench.export import export_onnx
+
     rec = export_onnx(model, size=args.size or None, proposals=args.proposals or None, weights=args.weights)
     if not rec.ok:
         raise UserError(f"export of {model} failed: {rec.reason}")

@@ -11,7 +11,6 @@ import io
 import json
 from pathlib import Path
 
-import numpy as np
 
 from speedbench.data.scenes import SCENE_CLASSES, render_scene, scene_rng
 

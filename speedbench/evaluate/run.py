@@ -11,13 +11,13 @@ from __future__ import annotations
 
 import hashlib
 import math
-import os
 from pathlib import Path
 
 import numpy as np
 
 from speedbench.data import to_input
 from speedbench.errors import UserError
+from speedbench.system import atomic_path
 from speedbench.evaluate.metrics import coco_evaluate
 
 OUTPUTS = ("boxes", "scores", "labels")
@@ -185,10 +185,8 @@ def _save_raw(path: Path, raw: dict) -> None:
     ids = np.array(list(raw), np.int64)
     counts = np.array([len(v[1]) for v in raw.values()], np.int64)
     cat = [np.concatenate([v[i] for v in raw.values()]) if raw else np.zeros(0) for i in range(3)]
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f"{path.stem}.{os.getpid()}.tmp.npz")
-    np.savez(tmp, ids=ids, counts=counts, boxes=cat[0].reshape(-1, 4), scores=cat[1], labels=cat[2])
-    os.replace(tmp, path)  # atomic: readers never see half a file
+    with atomic_path(path) as tmp:   # readers never see half a file
+        np.savez(tmp, ids=ids, counts=counts, boxes=cat[0].reshape(-1, 4), scores=cat[1], labels=cat[2])
 
 
 def _load_raw(path: Path) -> dict:

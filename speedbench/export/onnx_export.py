@@ -13,6 +13,7 @@ import warnings
 from pathlib import Path
 
 from speedbench.errors import UserError
+from speedbench.system import atomic_write
 from speedbench.zoo import get_spec, weights_digest
 
 EXPORT_FORMAT = 2          # bump when the graph layout or the record changes
@@ -205,10 +206,7 @@ def _first_line(exc: BaseException) -> str:
 
 def _write_record(record: ExportRecord, json_path: Path) -> None:
     # A private temp file per writer: workers exporting the same graph may race here.
-    fd, tmp = tempfile.mkstemp(dir=json_path.parent, suffix=".json.tmp")
-    with os.fdopen(fd, "w") as f:
-        f.write(json.dumps(record.to_dict(), indent=2, default=str))
-    os.replace(tmp, json_path)
+    atomic_write(json_path, json.dumps(record.to_dict(), indent=2, default=str))
 
 
 def export_onnx(model_id, size=None, proposals=None, weights="none", opset=DEFAULT_OPSET, cache_dir=None,

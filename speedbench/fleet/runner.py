@@ -22,8 +22,15 @@ import uuid
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import speedbench
 from speedbench.errors import UserError
 from speedbench.fleet import engine, task
+from speedbench.sweep.pipeline import PreparedGraph, baselines, build_row, record_run_facts, stream_key
+from speedbench.sweep.plan import PlannedPoint, expand_plan
+from speedbench.sweep.profile import load_profile, parse_profile
+from speedbench.sweep.progress import Progress
+from speedbench.sweep.rundir import RunDir, now_iso
+from speedbench.sweep.runner import same_study
 
 MAX_RESUBMITS = 3     # a point that never started but was caught by a worker death is sent again
 
@@ -60,9 +67,6 @@ def run_fleet_sweep(profile_path, cluster, out_dir=None, resume: bool = False, h
     engine.require_engine()
     if retry_failed and not resume:
         raise UserError("--retry-failed: only together with --resume")
-    from speedbench.sweep.plan import expand_plan
-    from speedbench.sweep.profile import load_profile
-
     profile = load_profile(profile_path)
     expand_plan(profile)  # profile mistakes stop here, before the cluster is touched
     wanted = engine.parse_hosts(hosts)
@@ -73,12 +77,6 @@ def run_fleet_sweep(profile_path, cluster, out_dir=None, resume: bool = False, h
     finally:
         if owned:
             client.close()
-
-
-def _stream_key(config: dict) -> tuple:
-    # The configuration apart from K: a K > 1 point's baseline is its K = 1 sibling.
-    return tuple(config.get(c) for c in ("model", "weights", "size", "proposals", "backend", "intra_threads",
-                                          "inter_threads", "exec_mode", "opt_level", "affinity"))
 
 
 class _Fleet:
@@ -191,10 +189,6 @@ class _Fleet:
             h.state = "running"
 
     def _check_out(self, h: _Host) -> None:
-        from speedbench.sweep.profile import parse_profile
-        from speedbench.sweep.rundir import RunDir
-        from speedbench.sweep.runner import same_study
-
         is_run = (h.out / "meta.json").exists() or (h.out / "points.sqlite").exists()
         if is_run and not self.resume:
             raise UserError(f"{h.out}: already holds a run; resume it (--resume) or choose another output directory")
@@ -218,10 +212,6 @@ class _Fleet:
                                 f"{new.get(key)!r}; a label must stay on one machine: use another label or directory")
 
     def _open(self, h: _Host, by_label, shared):
-        from speedbench.sweep.rundir import RunDir, now_iso
-
-        import speedbench
-
         fleet = {"scheduler": self.address, "worker": by_label[h.label][0]["address"],
                  "worker_hostname": h.setup["hostname"], "worker_speedbench": h.setup["version"],
                  "client_hostname": socket.gethostname(), "shares_machine_with": shared.get(h.label, [])}
@@ -243,7 +233,6 @@ class _Fleet:
     def _measure(self) -> None:
         from distributed import as_completed
 
-        from speedbench.sweep.progress import Progress
 
         ac = as_completed(loop=self.client.loop)
         total = 0
@@ -254,17 +243,17 @@ class _Fleet:
             todo = h.plan.missing(done)
             h.counts["skipped_done"] = len(h.plan.points) - len(todo)
             h.rd.update_meta(plan_points=len(h.plan.points), plan_notes=h.plan.notes)
-            h.fps = {_stream_key(r): r.get("fps") for r in h.rd.rows()
-                     if r.get("concurrency") == 1 and r.get("status") == "ok"}
+            record_run_facts(h.rd, h.plan.points)
+            h.fps = baselines(h.rd.rows())
             total += len(todo)
-            baselines = {}
+            first = {}
             for planned in todo:          # K = 1 points first: they are the K > 1 points' baselines
                 if planned.config["concurrency"] == 1:
-                    baselines[_stream_key(planned.config)] = self._submit(h, planned, ac)
+                    first[stream_key(planned.config)] = self._submit(h, planned, ac)
             for planned in todo:
                 if planned.config["concurrency"] != 1:
-                    self._submit(h, planned, ac, baselines.get(_stream_key(planned.config)))
-            del baselines      # the dependents hold them now; a stored result must not be kept alive
+                    self._submit(h, planned, ac, first.get(stream_key(planned.config)))
+            del first          # the dependents hold them now; a stored result must not be kept alive
             if not todo:
                 self._finish(h)
         self.progress = Progress(total, quiet=self.quiet, stream=self.stream)
@@ -294,9 +283,9 @@ class _Fleet:
         if baseline is not None and not isinstance(baseline, (int, float)):
             kwargs["baseline"] = baseline
         else:
-            kwargs["baseline_fps"] = baseline if baseline is not None else h.fps.get(_stream_key(planned.config))
+            kwargs["baseline_fps"] = baseline if baseline is not None else h.fps.get(stream_key(planned.config))
         p = self.profile
-        fut = self.client.submit(task.run_point, p.text, p.source, h.label, planned, key=key,
+        fut = self.client.submit(task.measure_on_host, p.text, p.source, h.label, planned, key=key,
                                  resources=self._resources(h.label), pure=False, **kwargs)
         h.futures[key] = (fut, planned)
         ac.add(fut)
@@ -317,10 +306,10 @@ class _Fleet:
             elif h.resubmits.get(planned.point_id, 0) < MAX_RESUBMITS:
                 # Caught in a worker death before it ever started: not a failure of this point.
                 h.resubmits[planned.point_id] = h.resubmits.get(planned.point_id, 0) + 1
-                base = h.fps.get(_stream_key(planned.config))
+                base = h.fps.get(stream_key(planned.config))
                 if base is None and planned.config["concurrency"] != 1:
                     base = next((f for f, pp in h.futures.values() if pp.config["concurrency"] == 1
-                                 and _stream_key(pp.config) == _stream_key(planned.config)), None)
+                                 and stream_key(pp.config) == stream_key(planned.config)), None)
                 self._submit(h, planned, ac, base)
             else:
                 h.counts["unmeasured"] += 1
@@ -338,20 +327,14 @@ class _Fleet:
         h.rd.write_point(row, samples)
         status = "ok" if row.get("status") == "ok" else "failed"
         h.counts[status] += 1
-        if row.get("concurrency") == 1 and status == "ok":
-            h.fps[_stream_key(row)] = row.get("fps")
+        h.fps.update(baselines([row]))
         if self.running.get(h.label) == row.get("point_id"):
             self.running.pop(h.label, None)
-        label = f"{h.label}: {_planned_label(row)}"
+        label = f"{h.label}: {PlannedPoint.from_row(row).label}"
         self.progress.done(label, row)
 
     def _failed_row(self, h: _Host, planned, reason: str) -> dict:
-        from speedbench.sweep import steps
-
-        row = {**planned.config, "point_id": planned.point_id, "status": "failed", "reason": reason}
-        row.update(steps.merge_columns(planned, steps.GraphInfo(), self.profile))
-        row["host"] = h.label
-        return row
+        return build_row(planned, PreparedGraph(), h.label, reason=reason)
 
     def _lost(self, candidates: dict) -> list[str]:
         """Labels among `candidates` that no live worker has advertised for lost_after_s."""
@@ -429,13 +412,3 @@ def _reason(fut) -> str:
     except Exception as err:  # cancelled futures have no exception to read
         return type(err).__name__
     return " ".join(f"{type(exc).__name__}: {exc}".split())[:300]
-
-
-def _planned_label(row: dict) -> str:
-    text = f"{row.get('model')} {row.get('size')}px"
-    if row.get("proposals"):
-        text += f" p{row['proposals']}"
-    text += f" {row.get('backend')} t{row.get('intra_threads')}"
-    if (row.get("concurrency") or 1) > 1:
-        text += f" K{row['concurrency']}"
-    return text

@@ -1,9 +1,9 @@
-"""What runs on a cluster worker: host set-up and one point, by the local sweep's own steps.
+"""What runs on a cluster worker: host set-up and one point, by the local sweep's own path.
 
-A point here goes through exactly the path of a local sweep: the graph is
-prepared with speedbench.sweep.steps (export + accuracy, cached on the host)
-and steps.measure runs the point in its own fresh worker subprocess. Only the
-row and the raw samples travel back to the client, which stores them.
+A point here goes through exactly the path of a local sweep, speedbench.sweep.pipeline.run_point:
+the graph is prepared on the host (export + accuracy, cached there) and the point runs in its
+own fresh worker subprocess. Only the row and the raw samples travel back to the client, which
+stores them.
 
 Everything here is imported by the Dask worker process by reference (the
 workers need speedbench installed, the same version as the client).
@@ -15,31 +15,25 @@ import re
 import time
 from pathlib import Path
 
+import speedbench
+from speedbench.errors import UserError
+from speedbench.sweep import steps
+from speedbench.sweep.env import environment_fingerprint
+from speedbench.sweep.pipeline import PointJob, PreparedGraph, build_row, make_context, run_point, single_stream_fps
+from speedbench.sweep.plan import expand_plan
+from speedbench.sweep.profile import parse_profile
+from speedbench.sweep.rundir import PER_IMAGE_DIR
+
 TOPIC = "speedbench-fleet"          # start events: the client learns which point is in flight
 LABEL_PREFIX = "host:"              # a worker advertises resource {"host:<label>": 1}
 LABEL_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")
 
-# Per worker process: parsed profiles, datasets and prepared graphs, so a host
-# exports and evaluates each distinct graph once per sweep (the disk caches of
-# export and accuracy make a later sweep cheap too).
+# Per worker process: parsed profiles, datasets and one point context per (profile, host), so
+# a host exports and evaluates each distinct graph once per sweep (the disk caches of export
+# and accuracy make a later sweep cheap too).
 _PROFILES: dict = {}
 _DATASETS: dict = {}
-_GRAPHS: dict = {}
-
-
-class _Quiet:
-    """Stands in for the sweep's progress display: a worker has no terminal."""
-
-    def status(self, text: str) -> None:
-        pass
-
-
-class _HostExports:
-    """Where prepare_graph keeps its copy of a graph on this host (a run directory's exports/)."""
-
-    def __init__(self, path: Path):
-        path.mkdir(parents=True, exist_ok=True)
-        self.exports = path
+_CONTEXTS: dict = {}
 
 
 def labels_of(resources: dict) -> list[str]:
@@ -57,8 +51,6 @@ def worker_label(expected: str) -> str:
 
 
 def _profile(text: str, source: str):
-    from speedbench.sweep.profile import parse_profile
-
     if (text, source) not in _PROFILES:
         _PROFILES[(text, source)] = parse_profile(text, source)
     return _PROFILES[(text, source)]
@@ -69,8 +61,6 @@ def _needs_data(plan) -> bool:
 
 
 def _dataset(profile):
-    from speedbench.sweep import steps
-
     key = (profile.dataset_path, profile.scenes_count, profile.scenes_seed, profile.cache)
     if key not in _DATASETS:
         _DATASETS[key] = steps.prepare_dataset(profile, Path(profile.cache))
@@ -83,11 +73,6 @@ def host_setup(text: str, source: str, label: str) -> dict:
     The plan is expanded here so that skips that depend on the machine (pins to
     more cores than the host has) follow the host, not the client.
     """
-    import speedbench
-    from speedbench.errors import UserError
-    from speedbench.sweep.env import environment_fingerprint
-    from speedbench.sweep.plan import expand_plan
-
     worker_label(label)
     profile = _profile(text, source)
     out = {"env": environment_fingerprint(), "version": speedbench.__version__,
@@ -106,68 +91,47 @@ def host_setup(text: str, source: str, label: str) -> dict:
     return out
 
 
-def run_point(text: str, source: str, label: str, planned, baseline=None, baseline_fps=None) -> dict:
-    """Measure one planned point on this host; always returns {"row", "samples"}.
+def measure_on_host(text: str, source: str, label: str, planned, baseline=None, baseline_fps=None) -> dict:
+    """Measure one planned point on this host by pipeline.run_point; returns {"row", "samples"}.
 
-    baseline: the result of this host's single-stream point of the same
-    configuration (a Dask dependency), for the scaling efficiency of K > 1 points.
+    baseline: the result of this host's single-stream point of the same configuration (a Dask
+    dependency) or baseline_fps its X(1), for the scaling efficiency of K > 1 points.
     """
     from distributed import get_worker
-
-    from speedbench.errors import UserError
-    from speedbench.sweep import steps
 
     worker_label(label)
     worker = get_worker()
     worker.log_event(TOPIC, {"label": label, "point_id": planned.point_id, "key": str(worker.get_current_task()),
                              "pid": os.getpid()})
-    profile = _profile(text, source)
     started = time.time()
-    notes = []
     busy = other_measurements()
-    if busy:
-        notes.append(f"{busy} other measurement worker(s) were running on this host when the point started")
-    if baseline_fps is None and baseline and baseline["row"].get("status") == "ok":
-        baseline_fps = baseline["row"].get("fps")
-    needs_data, info = planned.config["backend"] != "synthetic", None
+    if baseline_fps is None and baseline is not None:
+        baseline_fps = single_stream_fps(baseline["row"])
     try:
-        dataset = _dataset(profile) if needs_data else None
-        images = steps.timing_images(dataset, profile.timing_images)
-        policy = steps.make_policy(profile.repetitions)
-        info = _graph(planned, profile, dataset, label) if needs_data else steps.GraphInfo()
-        row, samples = steps.measure(planned, info, profile, images, policy, baseline_fps=baseline_fps)
-    except UserError as exc:
-        row, samples = _failed(planned, profile, str(exc)), []
-    except Exception as exc:  # a harness bug on one point must not cost the others
-        row, samples = _failed(planned, profile, f"{type(exc).__name__}: {' '.join(str(exc).split())[:300]}"), []
+        context = _context(_profile(text, source), label, needs_data=planned.config["backend"] != "synthetic")
+        got = run_point(PointJob(planned, baseline_fps=baseline_fps), context)
+        row, samples = got.row, got.samples
+        if got.graph.path:
+            row["host_graph"] = got.graph.path   # the graph stays on the host (its export cache)
+    except UserError as exc:            # the host's dataset cannot be read
+        row, samples = build_row(planned, PreparedGraph(), label, reason=str(exc)), []
     finished = time.time()
-    if info is not None and info.path:
-        row["host_graph"] = info.path   # the graph stays on the host (its export cache)
-    row["host"] = label
     row["wall_s"] = round(finished - started, 3)
     row["started_unix"], row["finished_unix"] = round(started, 3), round(finished, 3)
-    if notes:
-        row["note"] = "; ".join(([row["note"]] if row.get("note") else []) + notes)
+    if busy:
+        row["note"] = "; ".join(([row["note"]] if row.get("note") else [])
+                                + [f"{busy} other measurement worker(s) were running on this host when the point "
+                                   f"started"])
     return {"row": row, "samples": [float(x) for x in samples]}
 
 
-def _graph(planned, profile, dataset, label):
-    from speedbench.sweep import steps
-
-    key = (profile.text, planned.graph_key)
-    if key not in _GRAPHS:
-        cache = Path(profile.cache)
-        exports = _HostExports(cache / "fleet" / label / "exports")
-        _GRAPHS[key] = steps.prepare_graph(planned, profile, dataset, exports, cache, _Quiet())
-    return _GRAPHS[key]
-
-
-def _failed(planned, profile, reason: str) -> dict:
-    from speedbench.sweep import steps
-
-    row = {**planned.config, "point_id": planned.point_id, "status": "failed", "reason": reason}
-    row.update(steps.merge_columns(planned, steps.GraphInfo(), profile))
-    return row
+def _context(profile, label: str, needs_data: bool):
+    key = (profile.text, profile.source, label, needs_data)
+    if key not in _CONTEXTS:
+        cache = Path(profile.cache) / "fleet" / label
+        _CONTEXTS[key] = make_context(profile, _dataset(profile) if needs_data else None, cache / "exports",
+                                      host=label, per_image_dir=cache / PER_IMAGE_DIR)
+    return _CONTEXTS[key]
 
 
 def other_measurements() -> int:

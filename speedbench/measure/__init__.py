@@ -29,10 +29,7 @@ _LAZY = {
     "measure_curve": "speedbench.measure.load",
 }
 
-# The sweep plans K > 1 (throughput) points only when this is true.
-SUPPORTS_CONCURRENCY = True
-
-__all__ = [*_LAZY, "SUPPORTS_CONCURRENCY"]
+__all__ = [*_LAZY]
 
 
 def __getattr__(name):

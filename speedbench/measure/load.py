@@ -54,28 +54,9 @@ import numpy as np
 
 from speedbench.errors import UserError
 
-# Columns a load point adds to the point row (see speedbench/analyse/sizing.py for their use):
-#   tput_fps            aggregate frames/s of the K workers over the common window
-#   tput_p50/p90/p99_ms per-request latency under load (paced: from arrival, queueing included)
-#   tput_mean_ms        mean of the same (W of Little's law)
-#   scaling_eff         X(K) / (K X(1)); NaN when X(1) was not measured alongside
-#   littles_L           time-average requests in flight, from the timestamps
-#   littles_XW          X W, to set beside littles_L (Little's law)
-#   cores_used          K x T (K x affinity when pinned); host_cores: cores of the measuring host
-#   tput_window_s       length of the common window; tput_requests: requests completed in it
-#   tput_cpu_util       process CPU time / (span x cores_used); tput_cpu_util_xs: X x CPU per request
-#   tput_cpu_ms         mean process CPU time per request (all threads)
-#   tput_rss_total_mib  sum of the workers' peak resident memory
-#   tput_busy           busy fraction per worker; tput_busy_xs: X x mean service time / K (U = X S)
-#   tput_service_ms     mean service time (equals tput_mean_ms in a closed loop)
-#   load_curve          JSON list of paced points of the largest K: load (offered / capacity),
-#                       util (busy), offered_fps, tput_fps, p50_ms, p99_ms, mean_ms, status
-LOAD_COLUMNS = (
-    "tput_fps", "tput_p50_ms", "tput_p90_ms", "tput_p99_ms", "tput_mean_ms", "scaling_eff",
-    "littles_L", "littles_XW", "cores_used", "host_cores", "tput_window_s", "tput_requests",
-    "tput_cpu_util", "tput_cpu_util_xs", "tput_cpu_ms", "tput_rss_total_mib",
-    "tput_busy", "tput_busy_xs", "tput_service_ms", "load_curve",
-)
+from speedbench.schema import LATENCY_PERCENTILES, LOAD_COLUMNS
+from speedbench.system import atomic_write, cores_available
+
 NAN = float("nan")
 
 
@@ -184,7 +165,7 @@ def summarise(workers: list[dict], start_ns: int, end_ns: int, cores_used: int) 
         "tput_cpu_ms": float(np.mean(np.concatenate([np.asarray(w["cpu_ns"], float) for w in workers]))) / 1e6
         if n_total else NAN,
     }
-    for p in (50, 90, 99):
+    for p in LATENCY_PERCENTILES:
         out[f"tput_p{p}_ms"] = float(np.percentile(lat, p)) if n else NAN
     return out
 
@@ -201,8 +182,8 @@ def completed_latencies_ms(workers: list[dict], start_ns: int, end_ns: int) -> l
 
 # --------------------------------------------------------------------------- parent side
 def host_cores() -> int:
-    """Cores this process may run on (affinity / cgroup aware where Linux tells us)."""
-    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    """Cores this process may run on."""
+    return cores_available()
 
 
 def measure_load(point, images, k: int | None = None, policy=None, timeout_s: float = 600,
@@ -302,14 +283,20 @@ def measure_scaling(point, images, ks=(1, 2), on_result=None, utilisations=(), *
         res = measure_load(point, images, k=k, baseline_fps=baseline, **kwargs)
         if k == 1 and res.ok:
             baseline = res.tput_fps
-        if k == ks[-1] and res.ok and utilisations:
-            paced = measure_curve(point, images, k, utilisations, capacity_fps=res.tput_fps, **kwargs)
-            res.summary["load_curve"] = json.dumps([curve_entry(r) for r in paced])
+        if k == ks[-1] and utilisations:
+            add_curve(res, point, images, utilisations, **kwargs)
         if k in ks:
             out.append(res)
             if on_result is not None:
                 on_result(res)
     return out
+
+
+def add_curve(result: "LoadResult", point, images, utilisations, **kwargs) -> None:
+    """Paced runs at fractions of an ok closed-loop result's throughput, kept in its load_curve column."""
+    if result.ok and utilisations:
+        paced = measure_curve(point, images, result.k, utilisations, capacity_fps=result.tput_fps, **kwargs)
+        result.summary["load_curve"] = json.dumps([curve_entry(r) for r in paced])
 
 
 def measure_curve(point, images, k: int, utilisations=(0.5, 0.7, 0.9), capacity_fps: float | None = None,
@@ -459,9 +446,7 @@ def _read_json(path) -> dict:
 
 
 def _write_json(path: Path, obj) -> None:
-    tmp = path.with_name(path.name + ".tmp")
-    tmp.write_text(json.dumps(obj))
-    os.replace(tmp, path)  # atomic: a reader sees all of it or nothing
+    atomic_write(path, json.dumps(obj))  # a reader sees all of it or nothing
 
 
 # --------------------------------------------------------------------------- worker side

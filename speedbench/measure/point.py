@@ -1,16 +1,22 @@
 """What to run (Point) and how long to keep running it (Policy)."""
 from __future__ import annotations
 
-import os
 from dataclasses import asdict, dataclass, field, fields
 from pathlib import Path
 
 from speedbench.errors import UserError
 from speedbench.measure.backends import NAMES as BACKENDS
 from speedbench.schema import CONFIG_COLUMNS, point_id
+from speedbench.system import cores_available
 
 EXEC_MODES = ("sequential", "parallel")
 OPT_LEVELS = ("disable", "basic", "extended", "all")
+ORT_ONLY_KNOBS = ("exec_mode", "opt_level")   # "" on every other backend (schema.CONFIG_COLUMNS)
+
+
+def uses_ort_knobs(backend: str) -> bool:
+    """Only ONNX Runtime has an execution mode and a graph optimisation level."""
+    return backend == "ort"
 
 
 @dataclass
@@ -38,8 +44,8 @@ class Point:
     options: dict = field(default_factory=dict)
 
     def __post_init__(self):
-        # ORT's executor knobs mean nothing elsewhere; schema: "" for eager (and the test backend)
-        if self.backend in ("eager", "synthetic"):
+        # The one place ORT-only knobs are blanked: plan, stored row and point_id(row) then agree.
+        if not uses_ort_knobs(self.backend):
             self.exec_mode, self.opt_level = "", ""
 
     def config(self) -> dict:
@@ -69,7 +75,7 @@ class Point:
             raise UserError(f"point field 'env': expected a text label, got {self.env!r}")
         if not isinstance(self.concurrency, int) or isinstance(self.concurrency, bool) or self.concurrency < 1:
             raise UserError(f"point field 'concurrency': expected an integer >= 1, got {self.concurrency!r}")
-        cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
+        cores = cores_available()
         if self.affinity > cores:
             raise UserError(f"point field 'affinity': {self.affinity} cores requested, {cores} available")
         if self.backend == "ort":

@@ -8,10 +8,8 @@ from dataclasses import dataclass, field
 from speedbench.measure.point import Point
 from speedbench.measure.stats import Measurement
 from speedbench.measure.timebase import stage_columns
+from speedbench.schema import LATENCY_COLUMNS, MEMORY_COLUMNS
 
-MEMORY_COLUMNS = ("rss_imports_mib", "rss_loaded_mib", "rss_peak_mib", "model_file_mib")
-LATENCY_COLUMNS = ("n_samples", "lat_min_ms", "lat_mean_ms", "lat_std_ms", "lat_cov",
-                   *[f"lat_p{p}_{k}ms" for p in (50, 90, 99) for k in ("", "ci_lo_", "ci_hi_")], "noisy", "fps")
 NAN = float("nan")
 
 

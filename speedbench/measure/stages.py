@@ -33,6 +33,8 @@ from __future__ import annotations
 import json
 from collections import defaultdict
 
+from speedbench.zoo import stage_of_scope
+
 CONTROL_FLOW = ("If", "Loop", "Scan")
 KERNEL_SUFFIX = "_kernel_time"
 
@@ -331,12 +333,8 @@ DEFAULT_STAGE_SCOPES = {
 
 
 def stage_function(spec):
-    """scope -> stage for a ModelSpec (or None): the zoo's stage_of_scope when it exists, else prefixes."""
-    try:
-        from speedbench.zoo import stage_of_scope
-    except ImportError:
-        stage_of_scope = None
-    if stage_of_scope is not None and spec is not None:
+    """scope -> stage for a ModelSpec (the zoo's stage_of_scope), or torchvision's usual module
+    prefixes for a graph that is not a zoo model (spec None)."""
+    if spec is not None:
         return lambda scope: stage_of_scope(spec, scope)
-    scopes = dict(getattr(spec, "stage_scopes", None) or DEFAULT_STAGE_SCOPES)
-    return lambda scope: prefix_stage_of(scopes, scope)
+    return lambda scope: prefix_stage_of(DEFAULT_STAGE_SCOPES, scope)

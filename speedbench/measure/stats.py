@@ -14,6 +14,8 @@ import math
 
 import numpy as np
 
+from speedbench.schema import LATENCY_PERCENTILES
+
 
 def binomial_cdf(n: int, q: float) -> np.ndarray:
     """CDF of Binomial(n, q) at k = 0..n, computed in log space (stable for large n)."""
@@ -108,7 +110,7 @@ class Measurement:
     def summary(self) -> dict:
         out = {"n_samples": self.n, "lat_min_ms": self.min, "lat_mean_ms": self.mean,
                "lat_std_ms": self.std, "lat_cov": self.cov}
-        for p in (50, 90, 99):
+        for p in LATENCY_PERCENTILES:
             lo, hi = self.ci(p)
             out[f"lat_p{p}_ms"] = self.percentile(p)
             out[f"lat_p{p}_ci_lo_ms"] = lo

@@ -15,6 +15,7 @@ import sys
 import traceback
 
 from speedbench.measure.probe import run_probe
+from speedbench.system import atomic_write
 
 # Libraries whose import cost belongs to "after imports" for each backend.
 IMPORTS = {"ort": ("numpy", "onnxruntime", "onnx"), "eager": ("numpy", "torch", "torchvision"),
@@ -33,12 +34,7 @@ def pin(cores: int) -> list[int]:
 
 
 def write_json_atomic(path: str, data: dict) -> None:
-    tmp = f"{path}.tmp{os.getpid()}"
-    with open(tmp, "w") as f:
-        json.dump(data, f, allow_nan=True)
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
+    atomic_write(path, json.dumps(data, allow_nan=True), fsync=True)
 
 
 def run_worker(spec: dict) -> dict:

@@ -34,16 +34,6 @@ TIMED = ("What is timed: one call of the exported ONNX graph on one image (onnxr
          "until the confidence interval of the median is narrow enough or the time budget is spent.")
 
 
-def collect(runs) -> tuple[pd.DataFrame, pd.DataFrame, list[Run]]:
-    """One points table and one samples table from one or several runs (see analyse.combine).
-
-    Each row gets a `host` key. With several hosts, labels and point ids carry the host so
-    that the same configuration from two hosts stays apart.
-    """
-    data = combine(runs)
-    return data.points, data.samples, data.runs
-
-
 def build(runs, budget_ms=None, latency: str = "p50", title: str | None = None,
           prices: dict | None = None) -> tuple[str, list]:
     data = combine(runs)
@@ -85,19 +75,13 @@ def build(runs, budget_ms=None, latency: str = "p50", title: str | None = None,
 
     blocks.append(("h2", "Method"))
     blocks.append(("p", TIMED))
-    regions = _timed_regions(ok)
+    regions = _timed_regions(ok, runs)
     if regions:
         blocks.append(("list", regions))
     blocks.append(("list", _noise_lines(ok)))
     for r in runs:
-        if r.path:
-            try:
-                from speedbench.sweep import RunDir
-
-                with RunDir.open(r.path) as rd:
-                    blocks.append(("details", f"Profile of {r.name}", rd.profile_text()))
-            except Exception:  # the profile copy is a courtesy; its absence must not stop the report
-                pass
+        if r.profile_text:
+            blocks.append(("details", f"Profile of {r.name}", r.profile_text))
 
     blocks.append(("h2", f"Frontier ({stat} latency vs accuracy)"))
     if not trained:
@@ -166,7 +150,7 @@ def build(runs, budget_ms=None, latency: str = "p50", title: str | None = None,
         blocks.append(("table", ["configuration", "reason"], [[r["label"], r["reason"]] for _, r in failed.iterrows()]))
 
     blocks.append(("h2", "Caveats"))
-    blocks.append(("list", _caveats(ok, trained, hosts, prices is not None)))
+    blocks.append(("list", _caveats(ok, trained, hosts, runs, prices is not None)))
     blocks.append(("warn", safety))
     name = title or f"speedbench report: {', '.join(r.name for r in runs) or 'run'}"
     return name, blocks
@@ -300,19 +284,14 @@ def _env_rows(run: Run) -> list[list[str]]:
     return [[str(a), str(b)] for a, b in rows]
 
 
-def _timed_regions(ok) -> list[str]:
-    """The measure package's own statement of each backend's timed region."""
-    import importlib
-
-    out = []
+def _timed_regions(ok, runs) -> list[str]:
+    """Each backend's timed region as the runs recorded it (meta.json timed_regions) when measured."""
+    recorded = {}
+    for r in runs:
+        recorded.update({b: t for b, t in (r.meta.get("timed_regions") or {}).items() if b not in recorded})
     backends = sorted({str(b) for b in ok.get("backend", pd.Series(dtype=str)) if str(b)}) if len(ok) else []
-    for b in backends:
-        try:
-            region = importlib.import_module(f"speedbench.measure.backends.{b}").TIMED_REGION
-        except (ImportError, AttributeError):
-            continue
-        out.append(f"Timed region, backend {b}: {region}")
-    return out
+    return [f"Timed region, backend {b}: {recorded.get(b, 'not recorded (a run made before speedbench recorded it)')}"
+            for b in backends]
 
 
 def _noise_lines(ok) -> list[str]:
@@ -340,7 +319,7 @@ def _noise_lines(ok) -> list[str]:
     return lines
 
 
-def _caveats(ok, trained, hosts, priced=False) -> list[str]:
+def _caveats(ok, trained, hosts, runs, priced=False) -> list[str]:
     out = [f"One host{'' if len(hosts) <= 1 else ' per run'}: the figures hold for this CPU, its instruction "
            "set (AVX2 / AVX-512 / AMX), memory and load. Another CPU model can rank configurations differently.",
            "Benchmark figures measured on one host are not guarantees, not even for another machine of the "
@@ -372,19 +351,26 @@ def _caveats(ok, trained, hosts, priced=False) -> list[str]:
     if trained:
         out.append("Accuracy comes from a small held-out set: mind the confidence intervals; differences "
                    "inside them are not evidence. Images from another domain can change the ranking.")
-    out += _outside_training(ok)
+    out += _outside_training(ok, runs)
     return out
 
 
-def _outside_training(ok) -> list[str]:
-    """A caveat per model measured at input sizes outside those its weights were trained at."""
-    from speedbench.zoo import trained_sizes
-
+def _outside_training(ok, runs) -> list[str]:
+    """A caveat per model measured at input sizes outside those its weights were trained at, from the
+    training sizes the runs recorded (meta.json trained_sizes) when they were measured."""
     if not len(ok) or not {"model", "weights", "size"} <= set(ok.columns):
         return []
-    found = []
+    recorded, found, unknown = {}, [], []
+    for r in runs:
+        for key, sizes in (r.meta.get("trained_sizes") or {}).items():
+            recorded.setdefault(key, sizes)
     for (model, weights), g in ok.groupby(["model", "weights"], sort=True):
-        sizes = trained_sizes(str(model), str(weights))
+        key = f"{model}|{weights}"
+        if key not in recorded:
+            if str(weights) == "demo":   # only demo weights carry training sizes
+                unknown.append(str(model))
+            continue
+        sizes = recorded[key]
         if not sizes:
             continue
         lo, hi = min(sizes), max(sizes)
@@ -393,11 +379,13 @@ def _outside_training(ok) -> list[str]:
             trained_at = f"{lo} px" if lo == hi else f"{lo}-{hi} px"
             found.append(f"{model} at {', '.join(map(str, outside))} px (its {weights} weights were trained at "
                          f"{trained_at})")
-    if not found:
-        return []
-    return ["Measured outside the input sizes the weights were trained at: " + "; ".join(found) + ". Their "
-            "accuracy there is measured, not assumed, but nothing in training prepared the model for those "
-            "sizes, which can explain a sharp drop."]
+    out = [f"Training input sizes of the demo weights of {', '.join(unknown)}: not recorded (a run made "
+           f"before speedbench recorded them), so sizes outside training are not flagged."] if unknown else []
+    if found:
+        out.append("Measured outside the input sizes the weights were trained at: " + "; ".join(found) + ". Their "
+                   "accuracy there is measured, not assumed, but nothing in training prepared the model for those "
+                   "sizes, which can explain a sharp drop.")
+    return out
 
 
 def _num(v, digits) -> str:

@@ -8,10 +8,11 @@ from __future__ import annotations
 import base64
 import html
 import io
-import re
 from importlib import resources
 from pathlib import Path
 
+from speedbench.analyse.common import md as _md
+from speedbench.analyse.common import md_cell as _cell
 from speedbench.errors import UserError
 from speedbench.report.document import build
 
@@ -109,26 +110,6 @@ def render_markdown(run_paths_or_frames, out_path, budget_ms=None, latency: str 
             lines += [f"![{_md(b[3])}]({img_dir.name}/{b[1]}.png)", ""]
     _write(out, "\n".join(lines))
     return out
-
-
-# Characters Markdown (or the HTML it passes through) would interpret anywhere in a line;
-# the backslash first, so the escapes added here are not themselves undone.
-_MD_ANYWHERE = re.compile(r"([\\`<>&|\[\]])")
-# At the start of a line: headings, block quotes, list bullets, ordered lists ("1." / "1)").
-_MD_LEADING = re.compile(r"^(\s*)([#>*+-]|\d+(?=[.)]))", re.M)
-
-
-def _md(text) -> str:
-    """Escape text for Markdown with backslashes, not HTML entities (which show up literally
-    in a Markdown viewer). CommonMark, "Backslash escapes": any ASCII punctuation may be
-    backslash-escaped and is then literal text, so an escaped <script> tag renders as text, inert."""
-    out = _MD_ANYWHERE.sub(r"\\\1", str(text))
-    return _MD_LEADING.sub(lambda m: m.group(1) + (m.group(2) + "\\" if m.group(2)[0].isdigit()
-                                                     else "\\" + m.group(2)), out)
-
-
-def _cell(text) -> str:
-    return _md(text).replace("\n", " ")  # _md already escapes "|"
 
 
 def _write(out: Path, text: str) -> None:

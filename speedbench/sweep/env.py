@@ -12,6 +12,8 @@ import subprocess
 import sys
 from pathlib import Path
 
+from speedbench.system import cores_available
+
 # CPU features that change which kernels ONNX Runtime / PyTorch pick.
 CPU_FLAGS = ("sse4_2", "avx", "avx2", "fma", "f16c", "avx_vnni", "avx512f", "avx512bw",
              "avx512vl", "avx512_vnni", "avx512_bf16", "avx512_fp16", "amx_tile", "amx_bf16", "amx_int8")
@@ -97,10 +99,7 @@ def environment_fingerprint() -> dict:
         freq = psutil.cpu_freq()
     except (OSError, NotImplementedError):
         freq = None
-    try:
-        affinity = len(os.sched_getaffinity(0))
-    except (AttributeError, OSError):
-        affinity = None
+    affinity = cores_available()
     try:
         load = [round(x, 2) for x in os.getloadavg()]
     except OSError:

@@ -8,13 +8,17 @@ skip leaves a note; none is an error.
 """
 from __future__ import annotations
 
-import os
+import dataclasses
 from collections import Counter
 from dataclasses import dataclass, field
+from typing import NamedTuple
 
 from speedbench import schema
 from speedbench.errors import UserError
+from speedbench.measure.point import Point, uses_ort_knobs
 from speedbench.sweep.profile import Profile
+from speedbench.system import cores_available
+from speedbench.zoo import get_spec as zoo_spec
 
 # Rough costs for the dry-run estimate, from the demo sweep on the shared 2-core
 # development machine (exports of the compact detectors with parity check took
@@ -26,28 +30,51 @@ EVAL_S_PER_IMAGE = 0.25
 DEFAULT_MAX_SECONDS = 10.0   # used when the profile does not set repetitions.max_seconds
 
 
+class GraphKey(NamedTuple):
+    """What one export and one accuracy run are shared by: the points of one graph."""
+    model: str
+    weights: str
+    size: int
+    proposals: int
+
+
 @dataclass(frozen=True)
 class PlannedPoint:
-    config: dict                 # values of speedbench.schema.CONFIG_COLUMNS
-    point_id: str
+    """A point of the plan: what to measure (a measure.Point) and which graph it needs."""
+    point: Point                 # identity = schema.CONFIG_COLUMNS; ORT-only knobs blanked by Point
+    graph_key: GraphKey
     family: str
-    graph_key: tuple             # (model, weights, size, proposals): one export + one accuracy run
     notes: tuple = ()            # per-point notes (mappings applied to this point)
 
     @property
+    def config(self) -> dict:
+        return self.point.config()
+
+    @property
+    def point_id(self) -> str:
+        return self.point.id
+
+    def at_concurrency(self, k: int) -> "PlannedPoint":
+        """The same configuration measured with K concurrent workers."""
+        return dataclasses.replace(self, point=dataclasses.replace(self.point, concurrency=int(k)))
+
+    @classmethod
+    def from_row(cls, row: dict) -> "PlannedPoint":
+        """A stored row -> the PlannedPoint of its configuration (old rows: missing knobs defaulted)."""
+        config = {c: row.get(c, schema.ID_DEFAULTS.get(c)) for c in schema.CONFIG_COLUMNS}
+        for c in ("size", "proposals", "intra_threads", "inter_threads", "affinity"):
+            config[c] = int(config[c] or 0)
+        config["concurrency"] = int(config["concurrency"] or 1)
+        for c in ("exec_mode", "opt_level"):
+            if not config[c]:
+                config.pop(c)   # Point's defaults (ORT) or blank (other backends)
+        point = Point(**config)
+        return cls(point=point, family=row.get("family") or "",
+                   graph_key=GraphKey(point.model, point.weights, point.size, point.proposals))
+
+    @property
     def label(self) -> str:
-        c = self.config
-        text = f"{c['model']} {c['size']}px"
-        if c["proposals"]:
-            text += f" p{c['proposals']}"
-        text += f" {c['backend']} t{c['intra_threads']}"
-        if c["exec_mode"] == "parallel":
-            text += f"/{c['inter_threads']}par"
-        if c["affinity"]:
-            text += f" pin{c['affinity']}"
-        if c["concurrency"] > 1:
-            text += f" K{c['concurrency']}"
-        return text
+        return schema.config_label(self.config)
 
 
 @dataclass
@@ -68,14 +95,6 @@ class Plan:
         return [p for p in self.points if p.point_id not in done]
 
 
-def _zoo_lookup(model_id: str):
-    try:
-        from speedbench.zoo import get_spec
-    except ImportError:  # the zoo's public face may not forward it yet
-        from speedbench.zoo.registry import get_spec
-    return get_spec(model_id)
-
-
 def synthetic_spec(model_id: str):
     """Stand-in spec for the measure package's synthetic harness backend (no real model).
 
@@ -85,30 +104,21 @@ def synthetic_spec(model_id: str):
 
     return ModelSpec(id=model_id, builder="", family="two-stage", native_size=320,
                      detections_per_img=0, score_thresh=0.0, default_proposals=100,
-                     notes="harness test backend, not a detector")
+                     arch="", notes="harness test backend, not a detector")
 
 
-def _cores_allowed() -> int:
-    try:
-        return len(os.sched_getaffinity(0))
-    except (AttributeError, OSError):
-        return os.cpu_count() or 1
-
-
-def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool | None = None,
+def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool = True,
                 cores: int | None = None) -> Plan:
     """Expand `profile` into a Plan.
 
     get_spec(model_id) -> ModelSpec (default: the zoo); an unknown id is a
-    UserError naming models[i].id. concurrency_supported: whether the measure
-    package can run K > 1 concurrent streams (default: ask it). cores: cores
+    UserError naming models[i].id. concurrency_supported: False plans no K > 1
+    (throughput) points. cores: cores
     this process may use (default: the affinity mask), for skipping pins that
     cannot be honoured.
     """
-    get_spec = get_spec or _zoo_lookup
-    if concurrency_supported is None:
-        concurrency_supported = _measure_supports_concurrency()
-    cores = cores or _cores_allowed()
+    get_spec = get_spec or zoo_spec
+    cores = cores or cores_available()
     notes: Counter = Counter()
     points: dict[str, PlannedPoint] = {}
     merged = 0
@@ -148,14 +158,13 @@ def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool | N
                                                  cores, concurrency_supported, notes)
                                 if got is None:
                                     continue
-                                config, point_notes = got
-                                pid = schema.point_id(config)
-                                if pid in points:
+                                point, point_notes = got
+                                if point.id in points:
                                     merged += 1
                                     continue
-                                points[pid] = PlannedPoint(
-                                    config=config, point_id=pid, family=spec.family,
-                                    graph_key=(entry.id, entry.weights, size, prop),
+                                points[point.id] = PlannedPoint(
+                                    point=point, family=spec.family,
+                                    graph_key=GraphKey(entry.id, entry.weights, int(size), int(prop)),
                                     notes=prop_note + point_notes)
     if merged:
         notes[f"{merged} combination(s) mapped onto points already planned (measured once)"] += 1
@@ -170,13 +179,10 @@ def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, conc
     if entry.id.startswith("synthetic") and backend != "synthetic":
         notes[f"skipped {entry.id} on backend {backend}: a synthetic model runs on the synthetic backend only"] += 1
         return None
-    if backend != "ort":
-        # Only ORT has an execution mode and a graph optimisation level. measure.Point blanks
-        # them for other backends, so blank them here too, before the id is taken: plan, stored
-        # row and point_id(row) then agree (runs made before this re-measure their non-ORT points).
+    if not uses_ort_knobs(backend):
+        # measure.Point blanks the ORT-only knobs (before the id is taken); the plan only says so.
         if len(profile.opt_levels) > 1 and opt == profile.opt_levels[0]:
             notes[f"{backend} backend: opt_levels do not apply; measured once"] += 1
-        opt, mode = "", ""
     elif mode == "sequential" and inter != 1:
         # ORT uses its inter-op pool only in parallel execution mode.
         notes[f"threads inter={inter} has no effect in sequential mode; measured as inter=1"] += 1
@@ -186,7 +192,7 @@ def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, conc
         notes[f"skipped affinity={t.affinity}: only {cores} core(s) available here"] += 1
         return None
     if k > 1 and not concurrency_supported:
-        notes[f"skipped concurrency={k}: throughput points are not supported by the measure package yet"] += 1
+        notes[f"skipped concurrency={k}: throughput points not wanted here"] += 1
         return None
     if k > 1 and t.intra == 0:
         notes[f"skipped concurrency={k} with intra=0: throughput points need an explicit thread count"] += 1
@@ -195,12 +201,10 @@ def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, conc
         # K workers x T threads beyond the cores measures contention, not the configuration.
         notes[f"skipped concurrency={k} x {max(t.intra, t.affinity)} threads: more than the {cores} core(s) here"] += 1
         return None
-    config = {
-        "model": entry.id, "weights": entry.weights, "size": int(size), "proposals": int(prop),
-        "backend": backend, "intra_threads": t.intra, "inter_threads": inter, "exec_mode": mode,
-        "opt_level": opt, "affinity": t.affinity, "concurrency": k, "env": "",
-    }
-    return config, tuple(point_notes)
+    point = Point(model=entry.id, weights=entry.weights, size=int(size), proposals=int(prop), backend=backend,
+                  intra_threads=t.intra, inter_threads=inter, exec_mode=mode, opt_level=opt,
+                  affinity=t.affinity, concurrency=k)
+    return point, tuple(point_notes)
 
 
 def _dedupe(values) -> list:
@@ -209,14 +213,6 @@ def _dedupe(values) -> list:
         if v not in out:
             out.append(v)
     return out
-
-
-def _measure_supports_concurrency() -> bool:
-    try:
-        from speedbench.measure.load import measure_load  # noqa: F401
-    except ImportError:
-        return False
-    return True
 
 
 def estimate_seconds(plan: Plan, profile: Profile, done_ids=(), n_images: int | None = None,

@@ -27,12 +27,12 @@ import json
 import math
 import os
 import sqlite3
-import tempfile
 import time
 from pathlib import Path
 
 from speedbench import schema
 from speedbench.errors import UserError
+from speedbench.system import atomic_write
 from speedbench.measure.timebase import upgrade_frame
 
 META_FILE = "meta.json"
@@ -43,11 +43,6 @@ PARQUET_FILE = "points.parquet"
 EXPORTS_DIR = "exports"
 PER_IMAGE_DIR = "per_image"   # per-image accuracy results of each graph (<per_image_key>.npz)
 
-# Columns that hold text; every other schema column is numeric (NaN when missing).
-TEXT_COLUMNS = {"model", "weights", "backend", "exec_mode", "opt_level",
-                "point_id", "host", "family", "status", "reason", "stage_method", "probe_raw",
-                "env", "env_python", "env_fingerprint"}
-BOOL_COLUMNS = {"noisy", "untrained"}
 
 _SCHEMA_SQL = """
 CREATE TABLE IF NOT EXISTS points (
@@ -83,20 +78,7 @@ def now_iso() -> str:
 
 
 def _atomic_write_bytes(path: Path, data: bytes) -> None:
-    """Write to a temp file in the same directory, fsync, then rename over the target."""
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except FileNotFoundError:
-            pass
-        raise
+    atomic_write(path, data, fsync=True)
 
 
 def _json_default(value):
@@ -386,7 +368,8 @@ class RunDir:
 def rows_to_frame(rows: list[dict]):
     """Rows -> tidy DataFrame: schema columns first (always present), extra columns after.
 
-    Missing numeric values are NaN, missing text is "", flags are booleans.
+    Missing numeric values are NaN, missing text is "", flags are booleans. The frame is built
+    in one go from converted columns, so a user adding a column to it gets no fragmentation warning.
     """
     import pandas as pd
 
@@ -396,28 +379,39 @@ def rows_to_frame(rows: list[dict]):
         for key in row:
             if key not in known and key not in extra:
                 extra.append(key)
-    df = pd.DataFrame.from_records(rows, columns=known + extra) if rows else pd.DataFrame(columns=known)
-    for col in known:
-        if col in TEXT_COLUMNS:
-            df[col] = df[col].where(df[col].notna(), "").astype(str).astype(object)
-        elif col in BOOL_COLUMNS:
-            df[col] = df[col].where(df[col].notna(), False).astype(bool)
-        else:
-            df[col] = pd.to_numeric(df[col], errors="coerce").astype("float64")
-    # Config knobs are whole numbers; keep them integral when every row has them.
-    for col in ("size", "proposals", "intra_threads", "inter_threads", "affinity", "concurrency", "n_samples"):
-        if len(df) and df[col].notna().all():
-            df[col] = df[col].astype("int64")
-    for col in extra:
-        # Extra columns of mixed kinds (e.g. a note that is text in one row, null in
-        # another) stay objects; Parquet needs one type per column, so stringify those.
-        values = df[col].dropna()
-        if len(values) and not all(isinstance(v, (int, float, bool)) for v in values):
-            df[col] = df[col].map(lambda v: "" if v is None or (isinstance(v, float) and math.isnan(v))
-                                  else (v if isinstance(v, str) else json.dumps(v, default=_json_default)))
-        elif len(values) == 0:
-            df[col] = pd.to_numeric(df[col], errors="coerce").astype("float64")
-    return upgrade_frame(df)
+    raw = pd.DataFrame.from_records(rows, columns=known + extra) if rows else pd.DataFrame(columns=known)
+    columns = {col: _known_column(raw[col], col) for col in known}
+    columns.update({col: _extra_column(raw[col]) for col in extra})
+    return upgrade_frame(pd.DataFrame(columns, index=raw.index))
+
+
+# Config knobs are whole numbers; kept integral when every row has them.
+_INT_COLUMNS = ("size", "proposals", "intra_threads", "inter_threads", "affinity", "concurrency", "n_samples")
+
+
+def _known_column(values, col: str):
+    import pandas as pd
+
+    if col in schema.TEXT_COLUMNS:
+        return values.where(values.notna(), "").astype(str).astype(object)
+    if col in schema.BOOL_COLUMNS:
+        return values.where(values.notna(), False).astype(bool)
+    out = pd.to_numeric(values, errors="coerce").astype("float64")
+    return out.astype("int64") if col in _INT_COLUMNS and len(out) and out.notna().all() else out
+
+
+def _extra_column(values):
+    import pandas as pd
+
+    # Extra columns of mixed kinds (e.g. a note that is text in one row, null in
+    # another) stay objects; Parquet needs one type per column, so stringify those.
+    present = values.dropna()
+    if len(present) and not all(isinstance(v, (int, float, bool)) for v in present):
+        return values.map(lambda v: "" if v is None or (isinstance(v, float) and math.isnan(v))
+                          else (v if isinstance(v, str) else json.dumps(v, default=_json_default)))
+    if len(present) == 0:
+        return pd.to_numeric(values, errors="coerce").astype("float64")
+    return values
 
 
 def _version() -> str:

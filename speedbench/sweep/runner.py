@@ -8,15 +8,16 @@ every point already written; `resume=True` measures only the missing ones.
 from __future__ import annotations
 
 import sys
-import time
 from pathlib import Path
 
 from speedbench.errors import UserError
 from speedbench.sweep import steps
+from speedbench.sweep.env import environment_fingerprint
+from speedbench.sweep.pipeline import PointJob, baselines, make_context, record_run_facts, run_point, stream_key
 from speedbench.sweep.plan import Plan, expand_plan
-from speedbench.sweep.profile import Profile, load_profile
+from speedbench.sweep.profile import Profile, load_profile, parse_profile
 from speedbench.sweep.progress import Progress
-from speedbench.sweep.rundir import RunDir
+from speedbench.sweep.rundir import PER_IMAGE_DIR, RunDir, now_iso
 
 
 def run_sweep(profile_path, out_dir=None, resume: bool = False, quiet: bool = False,
@@ -54,8 +55,6 @@ def same_study(a: Profile, b: Profile, ignore_host: bool = False) -> bool:
 
 def _open_run(profile: Profile, out: Path, resume: bool) -> RunDir:
     if resume:
-        from speedbench.sweep.profile import parse_profile
-
         rd = RunDir.open(out)
         try:
             stored = parse_profile(rd.profile_text(), str(out / "profile.toml"))
@@ -65,16 +64,12 @@ def _open_run(profile: Profile, out: Path, resume: bool) -> RunDir:
             rd.close()
             raise UserError(f"{out / 'profile.toml'}: the run was started with a different profile than "
                             f"{profile.source}; resume with that file or start a new run directory")
-        from speedbench.sweep.rundir import now_iso
-
         rd.update_meta(resumed=list(rd.meta().get("resumed") or []) + [now_iso()], finished=None)
         return rd
     if out.exists() and not out.is_dir():
         raise UserError(f"{out}: exists and is not a directory; choose another output directory")
     if out.exists() and any(out.iterdir()) and not (out / "meta.json").exists():
         raise UserError(f"{out}: exists and is not empty; choose another output directory")
-    from speedbench.sweep.env import environment_fingerprint
-
     meta = {"profile_name": profile.name, "host": profile.host, "profile_source": profile.source,
             "env": environment_fingerprint()}
     return RunDir.create(out, profile.text, meta)
@@ -88,6 +83,7 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
     todo = plan.missing(done)
     counts = {"ok": 0, "failed": 0, "skipped_done": len(plan.points) - len(todo)}
     rd.update_meta(plan_points=len(plan.points), plan_notes=plan.notes)
+    record_run_facts(rd, plan.points)
     for note in plan.notes:
         print(f"note: {note}", file=stream)
     orphans = orphaned_workers()
@@ -100,70 +96,36 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
         rd.finish()
         return counts
 
-    cache = Path(profile.cache)
-    needs_data = any(p.config["backend"] != "synthetic" for p in todo)
-    if needs_data and dataset is None:
-        dataset = steps.prepare_dataset(profile, cache)
-    timing_images = steps.timing_images(dataset, profile.timing_images)
-    policy = steps.make_policy(profile.repetitions)
-
+    if dataset is None and any(p.config["backend"] != "synthetic" for p in todo):
+        dataset = steps.prepare_dataset(profile, Path(profile.cache))
     progress = Progress(len(todo), quiet=quiet, stream=stream)
-    graph_info: dict = {}
+    context = make_context(profile, dataset, rd.exports, host=profile.host, per_image_dir=rd.path / PER_IMAGE_DIR,
+                           status=progress.status, on_prepared=lambda key, graph: _note_thread_check(rd, key, graph))
     # One-stream throughput of each configuration, for the scaling efficiency of K > 1 points.
-    single_fps = {_stream_key(r): single_stream_fps(r) for r in rd.rows()
-                  if r.get("concurrency") == 1 and r.get("status") == "ok"}
+    x1 = baselines(rd.rows())
     try:
-        for point in todo:
-            key = point.graph_key
-            if key not in graph_info and point.config["backend"] != "synthetic":
-                progress.status(f"export {key[0]} {key[2]}px")
-                graph_info[key] = steps.prepare_graph(point, profile, dataset, rd, cache, progress)
-                _note_thread_check(rd, key, graph_info[key])
-            # The synthetic backend runs no graph: an export failure does not concern it.
-            synthetic = point.config["backend"] == "synthetic"
-            info = steps.GraphInfo() if synthetic else graph_info[key]
-            progress.start(point.label)
-            t0 = time.monotonic()
-            row, samples = steps.measure(point, info, profile, timing_images, policy,
-                                         baseline_fps=single_fps.get(_stream_key(point.config)))
-            if point.config["concurrency"] == 1 and row.get("status") == "ok":
-                single_fps[_stream_key(point.config)] = single_stream_fps(row)
-            row["wall_s"] = round(time.monotonic() - t0, 3)
-            rd.write_point(row, samples)
-            counts["ok" if row.get("status") == "ok" else "failed"] += 1
-            progress.done(point.label, row)
+        for planned in todo:      # the plan lists a configuration's K = 1 point before its K > 1 points
+            progress.start(planned.label)
+            got = run_point(PointJob(planned, baseline_fps=x1.get(stream_key(planned.config))), context)
+            x1.update(baselines([got.row]))
+            rd.write_point(got.row, got.samples)
+            counts["ok" if got.row.get("status") == "ok" else "failed"] += 1
+            progress.done(planned.label, got.row)
     finally:
         progress.close()
     rd.finish()
     return counts
 
 
-def _note_thread_check(rd: RunDir, key: tuple, info) -> None:
+def _note_thread_check(rd: RunDir, key: tuple, graph) -> None:
     """meta["thread_invariance"]: per graph, did 1 and 2 intra-op threads detect the same?"""
-    acc = info.accuracy or {}
+    acc = graph.accuracy or {}
     if "threads_identical" not in acc:
         return
     checks = dict(rd.meta().get("thread_invariance") or {})
     checks["/".join(str(k) for k in key)] = {"identical": acc["threads_identical"],
                                              "max_box_diff": acc.get("threads_max_box_diff")}
     rd.update_meta(thread_invariance=checks)
-
-
-def single_stream_fps(row: dict):
-    """X(1) of a K = 1 row: one closed-loop stream serves 1000 / mean latency frames a second.
-
-    Not the row's `fps` (1000 / p50): on a noisy host mean and median differ a lot, and
-    speedbench.analyse.sizing derives X(1) from lat_mean_ms the same way (Little's law, L = 1).
-    """
-    mean = row.get("lat_mean_ms")
-    if isinstance(mean, (int, float)) and mean > 0:
-        return 1000.0 / mean
-    return None
-
-
-def _stream_key(config: dict) -> tuple:
-    return tuple(config.get(c) for c in ("model", "weights", "size", "proposals", "backend", "intra_threads",
-                                          "inter_threads", "exec_mode", "opt_level", "affinity"))
 
 
 def orphaned_workers() -> int:

@@ -1,7 +1,8 @@
-"""The sweep's calls into the packages above it: data, export, evaluate, measure.
+"""What a run prepares once for all its points: the dataset (generated scenes cached), the timing
+images, the repetition policy, and each graph's accuracy (cached by graph bytes + dataset).
 
-Kept in one place so the runner reads as the procedure it is, and so every
-failure of a step becomes data (a failed row, a note) instead of stopping the sweep.
+A failure here becomes data (a note), never a stopped sweep; see sweep/pipeline.py for the path
+of one point.
 """
 from __future__ import annotations
 
@@ -10,26 +11,13 @@ import json
 import math
 import os
 import shutil
-from dataclasses import dataclass, field
 from pathlib import Path
 
-from speedbench.errors import UserError
-from speedbench.sweep.rundir import PER_IMAGE_DIR
+from speedbench import schema
+from speedbench.errors import UserError, one_line
+from speedbench.system import atomic_path, atomic_write, cores_available
 
 NAN = float("nan")
-ACCURACY_COLUMNS = ("map", "map50", "map75", "map_small", "map_medium", "map_large", "mar_100",
-                    "map_ci_lo", "map_ci_hi")
-
-
-@dataclass
-class GraphInfo:
-    """One distinct graph (model, weights, size, proposals): its export and its accuracy."""
-    path: str | None = None
-    ok: bool = True
-    reason: str = ""
-    facts: dict = field(default_factory=dict)       # params, gmacs, model_file_mib, ...
-    accuracy: dict = field(default_factory=dict)    # ACCURACY_COLUMNS (+ extras)
-    notes: list = field(default_factory=list)
 
 
 # ----------------------------------------------------------------- dataset
@@ -85,63 +73,7 @@ def make_policy(repetitions: dict):
     return policy
 
 
-# ----------------------------------------------------------------- export + accuracy
-def prepare_graph(point, profile, dataset, rd, cache: Path, progress) -> GraphInfo:
-    """Export the point's graph (cached by content) and evaluate its accuracy (cached too)."""
-    model, weights, size, proposals = point.graph_key
-    info = GraphInfo()
-    try:
-        from speedbench.export import export_onnx
-
-        # proposals 0 means "no such knob": the exporter keeps the model's own setting.
-        record = export_onnx(model, weights=weights, size=size, proposals=proposals or None,
-                             cache_dir=Path(cache) / "exports")
-    except UserError as exc:
-        return GraphInfo(ok=False, reason=f"export: {exc}")
-    except Exception as exc:  # an exporter crash is a failed graph, not a failed sweep
-        return GraphInfo(ok=False, reason=f"export: {type(exc).__name__}: {_one_line(exc)}")
-    if not record.ok:
-        return GraphInfo(ok=False, reason=f"export: {record.reason}")
-    info.path = str(_link_into_run(Path(record.path), rd.exports))
-    info.facts = _facts(record)
-    info.notes.extend(record.notes or [])
-    if weights == "none" or not profile.accuracy or dataset is None:
-        return info
-    progress.status(f"accuracy {model} {size}px")
-    info.accuracy = _accuracy(Path(record.path), point, profile, dataset, cache, info)
-    if info.accuracy.get("per_image_key"):
-        _link_into_run(Path(cache) / "accuracy" / f"{info.accuracy['per_image_key']}.npz",
-                       rd.path / PER_IMAGE_DIR)
-    return info
-
-
-def _facts(record) -> dict:
-    """Export facts as row columns: params, gmacs, file size, opset, parity with torch eager."""
-    facts = dict(record.facts or {})
-    out = {k: facts[k] for k in ("params", "gmacs") if facts.get(k) is not None}
-    out["model_file_mib"] = round(Path(record.path).stat().st_size / 2**20, 3)
-    out["opset"] = record.opset
-    parity = record.parity or {}
-    if "passed" in parity:
-        out["parity_passed"] = bool(parity["passed"])
-    return out
-
-
-def _link_into_run(path: Path, exports: Path) -> Path:
-    """Keep a copy of the graph in the run directory (a hard link when possible: no extra space)."""
-    exports.mkdir(exist_ok=True)
-    target = exports / path.name
-    if target.exists():
-        return target
-    tmp = exports / f".{path.name}.{os.getpid()}.tmp"
-    try:
-        os.link(path, tmp)
-    except OSError:
-        shutil.copyfile(path, tmp)
-    os.replace(tmp, target)
-    return target
-
-
+# ----------------------------------------------------------------- accuracy
 def _file_digest(path: Path) -> str:
     h = hashlib.sha256()
     with open(path, "rb") as fh:
@@ -150,7 +82,7 @@ def _file_digest(path: Path) -> str:
     return h.hexdigest()[:16]
 
 
-def _accuracy(graph: Path, point, profile, dataset, cache: Path, info: GraphInfo) -> dict:
+def accuracy(graph: Path, model: str, profile, dataset, cache: Path, notes: list) -> dict:
     """mAP of one graph over the dataset; cached by (graph bytes, dataset, limit, runtime version).
 
     The runtime version is part of the key so that an upgrade which changes what the
@@ -171,39 +103,34 @@ def _accuracy(graph: Path, point, profile, dataset, cache: Path, info: GraphInfo
     det_cache = Path(cache) / "detections" / f"ort-{ort}"
     try:
         from speedbench.evaluate import detect_dataset, evaluate_graph
+        from speedbench.evaluate.paired import per_image_results
 
         # Always check threads (once per graph, cached with the accuracy): the one accuracy
         # figure stands for every thread setting only if 1 and 2 threads detect the same.
-        result = evaluate_graph(graph, dataset, model=point.graph_key[0], limit=profile.limit or None,
-                                intra_threads=_cores(), cache_dir=det_cache, check_threads=True)
+        result = evaluate_graph(graph, dataset, model=model, limit=profile.limit or None,
+                                intra_threads=cores_available(), cache_dir=det_cache, check_threads=True)
         scored = dataset.first(int(profile.limit)) if profile.limit else dataset
         # Same graph, images and cache as evaluate_graph: served from its detections cache.
-        dets = detect_dataset(graph, scored, result["label_map"], _cores(), det_cache)
+        dets = detect_dataset(graph, scored, result["label_map"], cores_available(), det_cache)
     except UserError as exc:
-        info.notes.append(f"accuracy not measured: {exc}")
+        notes.append(f"accuracy not measured: {exc}")
         return {}
     except Exception as exc:
-        info.notes.append(f"accuracy failed: {type(exc).__name__}: {_one_line(exc)}")
+        notes.append(f"accuracy failed: {type(exc).__name__}: {one_line(exc)}")
         return {}
-    acc = {k: _metric(result.get(k)) for k in ACCURACY_COLUMNS}
+    acc = {k: _metric(result.get(k)) for k in schema.ACCURACY_COLUMNS}
     inv = result.get("thread_invariance")
     if inv:
         # Do detections change with the thread count? (floating-point reduction order can.)
         acc["threads_identical"] = bool(inv["identical"])
         acc["threads_max_box_diff"] = float(inv["max_box_diff"])
     acc["det_digest"] = detections_digest(dets)
-    path.parent.mkdir(parents=True, exist_ok=True)
     # Per-image results (what a paired comparison of two graphs resamples), kept per graph.
-    from speedbench.evaluate.paired import per_image_results
-
-    npz = path.with_suffix(f".{os.getpid()}.tmp.npz")
-    per_image_results(scored.coco, dets).save(npz)
-    os.replace(npz, path.with_suffix(".npz"))
+    with atomic_path(path.with_suffix(".npz")) as tmp:
+        per_image_results(scored.coco, dets).save(tmp)
     acc["per_image_key"] = key
-    tmp = path.with_suffix(f".{os.getpid()}.tmp")
-    tmp.write_text(json.dumps({k: (None if isinstance(v, float) and not math.isfinite(v) else v)
-                               for k, v in acc.items()}))
-    os.replace(tmp, path)
+    atomic_write(path, json.dumps({k: (None if isinstance(v, float) and not math.isfinite(v) else v)
+                                   for k, v in acc.items()}))
     return acc
 
 
@@ -241,13 +168,6 @@ def _metric(value) -> float:
     return NAN if value < 0 else value
 
 
-def _cores() -> int:
-    try:
-        return len(os.sched_getaffinity(0))
-    except (AttributeError, OSError):
-        return os.cpu_count() or 1
-
-
 def dataset_fingerprint(dataset) -> str:
     fp = getattr(dataset, "fingerprint", None)
     if callable(fp):
@@ -255,85 +175,3 @@ def dataset_fingerprint(dataset) -> str:
     if fp:
         return str(fp)
     return str(getattr(dataset, "source", ""))
-
-
-# ----------------------------------------------------------------- measuring
-def measure(planned, info: GraphInfo, profile, images, policy, baseline_fps=None) -> tuple[dict, list]:
-    """Measure one planned point in its own worker; always returns a row (failed rows included)."""
-    from speedbench.measure import Point
-
-    c = planned.config
-    point = Point(**c, graph=info.path,
-                  options=dict(profile.synthetic) if c["backend"] == "synthetic" else {})
-    samples: list = []
-    if not info.ok and c["backend"] != "eager":
-        row = {**c, "point_id": planned.point_id, "status": "failed", "reason": info.reason}
-    else:
-        try:
-            if c["concurrency"] > 1:
-                from speedbench.measure.load import measure_load
-
-                result = measure_load(point, images, k=c["concurrency"], policy=policy,
-                                      timeout_s=profile.timeout_s, baseline_fps=baseline_fps)
-                samples = list(result.latencies_ms or [])
-            else:
-                from speedbench.measure import measure_point
-
-                result = measure_point(point, images, policy, profile.timeout_s)
-                if result.measurement is not None:
-                    samples = [float(x) for x in result.measurement.samples_ms]
-            row = result.to_row()
-            row.update(_extra_columns(getattr(result, "extra", None) or {}))
-        except UserError as exc:
-            row = {**c, "point_id": planned.point_id, "status": "failed", "reason": str(exc)}
-        except Exception as exc:  # a harness bug on one point must not cost the others
-            row = {**c, "point_id": planned.point_id, "status": "failed",
-                   "reason": f"{type(exc).__name__}: {_one_line(exc)}"}
-    row.update(merge_columns(planned, info, profile))
-    return row, samples
-
-
-def _extra_columns(extra: dict) -> dict:
-    """The worker's details that help read a row: how warm-up and timing ended."""
-    out = {}
-    if "warmup_runs" in extra:
-        out["warmup_runs"] = extra["warmup_runs"]
-        out["warmup_settled"] = bool(extra.get("warmup_settled"))
-    if "stop" in extra:
-        out["stop_reason"] = extra["stop"]
-    if "seconds" in extra:
-        out["timing_s"] = extra["seconds"]
-    tail = (extra.get("stderr_tail") or "").strip().splitlines()
-    if tail:
-        # Last line the worker printed before it failed: often the actual cause.
-        out["worker_stderr"] = tail[-1][-300:]
-    return out
-
-
-def merge_columns(planned, info: GraphInfo, profile) -> dict:
-    """Columns the sweep adds to what the measurement produced."""
-    c = planned.config
-    untrained = c["weights"] == "none"
-    out = {"point_id": planned.point_id, "host": profile.host, "family": planned.family,
-           "untrained": untrained}
-    for k, v in info.facts.items():
-        # Eager points keep the worker's own model size (parameter bytes), not the ONNX file's.
-        if k == "model_file_mib" and c["backend"] == "eager":
-            continue
-        out[k] = v
-    for k in ACCURACY_COLUMNS:
-        out[k] = NAN if untrained else info.accuracy.get(k, NAN)
-    for k, v in info.accuracy.items():
-        if k not in ACCURACY_COLUMNS and not untrained:
-            out[k] = v
-    notes = list(planned.notes) + list(info.notes)
-    if not info.ok and c["backend"] == "eager":
-        notes.append(f"accuracy not measured ({info.reason})")
-    if untrained and not any(n.startswith("untrained") for n in notes):
-        notes.append("untrained weights: latency only, accuracy not meaningful")
-    out["note"] = "; ".join(notes)
-    return out
-
-
-def _one_line(exc) -> str:
-    return " ".join(str(exc).split())[:300]

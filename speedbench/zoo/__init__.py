@@ -7,7 +7,7 @@ Public face:
 - weights_digest(model_id, weights); trained_sizes(model_id, weights): sizes the weights were trained at
 - pattern_image(h, w, seed): structured test image (numpy)
 
-Weights sources: "none" (seeded random init, see build.UNTRAINED_RECIPE), "torchvision"
+Weights sources: "none" (seeded random init, see weights.UNTRAINED_RECIPE), "torchvision"
 (local TORCH_HOME cache only), "demo" (speedbench/zoo/weights, sha256-checked), "file:PATH".
 """
 from speedbench.zoo.registry import (describe_knobs, get_spec, list_specs, register, scope_to_path,

@@ -7,27 +7,14 @@ from speedbench.errors import UserError
 from speedbench.zoo.registry import get_spec
 from speedbench.zoo.spec import ModelSpec
 from speedbench.zoo.weights import (load_demo, load_torchvision_cached, parse_weights,
-                                    patched_torchvision_loader, safe_load, state_dict_from)
+                                    patched_torchvision_loader, safe_load, state_dict_from, torchvision_weights)
 
 MAX_SIZE = 4096          # px; larger inputs are a typo, not a configuration
 MAX_PROPOSALS = 100_000
 CALIBRATION_SIZE = 320   # px; fixed so untrained weights do not depend on the swept size
-# Changing how untrained weights are made must change their digest (and so the export cache).
-UNTRAINED_RECIPE = "seed0+bn-calibration-v1"
-
-
 def _builder(spec: ModelSpec):
     module, _, name = spec.builder.rpartition(".")
     return getattr(importlib.import_module(module), name)
-
-
-def torchvision_weights(model_id: str):
-    from torchvision.models import get_weight
-
-    spec = get_spec(model_id)
-    if not spec.weights_enum:
-        raise UserError(f"model {model_id}: torchvision ships no weights for it (use none, demo or file:PATH)")
-    return get_weight(spec.weights_enum)
 
 
 def _whole(value, flag: str) -> int:

@@ -13,8 +13,7 @@ from __future__ import annotations
 
 from functools import partial
 
-from speedbench.zoo.registry import DENSE_SCOPES, RCNN_SCOPES, SSD_SCOPES, register
-from speedbench.zoo.spec import ModelSpec
+from speedbench.zoo.spec import DENSE_SCOPES, RCNN_SCOPES, SSD_SCOPES, ModelSpec
 
 SCENE_LABELS = ("__background__", "crate", "drum", "pylon")  # = speedbench.data.scenes.SCENE_CLASSES
 NUM_CLASSES = len(SCENE_LABELS)
@@ -145,7 +144,3 @@ SPECS = (
 
 BUILDERS = {"demo_ssdlite": demo_ssdlite, "demo_fcos": demo_fcos,
             "demo_frcnn": demo_frcnn, "demo_frcnn_lite": demo_frcnn_lite}
-
-
-for _spec in SPECS:
-    register(_spec)

@@ -21,23 +21,10 @@ import difflib
 
 from speedbench.errors import UserError
 from speedbench.schema import STAGES
-from speedbench.zoo.spec import ModelSpec
+from speedbench.zoo import compact
+from speedbench.zoo.spec import DENSE_SCOPES, MASK_SCOPES, RCNN_SCOPES, SSD_SCOPES, ModelSpec
 
 _REGISTRY: dict[str, ModelSpec] = {}
-
-# Stage scope tables by module layout; reuse them for a new model with the same layout.
-
-FPN_SCOPES = {"preprocess": ("transform",), "backbone": ("backbone.body",), "neck": ("backbone.fpn",)}
-RCNN_SCOPES = {**FPN_SCOPES, "proposals": ("rpn",),
-         "roi_heads": ("roi_heads.box_roi_pool", "roi_heads.box_head", "roi_heads.box_predictor"),
-         "postprocess": ("roi_heads", "")}
-MASK_SCOPES = {**RCNN_SCOPES, "roi_heads": RCNN_SCOPES["roi_heads"] + (
-    "roi_heads.mask_roi_pool", "roi_heads.mask_head", "roi_heads.mask_predictor")}
-DENSE_SCOPES = {**FPN_SCOPES, "head": ("head",), "postprocess": ("anchor_generator", "")}
-# SSD: the base network's layers are the backbone, the extra layers play the neck's part.
-SSD_SCOPES = {"preprocess": ("transform",), "backbone": ("backbone", "backbone.features"),
-        "neck": ("backbone.extra",), "head": ("head",), "postprocess": ("anchor_generator", "")}
-
 
 def _tv(id, weights, family, native, dets, thresh, props, scopes, arch, notes="", min_size=32):
     return ModelSpec(id=id, builder=f"torchvision.models.detection.{id}", family=family,
@@ -95,26 +82,15 @@ def register(spec: ModelSpec) -> None:
     _REGISTRY[spec.id] = spec
 
 
-def _load_extras() -> None:
-    # The compact demo zoo registers itself on import; it may not exist in every checkout.
-    try:
-        import speedbench.zoo.compact  # noqa: F401
-    except ModuleNotFoundError as exc:
-        if exc.name != "speedbench.zoo.compact":
-            raise
-
-
-for _spec in TORCHVISION_SPECS:
+for _spec in TORCHVISION_SPECS + compact.SPECS:
     register(_spec)
 
 
 def list_specs() -> list[ModelSpec]:
-    _load_extras()
     return list(_REGISTRY.values())
 
 
 def get_spec(model_id: str) -> ModelSpec:
-    _load_extras()
     spec = _REGISTRY.get(str(model_id))
     if spec is None:
         close = difflib.get_close_matches(str(model_id), list(_REGISTRY), n=3, cutoff=0.5)
@@ -123,17 +99,8 @@ def get_spec(model_id: str) -> ModelSpec:
     return spec
 
 
-def arch_of(spec: ModelSpec) -> str:
-    """The torchvision detector class the spec builds (builds on the meta device if not declared)."""
-    if spec.arch:
-        return spec.arch
-    from speedbench.zoo.build import build_model
-
-    return type(build_model(spec.id, device="meta")).__name__
-
-
 def describe_knobs(spec: ModelSpec) -> dict:
-    arch = arch_of(spec)
+    arch = spec.arch
     size = SIZE_KNOBS["fixed" if arch == "SSD" else "min_max"]
     if not spec.default_proposals:
         props = "none (the model has no proposal / candidate knob)"

@@ -17,6 +17,9 @@ class ModelSpec:
     score_thresh: float
     # Proposal / candidate budget at its default; 0 means the model has no such knob.
     default_proposals: int
+    # torchvision detector class name ("FasterRCNN", "MaskRCNN", "RetinaNet", "FCOS", "SSD"):
+    # how configure() maps the knobs and how `speedbench models` describes them.
+    arch: str
     # stage name (speedbench.schema.STAGES) -> module path prefixes inside the model,
     # e.g. {"preprocess": ("transform",), "backbone": ("backbone.body",), ...}
     stage_scopes: Mapping[str, tuple[str, ...]] = field(default_factory=dict)
@@ -25,8 +28,19 @@ class ModelSpec:
     weights_enum: str | None = None  # torchvision weights enum name, if torchvision ships weights
     default_weights: str = "none"    # "none", "torchvision", "demo" or "file:PATH"
     notes: str = ""
-    # torchvision detector class name ("FasterRCNN", "MaskRCNN", "RetinaNet", "FCOS", "SSD");
-    # "" = find out by building the model on the meta device.
-    arch: str = ""
     # Smallest input size (px) the architecture runs at; export refuses smaller ones.
     min_size: int = 32
+
+
+# Stage scope tables by module layout; reuse them for a new model with the same layout.
+
+FPN_SCOPES = {"preprocess": ("transform",), "backbone": ("backbone.body",), "neck": ("backbone.fpn",)}
+RCNN_SCOPES = {**FPN_SCOPES, "proposals": ("rpn",),
+               "roi_heads": ("roi_heads.box_roi_pool", "roi_heads.box_head", "roi_heads.box_predictor"),
+               "postprocess": ("roi_heads", "")}
+MASK_SCOPES = {**RCNN_SCOPES, "roi_heads": RCNN_SCOPES["roi_heads"] + (
+    "roi_heads.mask_roi_pool", "roi_heads.mask_head", "roi_heads.mask_predictor")}
+DENSE_SCOPES = {**FPN_SCOPES, "head": ("head",), "postprocess": ("anchor_generator", "")}
+# SSD: the base network's layers are the backbone, the extra layers play the neck's part.
+SSD_SCOPES = {"preprocess": ("transform",), "backbone": ("backbone", "backbone.features"),
+              "neck": ("backbone.extra",), "head": ("head",), "postprocess": ("anchor_generator", "")}

@@ -12,11 +12,24 @@ import os
 from pathlib import Path
 
 from speedbench.errors import UserError
+from speedbench.zoo.registry import get_spec
 
 SOURCES = ("none", "torchvision", "demo", "file:PATH")
 _WRAPPER_KEYS = ("state_dict", "model", "model_state_dict", "weights")
 _SHA_CACHE: dict[tuple, str] = {}
 DEMO_ROOT = Path(__file__).parent / "weights"   # committed demo weights + manifest.json
+# Changing how untrained weights are made must change their digest (and so the export cache).
+UNTRAINED_RECIPE = "seed0+bn-calibration-v1"
+
+
+def torchvision_weights(model_id: str):
+    """The torchvision weights enum entry of a zoo model (its url and metadata)."""
+    from torchvision.models import get_weight
+
+    spec = get_spec(model_id)
+    if not spec.weights_enum:
+        raise UserError(f"model {model_id}: torchvision ships no weights for it (use none, demo or file:PATH)")
+    return get_weight(spec.weights_enum)
 
 
 def parse_weights(weights) -> tuple[str, str]:
@@ -165,13 +178,9 @@ def weights_digest(model_id: str, weights="none") -> str:
     kind, path = parse_weights(weights)
     if kind == "none":
         # Untrained weights are a seeded init; they change only with the library versions.
-        from speedbench.zoo.build import UNTRAINED_RECIPE
-
         blob = f"none|{model_id}|{UNTRAINED_RECIPE}|{torch.__version__}|{torchvision.__version__}"
         return hashlib.sha256(blob.encode()).hexdigest()[:16]
     if kind == "torchvision":
-        from speedbench.zoo.build import torchvision_weights
-
         url = torchvision_weights(model_id).url
         file = torchvision_cache_file(url)
         if not file.is_file():

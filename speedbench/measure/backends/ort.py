@@ -15,6 +15,9 @@ import tempfile
 
 import numpy as np
 
+from speedbench.errors import UserError
+from speedbench.zoo import get_spec
+
 TIMED_REGION = ("onnxruntime InferenceSession.run: in-graph resize+normalise, backbone, heads, "
                 "decoding, NMS, box rescale, output copy to numpy; excludes image decode and to_input")
 
@@ -93,12 +96,8 @@ class Runner:
 
 def _spec(model_id):
     try:
-        from speedbench.zoo import get_spec
-    except ImportError:
-        return None
-    try:
         return get_spec(model_id)
-    except Exception:   # not a zoo model (a user's own graph): default torchvision scopes
+    except UserError:   # not a zoo model (a user's own graph): default torchvision scopes
         return None
 
 

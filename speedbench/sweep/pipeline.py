@@ -1,0 +1,325 @@
+"""One point from plan to row: the one path the local sweep, a fleet task and `speedbench load` share.
+
+    PlannedPoint (plan.py: a measure.Point + its GraphKey)
+      -> GraphStore.prepare: export + accuracy, once per GraphKey, copied into an explicit exports dir
+      -> run_point(job, context): measure in fresh worker process(es)
+      -> build_row: the one row builder, for ok and failed rows alike
+
+The callers are schedulers only: they decide the order, the parallelism and where rows go.
+Every failure of a step becomes data (a failed row, a note), never an exception.
+"""
+from __future__ import annotations
+
+import dataclasses
+import math
+import os
+import shutil
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from speedbench import schema
+from speedbench.errors import UserError, one_line
+from speedbench.measure.backends import get_backend
+from speedbench.sweep import steps
+from speedbench.sweep.plan import GraphKey, PlannedPoint
+from speedbench.zoo import trained_sizes
+
+NAN = float("nan")
+
+
+@dataclass
+class PreparedGraph:
+    """One distinct graph (a GraphKey): its exported file, export facts and accuracy."""
+    path: str | None = None
+    ok: bool = True
+    reason: str = ""
+    facts: dict = field(default_factory=dict)       # params, gmacs, model_file_mib, opset, parity_passed
+    accuracy: dict = field(default_factory=dict)    # schema.ACCURACY_COLUMNS (+ digest, thread check)
+    notes: list = field(default_factory=list)
+
+
+class GraphStore:
+    """Prepares each graph once: export (content-hash cache), a copy in `exports_dir`, accuracy.
+
+    status(text): told what is being prepared (a progress line); on_prepared(key, graph): called
+    once per newly prepared graph (the sweep records its thread check in meta.json).
+    """
+
+    def __init__(self, profile, dataset, exports_dir, per_image_dir=None, status=None, on_prepared=None):
+        self.profile, self.dataset = profile, dataset
+        self.cache = Path(profile.cache)
+        self.exports_dir = Path(exports_dir)
+        self.per_image_dir = Path(per_image_dir) if per_image_dir else None
+        self.status = status or (lambda text: None)
+        self.on_prepared = on_prepared
+        self._graphs: dict[GraphKey, PreparedGraph] = {}
+        self.sealed = False     # True: every graph was prepared elsewhere; never export here
+
+    @classmethod
+    def prepared(cls, profile, graphs: dict) -> "GraphStore":
+        """A store of graphs prepared elsewhere (an interleaved run prepares each environment's
+        graphs with that environment's interpreter); a graph it lacks is a failed graph."""
+        store = cls(profile, None, ".")
+        store._graphs.update(graphs)
+        store.sealed = True
+        return store
+
+    def prepare(self, planned: PlannedPoint) -> PreparedGraph:
+        if planned.config["backend"] == "synthetic":
+            return PreparedGraph()   # the synthetic backend runs no graph
+        key = planned.graph_key
+        if key not in self._graphs and self.sealed:
+            return PreparedGraph(ok=False, reason=f"graph {key.model} {key.size}px was not prepared")
+        if key not in self._graphs:
+            self.status(f"export {key.model} {key.size}px")
+            self._graphs[key] = graph = self._prepare(key)
+            if self.on_prepared is not None:
+                self.on_prepared(key, graph)
+        return self._graphs[key]
+
+    def _prepare(self, key: GraphKey) -> PreparedGraph:
+        from speedbench.export import export_onnx
+
+        try:
+            # proposals 0 means "no such knob": the exporter keeps the model's own setting.
+            record = export_onnx(key.model, weights=key.weights, size=key.size, proposals=key.proposals or None,
+                                 cache_dir=self.cache / "exports")
+        except UserError as exc:
+            return PreparedGraph(ok=False, reason=f"export: {exc}")
+        except Exception as exc:  # an exporter crash is a failed graph, not a failed sweep
+            return PreparedGraph(ok=False, reason=f"export: {type(exc).__name__}: {one_line(exc)}")
+        if not record.ok:
+            return PreparedGraph(ok=False, reason=f"export: {record.reason}")
+        graph = PreparedGraph(path=str(link_into(Path(record.path), self.exports_dir)), facts=_facts(record),
+                              notes=list(record.notes or []))
+        return self.score(key, graph)
+
+    def score(self, key: GraphKey, graph: PreparedGraph) -> PreparedGraph:
+        """Accuracy of a prepared graph on the profile's dataset (with this process's runtime)."""
+        if not graph.ok or key.weights == "none" or not self.profile.accuracy or self.dataset is None:
+            return graph
+        self.status(f"accuracy {key.model} {key.size}px")
+        graph.accuracy = steps.accuracy(Path(graph.path), key.model, self.profile, self.dataset, self.cache,
+                                        graph.notes)
+        if graph.accuracy.get("per_image_key") and self.per_image_dir is not None:
+            link_into(self.cache / "accuracy" / f"{graph.accuracy['per_image_key']}.npz", self.per_image_dir)
+        return graph
+
+
+def _facts(record) -> dict:
+    """Export facts as row columns: params, gmacs, file size, opset, parity with torch eager."""
+    facts = dict(record.facts or {})
+    out = {k: facts[k] for k in ("params", "gmacs") if facts.get(k) is not None}
+    out["model_file_mib"] = round(Path(record.path).stat().st_size / 2**20, 3)
+    out["opset"] = record.opset
+    parity = record.parity or {}
+    if "passed" in parity:
+        out["parity_passed"] = bool(parity["passed"])
+    return out
+
+
+def link_into(path: Path, directory: Path) -> Path:
+    """Keep a copy of a file in `directory` (a hard link when possible: no extra space)."""
+    directory.mkdir(parents=True, exist_ok=True)
+    target = directory / path.name
+    if target.exists():
+        return target
+    tmp = directory / f".{path.name}.{os.getpid()}.tmp"
+    try:
+        os.link(path, tmp)
+    except OSError:
+        shutil.copyfile(path, tmp)
+    os.replace(tmp, target)
+    return target
+
+
+# ----------------------------------------------------------------- running one point
+@dataclass(frozen=True)
+class LoadSettings:
+    """`speedbench load`: every K (K = 1 too) measured as a throughput point with these settings."""
+    seconds: float = 5.0
+    pin: bool = False
+
+
+@dataclass
+class PointContext:
+    """What every point of one run on one host shares."""
+    profile: object                  # sweep.profile.Profile
+    graphs: GraphStore
+    images: list                     # timing images, decoded once
+    policy: object                   # measure.Policy
+    host: str
+    load: LoadSettings | None = None
+    python: str | None = None        # the workers' interpreter (default: this one; see sweep/interleaved.py)
+
+
+@dataclass
+class PointJob:
+    planned: PlannedPoint
+    baseline_fps: float | None = None   # X(1) of the K = 1 sibling (single_stream_fps), for scaling_eff
+    curve: tuple = ()                    # paced runs at these fractions of capacity (load_curve column)
+
+
+@dataclass
+class PointOutcome:
+    row: dict
+    samples: list
+    measured: bool          # False: nothing ran (graph missing, a configuration this host cannot run)
+    graph: PreparedGraph
+
+
+def make_context(profile, dataset, exports_dir, host: str, per_image_dir=None, status=None, on_prepared=None,
+                 load: LoadSettings | None = None) -> PointContext:
+    return PointContext(profile=profile, graphs=GraphStore(profile, dataset, exports_dir, per_image_dir, status,
+                                                           on_prepared),
+                        images=steps.timing_images(dataset, profile.timing_images),
+                        policy=steps.make_policy(profile.repetitions), host=host, load=load)
+
+
+def run_point(job: PointJob, context: PointContext) -> PointOutcome:
+    """Prepare the point's graph, measure it in its own worker(s), build its row. Never raises
+    for a failure of the point: the row then has status "failed" and the reason."""
+    planned = job.planned
+    graph, result, reason = PreparedGraph(), None, ""
+    t0 = time.monotonic()
+    try:
+        graph = context.graphs.prepare(planned)
+        t0 = time.monotonic()    # wall_s: the point's own time, not its graph's preparation
+        if not graph.ok and planned.config["backend"] != "eager":   # eager builds its model itself
+            reason = graph.reason
+        else:
+            result = _measure(job, context, graph)
+    except UserError as exc:
+        reason = str(exc)
+    except Exception as exc:  # a harness bug on one point must not cost the others
+        reason = f"{type(exc).__name__}: {one_line(exc)}"
+    row = build_row(planned, graph, context.host, result=result, reason=reason)
+    row["wall_s"] = round(time.monotonic() - t0, 3)
+    return PointOutcome(row=row, samples=_samples(result), measured=result is not None, graph=graph)
+
+
+def _measure(job: PointJob, context: PointContext, graph: PreparedGraph):
+    from speedbench.measure import measure_load, measure_point
+    from speedbench.measure.load import add_curve
+
+    c, profile = job.planned.config, context.profile
+    point = dataclasses.replace(job.planned.point, graph=graph.path,
+                                options=dict(profile.synthetic) if c["backend"] == "synthetic" else {})
+    if c["concurrency"] == 1 and context.load is None:
+        return measure_point(point, context.images, context.policy, profile.timeout_s, python=context.python)
+    load = context.load or LoadSettings(seconds=None)
+    kwargs = {"policy": context.policy, "timeout_s": profile.timeout_s, "seconds": load.seconds, "pin": load.pin}
+    result = measure_load(point, context.images, k=c["concurrency"], baseline_fps=job.baseline_fps, **kwargs)
+    if job.curve:
+        add_curve(result, point, context.images, job.curve, **kwargs)
+    return result
+
+
+def _samples(result) -> list:
+    if result is None:
+        return []
+    if hasattr(result, "latencies_ms"):
+        return [float(x) for x in result.latencies_ms or []]
+    return [] if result.measurement is None else [float(x) for x in result.measurement.samples_ms]
+
+
+def build_row(planned: PlannedPoint, graph: PreparedGraph, host: str, result=None, reason: str = "") -> dict:
+    """The one row builder: a measured result's row, or a failed row with `reason`, plus the
+    graph's columns (facts, accuracy), host, family and notes. Column names: speedbench.schema."""
+    if result is not None:
+        row = result.to_row()                   # its own config (a pinned load point may differ)
+        row.update(_worker_columns(getattr(result, "extra", None) or {}))
+    else:
+        row = {**planned.config, "point_id": planned.point_id, "status": "failed", "reason": reason}
+    c = planned.config
+    untrained = c["weights"] == "none"
+    row.update(host=host, family=planned.family, untrained=untrained)
+    for k, v in graph.facts.items():
+        # Eager points keep the worker's own model size (parameter bytes), not the ONNX file's.
+        if not (k == "model_file_mib" and c["backend"] == "eager"):
+            row[k] = v
+    for k in schema.ACCURACY_COLUMNS:
+        row[k] = NAN if untrained else graph.accuracy.get(k, NAN)
+    if not untrained:
+        row.update({k: v for k, v in graph.accuracy.items() if k not in schema.ACCURACY_COLUMNS})
+    notes = list(planned.notes) + list(graph.notes)
+    if not graph.ok and c["backend"] == "eager":
+        notes.append(f"accuracy not measured ({graph.reason})")
+    if untrained and not any(n.startswith("untrained") for n in notes):
+        notes.append("untrained weights: latency only, accuracy not meaningful")
+    row["note"] = "; ".join(notes)
+    return row
+
+
+def _worker_columns(extra: dict) -> dict:
+    """The worker's details that help read a row: how warm-up and timing ended."""
+    out = {}
+    if "warmup_runs" in extra:
+        out["warmup_runs"] = extra["warmup_runs"]
+        out["warmup_settled"] = bool(extra.get("warmup_settled"))
+    if "stop" in extra:
+        out["stop_reason"] = extra["stop"]
+    if "seconds" in extra:
+        out["timing_s"] = extra["seconds"]
+    tail = (extra.get("stderr_tail") or "").strip().splitlines()
+    if tail:
+        # Last line the worker printed before it failed: often the actual cause.
+        out["worker_stderr"] = tail[-1][-300:]
+    return out
+
+
+# ----------------------------------------------------------------- what a report needs later
+def run_facts(points) -> dict:
+    """Facts of this version of speedbench that a report of the run quotes, recorded in meta.json
+    when the run is made (a report renders only what the run recorded, never today's code):
+    timed_regions {backend: what its timed call includes}; trained_sizes {"model|weights": input
+    sizes the weights were trained at, or None where nothing records them}."""
+    regions, sizes = {}, {}
+    for p in points:
+        c = p.config
+        regions.setdefault(c["backend"], get_backend(c["backend"]).TIMED_REGION)
+        if c["backend"] != "synthetic":
+            sizes.setdefault(f"{c['model']}|{c['weights']}", trained_sizes(c["model"], c["weights"]))
+    return {"timed_regions": regions, "trained_sizes": sizes}
+
+
+def record_run_facts(rd, points) -> None:
+    """Add run_facts(points) to a run directory's meta.json, keeping what earlier sessions recorded."""
+    meta, facts = rd.meta(), run_facts(points)
+    rd.update_meta(**{k: {**v, **(meta.get(k) or {})} for k, v in facts.items()})
+
+
+# ----------------------------------------------------------------- the scaling baseline
+def stream_key(config: dict) -> tuple:
+    """A configuration apart from K: a K > 1 point's baseline is the K = 1 row of the same key."""
+    return tuple(config.get(c, schema.ID_DEFAULTS.get(c)) for c in schema.CONFIG_COLUMNS if c != "concurrency")
+
+
+def single_stream_fps(row: dict):
+    """X(1) of an ok K = 1 row, the one baseline of scaling_eff = X(K) / (K X(1)) everywhere.
+
+    The row's measured throughput (tput_fps) when it was measured under load, else
+    1000 / mean latency: one closed-loop stream (L = 1) serves 1 / W frames a second by
+    Little's law. Not the row's `fps` (1000 / p50): on a noisy host mean and median differ a lot.
+    """
+    if row.get("status") != "ok" or int(row.get("concurrency") or 1) != 1:
+        return None
+    for value in (row.get("tput_fps"), 1000.0 / row["lat_mean_ms"] if _positive(row.get("lat_mean_ms")) else None):
+        if _positive(value):
+            return float(value)
+    return None
+
+
+def baselines(rows) -> dict:
+    """{stream_key: X(1)} of the ok K = 1 rows among `rows`."""
+    out = {}
+    for r in rows:
+        fps = single_stream_fps(r)
+        if fps is not None:
+            out[stream_key(r)] = fps
+    return out
+
+
+def _positive(value) -> bool:
+    return isinstance(value, (int, float)) and math.isfinite(value) and value > 0
