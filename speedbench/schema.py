@@ -35,24 +35,41 @@ CONFIG_COLUMNS = (
     "opt_level",      # ORT graph optimisation level name; "" for eager
     "affinity",       # number of cores the worker was pinned to; 0 = not pinned
     "concurrency",    # K concurrent workers for throughput points; 1 otherwise
+    "precision",      # "fp32" (the exported graph) or "int8" (its static QDQ quantisation)
+    "spin_wait",      # ORT intra-/inter-op threads spin while waiting for work: "on" / "off"; "" for eager
     "env",            # interleaved A/B runs: which Python environment ("A" old, "B" new); "" otherwise
 )
 
 # Identity columns added after runs already existed, with the value every older run
 # implicitly had. point_id leaves such a column out while it holds that value, so the
 # ids of configurations that existed before stay the same (resume and compare rely on it).
-# A new identity column is appended to CONFIG_COLUMNS and entered here.
-ID_DEFAULTS: dict = {"env": ""}
+# A new identity column is appended to CONFIG_COLUMNS and entered here. A blank value
+# ("" or None: the knob does not apply to the point's backend) is left out too.
+ID_DEFAULTS: dict = {
+    "precision": "fp32",
+    "spin_wait": "on",    # ONNX Runtime's own default: session.intra_op.allow_spinning = "1"
+    "env": "",            # not an interleaved A/B run
+}
+
+PRECISIONS = ("fp32", "int8")
+# int8 settings a profile may name ([quantisation]; speedbench.export.quantise documents them)
+QUANT_METHODS = ("minmax", "entropy", "percentile")
+QUANT_OP_TYPES = ("Conv", "MatMul", "Gemm")
+
+# Values of spin_wait. Spinning threads poll for work instead of sleeping: lower wake-up
+# latency, but they burn CPU while idle and fight other processes for the cores.
+SPIN_VALUES = ("on", "off")
 
 # Percentiles reported for every latency distribution, in milliseconds.
 LATENCY_PERCENTILES = (50, 90, 99)
 LATENCY_STATS = tuple(f"p{p}" for p in LATENCY_PERCENTILES)
 
 # Columns that hold text and flags; every other schema column is numeric (NaN when missing).
-TEXT_COLUMNS = frozenset({"model", "weights", "backend", "exec_mode", "opt_level",
+TEXT_COLUMNS = frozenset({"model", "weights", "backend", "exec_mode", "opt_level", "precision", "spin_wait",
                           "point_id", "host", "family", "status", "reason", "stage_method",
+                          "calibration_fingerprint", "ci_scope", "invocation_errors",
                           "probe_raw", "env", "env_python", "env_fingerprint"})
-BOOL_COLUMNS = frozenset({"noisy", "untrained"})
+BOOL_COLUMNS = frozenset({"noisy", "untrained", "between_dominates"})
 
 # Groups of result columns, named here once; RESULT_COLUMNS below lists them in table order.
 LATENCY_COLUMNS = (
@@ -60,6 +77,7 @@ LATENCY_COLUMNS = (
     *[f"lat_{s}_{k}ms" for s in LATENCY_STATS for k in ("", "ci_lo_", "ci_hi_")],
     "noisy",
     "fps",                     # frames/s of one stream = 1000 / lat_p50_ms (concurrency 1)
+    "invocations", "between_cov", "between_dominates", "ci_scope",   # see RESULT_COLUMNS
 )
 MEMORY_COLUMNS = ("rss_imports_mib", "rss_loaded_mib", "rss_peak_mib", "model_file_mib")
 # Columns a throughput point (K concurrent workers, speedbench.measure.load) adds to its row;
@@ -89,8 +107,9 @@ ACCURACY_COLUMNS = ("map", "map50", "map75", "map_small", "map_medium", "map_lar
                     "map_ci_lo", "map_ci_hi")
 
 # Interleaved A/B runs (speedbench compare --envs): the environment's interpreter and a digest of
-# its software (Python, package versions, code revision), and the worker invocations of the row.
-INTERLEAVED_COLUMNS = ("env_python", "env_fingerprint", "invocations")
+# its software (Python, package versions, code revision). The row's worker invocations are the
+# replicated-invocation columns ("invocations", ...) below.
+INTERLEAVED_COLUMNS = ("env_python", "env_fingerprint")
 
 # Host speed probe (speedbench/measure/probe.py), timed at the start and the end of each worker
 # process: median ms of its rounds; probe_raw keeps every round time as JSON
@@ -106,17 +125,35 @@ RESULT_COLUMNS = (
     *[f"lat_{s}_ci_lo_ms" for s in LATENCY_STATS],
     *[f"lat_{s}_ci_hi_ms" for s in LATENCY_STATS],
     "noisy",
+    # Replicated invocations (each point measured in R independent worker processes)
+    "invocations",             # invocations that succeeded (R); 1 for runs made before replication
+    "invocations_failed",      # invocations that failed
+    "invocation_errors",       # their reasons, "; "-separated, each prefixed with the invocation index
+    "between_cov",             # CoV of the invocation medians (process-to-process spread)
+    "between_dominates",       # between-invocation variance of the median exceeds the within one
+    "ci_scope",                # what the latency intervals cover: one process, or R processes
     "fps",                     # frames/s of one stream = 1000 / lat_p50_ms (concurrency 1)
     *[f"stage_{s}_ms" for s in STAGES],          # in the unprofiled time base (see STAGE_METHOD)
     *[f"stage_{s}_share" for s in STAGES],       # share of the profiled pass's attributed time
     *[f"stage_{s}_profiled_ms" for s in STAGES],  # the profiled pass's own ms (inflated by the profiler)
     "stage_method",
     "profiled_ms", "profiling_overhead",
+    # opt-in check without the profiler: each stage's sub-graph timed alone (median ms), their
+    # sum, the whole graph timed alongside, and sum / whole - 1
+    *[f"stage_{s}_subgraph_ms" for s in STAGES],
+    "subgraph_sum_ms", "subgraph_whole_ms", "subgraph_residual",
+    *[f"stage_{s}_gmacs" for s in STAGES],       # counted multiply-accumulates per image (export facts)
+    "matmul_peak_gmac_s",      # this host's dense fp32 matmul peak at the point's thread count (meta)
     "rss_imports_mib", "rss_loaded_mib", "rss_peak_mib", "model_file_mib",
     "params", "gmacs",
     "map", "map50", "map75", "map_small", "map_medium", "map_large", "mar_100",
     "map_ci_lo", "map_ci_hi", "untrained",
     *PROBE_COLUMNS,
+    # int8 rows: accuracy change vs the fp32 graph of the same configuration (paired bootstrap
+    # over the same held-out images) and detection agreement with it
+    "map_change", "map_change_ci_lo", "map_change_ci_hi",
+    "agree_matched_fraction", "agree_box_mean_px", "agree_box_max_px",
+    "calibration_fingerprint",
 )
 
 
@@ -141,6 +178,14 @@ def stage_profiled_column(stage: str) -> str:
     return f"stage_{stage}_profiled_ms"
 
 
+def stage_subgraph_column(stage: str) -> str:
+    return f"stage_{stage}_subgraph_ms"
+
+
+def stage_gmacs_column(stage: str) -> str:
+    return f"stage_{stage}_gmacs"
+
+
 def latency_column(stat: str) -> str:
     if stat not in LATENCY_STATS:
         raise ValueError(f"latency statistic must be one of {LATENCY_STATS}, not {stat!r}")
@@ -148,8 +193,9 @@ def latency_column(stat: str) -> str:
 
 
 def _is_default(column: str, value) -> bool:
-    """A later identity column that is missing (None, NaN: a frame without it) or at its default."""
-    return value is None or value != value or value == ID_DEFAULTS[column]
+    """A later identity column that is missing (None, NaN: a frame without it), blank (the knob
+    does not apply to the point's backend) or at its default."""
+    return value is None or value != value or value == "" or value == ID_DEFAULTS[column]
 
 
 def point_id(config: dict) -> str:
@@ -192,6 +238,11 @@ def config_label(row) -> str:
     pin = _int_or(get("affinity", None))
     if pin:
         parts.append(f"{pin} cores")
+    precision = get("precision", None)
+    if isinstance(precision, str) and precision not in ("", "fp32"):
+        parts.append(precision)
+    if get("spin_wait", "") == "off":
+        parts.append("no spin")
     return " / ".join(parts)
 
 

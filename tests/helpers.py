@@ -12,3 +12,13 @@ def stored_points(db) -> int:
             con.close()
     except sqlite3.OperationalError:
         return 0
+
+
+def cli(args) -> int:
+    """speedbench's exit status for `args`, run in this process (argparse refusals raise SystemExit)."""
+    from speedbench.cli import main
+
+    try:
+        return main(args)
+    except SystemExit as exc:
+        return exc.code

@@ -334,3 +334,64 @@ def test_cli_bad_input_exits_2_with_one_line(tmp_path, capsys):
     bad_gt = dict(gt, annotations=gt["annotations"] + [dict(gt["annotations"][0], id=9999, category_id=555)])
     assert main(["evaluate", str(write(tmp_path, bad_gt, "bad.json")), str(d)]) == 2
     assert "unknown category_id 555" in capsys.readouterr().err
+
+
+def test_bootstrap_blocks_and_threads_do_not_change_the_draws(monkeypatch):
+    # The resamples are cut into blocks and may run on threads: each draw's mAP must not
+    # depend on that. Checked against the same draws in one block on one thread, and one
+    # draw against pycocotools run on a set where the images really repeat (above).
+    from speedbench.evaluate import bootstrap
+    from speedbench.evaluate.bootstrap import draw_weights
+
+    gt, dets = merged_case(range(40, 52))
+    ground = GroundTruth(gt)
+    m = Matching(ground, parse_detections(dets, ground))
+    w = draw_weights(ground.n_images, 64, seed=1)
+    whole = resampled_maps(m, w)
+    monkeypatch.setattr(bootstrap, "_BLOCK_ELEMENTS", 50)  # a few rows per block
+    assert np.array_equal(resampled_maps(m, w, threads=2), whole)
+    assert np.array_equal(resampled_maps(m, w), whole)
+    with pytest.raises(ValueError, match="whole numbers"):
+        resampled_maps(m, w * 0.5 + 0.25)
+
+
+def test_cli_scoring_a_file_imports_neither_torch_nor_matplotlib(tmp_path):
+    # `speedbench evaluate GT DETS` is a command users wait on: torch and matplotlib
+    # take seconds to import and nothing on this path needs them.
+    import subprocess
+    import sys
+
+    gt, dets = random_case(5)
+    g, d = write(tmp_path, gt, "gt.json"), write(tmp_path, dets)
+    code = ("import sys\nfrom speedbench.cli import main\n"
+            "assert main(['evaluate', sys.argv[1], sys.argv[2], '--json']) == 0\n"
+            "heavy = sorted(m for m in sys.modules if m.split('.')[0] in ('torch', 'torchvision', 'matplotlib'))\n"
+            "print('HEAVY', heavy, file=sys.stderr)\n")
+    out = subprocess.run([sys.executable, "-c", code, str(g), str(d)], capture_output=True, text=True)
+    assert out.returncode == 0, out.stderr
+    assert "HEAVY []" in out.stderr
+    assert json.loads(out.stdout)["map"] == coco_evaluate(gt, dets, bootstrap=0)["map"]
+
+
+@pytest.mark.parametrize("fast", [True, False], ids=["orjson", "stdlib"])
+def test_results_file_reads_the_same_with_and_without_orjson(tmp_path, monkeypatch, fast):
+    # orjson is an optional extra; the standard library's json is the fallback. Both must
+    # give the same figures, and the same verdict and message on a file only one of them
+    # would accept (NaN is not JSON; the standard library reads it, orjson refuses it).
+    from speedbench.data import jsonio as jsonfile
+    from speedbench.evaluate import read_detections
+
+    if fast:
+        pytest.importorskip("orjson")
+    else:
+        monkeypatch.setattr(jsonfile, "orjson", None)
+    gt, dets = random_case(11)
+    p = write(tmp_path, dets)
+    ground = GroundTruth(gt)
+    assert coco_evaluate(ground, read_detections(p, ground), bootstrap=20) == coco_evaluate(gt, dets, bootstrap=20)
+    assert jsonfile.read_json(p) == json.loads(p.read_text())
+    nan = write(tmp_path, '[{"image_id": 1, "category_id": 1, "bbox": [0, 0, 5, 5], "score": NaN}]', "nan.json")
+    with pytest.raises(UserError, match=r"\[0\]: score must be a finite number"):
+        read_detections(nan, one_image([[0, 0, 10, 10]]))
+    with pytest.raises(UserError, match="not a readable JSON file .*Expecting"):
+        read_detections(write(tmp_path, "[{", "broken.json"), one_image([[0, 0, 10, 10]]))

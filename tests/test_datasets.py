@@ -147,6 +147,33 @@ def test_check_images_off_needs_no_pixels(tmp_path):
     assert len(load_dataset(root, check_images=False)) == 3
 
 
+def test_annotation_checks_on_whole_columns_agree_with_the_entry_loop(monkeypatch):
+    # validate_coco checks annotations column-wise and walks them one by one only when
+    # something is wrong; both routes must give the same clean dict (defaults filled in).
+    from speedbench.data import datasets
+
+    coco = {"images": [{"id": 1, "file_name": "a.png", "width": 40, "height": 30}],
+            "categories": [{"id": 5, "name": "crate"}],
+            "annotations": [{"id": 1, "image_id": 1, "category_id": 5, "bbox": [0, 0, 4, 3]},
+                            {"id": 2, "image_id": 1, "category_id": 5, "bbox": [1.5, 2, 10, 8.25],
+                             "area": 60, "iscrowd": True},
+                            {"id": 3, "image_id": 1, "category_id": 5, "bbox": [-0.5, 0, 40.5, 30],
+                             "area": 0.0, "iscrowd": 0}]}
+    fast = datasets.validate_coco(coco, "x.json")
+    monkeypatch.setattr(datasets, "_clean_annotations", lambda *a: None)
+    slow = datasets.validate_coco(coco, "x.json")
+    assert fast == slow
+    assert json.dumps(fast) == json.dumps(slow)  # same types too (floats, ints)
+    assert fast["annotations"][0]["area"] == 12.0 and fast["annotations"][1]["iscrowd"] == 1
+    for bad in ({"area": None}, {"iscrowd": [1]}, {"bbox": [0, 0, 4, True]}, {"id": 2}):
+        broken = json.loads(json.dumps(coco))
+        broken["annotations"][0].update(bad)
+        monkeypatch.undo()
+        assert datasets._clean_annotations(broken["annotations"], {1: coco["images"][0]}, {5: {}}) is None
+        with pytest.raises(UserError):
+            datasets.validate_coco(broken, "x.json")
+
+
 def voc_object(name, box, difficult=0):
     x1, y1, x2, y2 = box
     return (f"<object><name>{name}</name><difficult>{difficult}</difficult><bndbox><xmin>{x1}</xmin>"

@@ -120,6 +120,31 @@ def test_cache_reuses_and_keys_on_the_configuration(records, cache):
                 key("ssd300_vgg16", 320, 300, "none", 17)[0]}) == 5
 
 
+def test_cache_hit_imports_neither_torch_nor_onnx(records, cache):
+    # A sweep whose graphs are all exported pays no torch import (seconds) to find them:
+    # the key's weights digest and versions come from files. The digest of untrained weights
+    # must stay what it was when it was computed from torch.__version__ (existing caches hit).
+    import subprocess
+    import sys
+
+    import torchvision
+
+    from speedbench.zoo.build import UNTRAINED_RECIPE
+    from speedbench.zoo.weights import weights_digest
+
+    rec = records["ssdlite320_mobilenet_v3_large"]
+    code = ("import sys\nfrom speedbench.export import export_onnx\n"
+            f"r = export_onnx('ssdlite320_mobilenet_v3_large', cache_dir={str(cache)!r})\n"
+            "print(r.path)\n"
+            "print(sorted(m for m in sys.modules if m.split('.')[0] in ('torch', 'torchvision', 'onnx')))\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.split("\n")
+    assert out[0] == rec.path and out[1] == "[]"
+    import hashlib
+
+    blob = f"none|ssdlite320_mobilenet_v3_large|{UNTRAINED_RECIPE}|{torch.__version__}|{torchvision.__version__}"
+    assert weights_digest("ssdlite320_mobilenet_v3_large", "none") == hashlib.sha256(blob.encode()).hexdigest()[:16]
+
+
 def test_cli_export_uses_cache_and_copies_out(records, cache, tmp_path, capsys):
     out = tmp_path / "model.onnx"
     code = main(["export", "ssdlite320_mobilenet_v3_large", "--cache-dir", str(cache), "-o", str(out)])

@@ -20,6 +20,9 @@ def _probe_cols(rng, n_rounds=5, scale=20.0):
     return {"probe_start_ms": rec["start"]["ms"], "probe_end_ms": rec["end"]["ms"], "probe_raw": json.dumps(rec)}
 
 
+# The simulated runs measure each point in one worker process; compare reports such points
+# ungated by default (replicated invocations), so the gate tests below opt in with
+# gate_single_process=True to exercise the raw and probe-adjusted gates.
 def _pair(host_factor=1.0, point_factor=1.0, n_points=12, seed=0, with_probe=(True, True)):
     """Two runs of n_points configurations; the new one's samples and probes scaled."""
     rng = np.random.default_rng(seed)
@@ -71,7 +74,7 @@ def test_every_worker_records_the_probe_at_start_and_end():
 def test_machine_slower_as_a_whole_is_named_and_adjusted():
     # The whole host 10 % slower in the new run: every point and the probe move together.
     base, new = _pair(host_factor=1.10, point_factor=1.10)
-    c = compare(base, new)
+    c = compare(base, new, gate_single_process=True)
     assert c.host["status"] == "recorded" and c.host["exceeds"]
     assert 1.08 < c.host["ratio"] < 1.12 and c.host["ci_lo"] > 1.05
     assert (c.points["verdict"] == "slower").mean() > 0.5 and c.regressed      # the raw gate stays raw
@@ -80,19 +83,19 @@ def test_machine_slower_as_a_whole_is_named_and_adjusted():
     assert "verdicts may be the machine's" in text and "probe-adjusted ratio [CI]" in text
     assert "adjusted verdict" in c.to_markdown()
     assert json.loads(c.to_json())["host_speed"]["exceeds"] is True
-    gated = compare(base, new, host_adjusted=True)
+    gated = compare(base, new, host_adjusted=True, gate_single_process=True)
     assert not gated.regressed and "probe-adjusted verdict" in gated.to_text()
 
 
 def test_real_slowdown_on_a_steady_host_and_under_host_drift():
     base, new = _pair(host_factor=1.0, point_factor=1.15)
-    c = compare(base, new)
+    c = compare(base, new, gate_single_process=True)
     assert not c.host["exceeds"] and "within the 5% threshold" in c.to_text()
     assert (c.points["verdict"] == "slower").all() and c.regressed
     assert "adjusted verdict" not in c.to_text()           # nothing differs: no extra columns
     # a 15 % regression hidden by a machine that got 10 % faster: raw says unchanged, adjusted says slower
     base, new = _pair(host_factor=1 / 1.10, point_factor=1.15 / 1.10)
-    c = compare(base, new, host_adjusted=True)
+    c = compare(base, new, host_adjusted=True, gate_single_process=True)
     assert (c.points["adj_verdict"] == "slower").all() and c.regressed
     assert "adjusted verdict" in c.to_text()
 

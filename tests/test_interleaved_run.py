@@ -83,16 +83,16 @@ def test_same_interpreter_twice_is_a_true_aa(tmp_path, profile, capsys):
         pairs = ["".join(o[3] for o in mine if o[2] == r) for r in range(4)]
         assert sorted(pairs) == ["AB", "AB", "BA", "BA"]
     with sqlite3.connect(out / "points.sqlite") as db:
-        assert db.execute("SELECT COUNT(*) FROM invocations").fetchone()[0] == 16
+        assert db.execute("SELECT COUNT(*) FROM env_invocations").fetchone()[0] == 16
         # interrupted run: the last pair of one point lost; --resume measures that pair again, whole
-        db.execute("DELETE FROM invocations WHERE invocation = 3 AND point_id IN "
-                   "(SELECT point_id FROM invocations LIMIT 1)")
+        db.execute("DELETE FROM env_invocations WHERE invocation = 3 AND point_id IN "
+                   "(SELECT point_id FROM env_invocations LIMIT 1)")
     assert "planned pairs complete" not in text
     c = compare_run(out)
     assert any("7 of 8 planned pairs complete" in n for n in c.notes)
     run_interleaved(profile, sys.executable, sys.executable, out_dir=out, pairs=4, resume=True, quiet=True)
     with sqlite3.connect(out / "points.sqlite") as db:
-        assert db.execute("SELECT COUNT(*) FROM invocations").fetchone()[0] == 16
+        assert db.execute("SELECT COUNT(*) FROM env_invocations").fetchone()[0] == 16
     assert not any("planned pairs complete" in n for n in compare_run(out).notes)
     # the stored run can be judged again without measuring
     assert main(["compare", str(out), "--format", "json"]) == 0

@@ -46,7 +46,7 @@ def test_create_write_reopen_and_replace(tmp_path):
     assert df["size"].dtype.kind == "i"
 
     s = load_samples(tmp_path / "run")
-    assert list(s.columns) == ["point_id", "i", "ms"]
+    assert list(s.columns) == ["point_id", "i", "ms", "invocation"]
     assert s[s.point_id == "a"]["ms"].tolist() == [4.0, 5.0]
     assert (s.point_id == "b").sum() == 0
 

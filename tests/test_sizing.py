@@ -444,3 +444,76 @@ def test_cli_several_hosts_bad_input(two_hosts, tmp_path, capsys):
     bad.write_text("host,usd_per_hour\nedge-a,free\n")
     assert main(["size", str(two_hosts), "--streams", "1", "--fps", "1", "--price-table", str(bad)]) == 2
     assert "prices.csv: line 2" in capsys.readouterr().err
+
+
+# --------------------------------------------------------------------------- the answer first
+def test_answer_cheapest_and_most_accurate_hand_worked():
+    from speedbench.analyse.buy import best_per_configuration, best_plans
+
+    # table(): A 22.5 fps/core (mAP 0.40), C 10 fps/core (mAP 0.50); B (15 fps/core, mAP 0.30) is
+    # dominated by A and left off the frontier. 400 frames/s, headroom 0.7, core-hour price 0.05.
+    out = size(table(), 40, 10, p99_ms=150, server_cores=(8, 16), headroom=0.7, core_hour_cost=0.05)
+    best = best_plans(out)
+    assert best["basis"][0] == "cost_per_mframe" and best["n_meeting"] == 4
+    # A: 8-core -> 4 servers, 16-core -> 2 servers: 32 cores either way (test above), cost
+    # 0.05 x 32 / (400 x 3600) x 1e6 = 1.111 per million frames; the tie goes to fewer servers.
+    cheap = best["cheapest"]
+    assert cheap["model"] == "a" and cheap["server_cores"] == 16 and cheap["servers"] == 2
+    assert cheap["cost_per_mframe"] == pytest.approx(1.6 / 1.44)
+    assert cheap["utilisation"] == pytest.approx(400 / 720) and cheap["expected_p99_ms"] == 60.0
+    assert cheap["extrapolated"]  # 16 cores > the 2 measured
+    # C: 8-core -> 80 fps per server, ceil(400 / 56) = 8 servers; 16-core -> 160 fps, ceil(400 / 112)
+    # = 4 servers; 64 cores either way, cost 2.222; p99 120 ms <= 150: it meets, and is more accurate.
+    acc = best["most_accurate"]
+    assert acc["model"] == "c" and acc["server_cores"] == 16 and acc["servers"] == 4
+    assert acc["cost_per_mframe"] == pytest.approx(3.2 / 1.44) and acc["map"] == 0.5
+    # The short table: one row per configuration, on its cheapest shape that meets the target.
+    short = best_per_configuration(out)
+    assert list(short["model"]) == ["a", "c"] and list(short["server_cores"]) == [16, 16]
+
+    # p99 <= 100 ms: C's 120 ms misses it, so the most accurate plan that meets it is A's.
+    best = best_plans(size(table(), 40, 10, p99_ms=100, server_cores=(8, 16), core_hour_cost=0.05))
+    assert best["most_accurate"]["model"] == "a" and best["cheapest"]["model"] == "a"
+    # p99 <= 50 ms: nothing meets it; the closest plan is A at 60 ms.
+    best = best_plans(size(table(), 40, 10, p99_ms=50, server_cores=(8, 16)))
+    assert best["cheapest"] is None and best["most_accurate"] is None
+    assert best["closest"]["model"] == "a" and best["closest"]["expected_p99_ms"] == 60.0
+
+
+def test_answer_without_prices_counts_provisioned_cores():
+    from speedbench.analyse.buy import best_plans
+
+    # No price: the cheapest plan is the one with the fewest cores. On 2-core servers A needs
+    # 13 servers (26 cores, see the first test), on 8-core ones 4 servers (32 cores).
+    best = best_plans(size(table(), 40, 10, server_cores=(2, 8)))
+    assert best["basis"][0] == "provisioned_cores"
+    assert best["cheapest"]["model"] == "a" and best["cheapest"]["provisioned_cores"] == 26
+    # C on 2-core servers: 20 fps each, ceil(400 / 14) = 29 servers = 58 cores; on 8-core ones
+    # 8 servers = 64 cores: the most accurate plan is C on 29 x 2-core servers.
+    assert best["most_accurate"]["model"] == "c" and best["most_accurate"]["servers"] == 29
+
+
+def test_cli_leads_with_the_answer_and_states_shared_notes_once(tmp_path, capsys):
+    from speedbench.sweep import RunDir
+
+    rd = RunDir.create(tmp_path / "run", "# test\n", {"profile_name": "t", "env": {}})
+    for r in table().to_dict("records"):
+        rd.write_point({k: v for k, v in r.items() if v is not None}, [1.0, 2.0])
+    rd.close()
+    argv = ["size", str(tmp_path / "run"), "--streams", "40", "--fps", "10", "--p99-ms", "150",
+            "--server-cores", "8,16", "--core-hour-cost", "0.05"]
+    assert main(argv) == 0
+    out = capsys.readouterr().out
+    lines = out.splitlines()
+    assert lines[0].startswith("required: 400 frames/s (40 streams x 10 fps with p99 <= 150 ms)")
+    assert lines[1].startswith("  cheapest that meets the p99 target: a @ 320") and "2 x 16-core" in lines[1]
+    assert "1.111" in lines[1] and "expected p99 60.0 ms" in lines[2] and "extrapolated beyond" in lines[2]
+    assert lines[3].startswith("  most accurate: c @ 320") and "4 x 16-core" in lines[3]
+    # the table: one row per frontier configuration by default, every shape with --all
+    table_rows = [ln for ln in lines if ln.startswith(("a @", "c @"))]
+    assert len(table_rows) == 2
+    assert out.count("linear in cores") == 1  # the extrapolation note, once for every row
+    assert main(argv + ["--all"]) == 0
+    every = capsys.readouterr().out
+    assert len([ln for ln in every.splitlines() if ln.startswith(("a @", "b @", "c @"))]) == 6
+    assert every.count("linear in cores") == 1

@@ -85,3 +85,13 @@ def test_on_a_real_run_every_stage_sum_is_the_unprofiled_median(tmp_path):
     assert shares.sub(1).abs().max() < 1e-9
     profiled = ok[[f"stage_{s}_profiled_ms" for s in STAGES]].sum(axis=1)
     assert (profiled > 0).all()
+    # issue 18, item 4: the host's matmul peak once per run (1 thread and the run's counts),
+    # on every row at its thread count, and the counted MACs per stage beside the stage ms
+    from speedbench.sweep import RunDir
+
+    with RunDir.open(tmp_path / "run") as rd:
+        peak = rd.meta()["matmul_peak"]
+    assert set(peak["by_threads"]) == {"1", "2"} and "matmul" in peak["method"]
+    for _, r in ok.iterrows():
+        assert r["matmul_peak_gmac_s"] == peak["by_threads"][str(r["intra_threads"])]["gmac_s"]
+    assert (ok["stage_backbone_gmacs"] > 0).all() and (ok["stage_postprocess_gmacs"] == 0).all()

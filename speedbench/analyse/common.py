@@ -91,6 +91,13 @@ def with_ids(df: pd.DataFrame) -> pd.DataFrame:
     return df
 
 
+def precision_of(df: pd.DataFrame) -> pd.Series:
+    """Each row's precision ("fp32" for rows recorded before the axis existed)."""
+    if "precision" not in df.columns:
+        return pd.Series("fp32", index=df.index)
+    return df["precision"].fillna("").astype(str).replace("", "fp32")
+
+
 def has_accuracy(df: pd.DataFrame, col: str = "map") -> pd.Series:
     if col not in df.columns:
         return pd.Series(False, index=df.index)

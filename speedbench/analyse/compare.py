@@ -24,6 +24,7 @@ from speedbench.analyse.hostspeed import adjust, host_status, probe_values
 from speedbench.analyse.rundiff import env_diff, load_notes, thread_change_notes
 from speedbench.analyse.runs import Run, as_run
 from speedbench.errors import UserError
+from speedbench.measure.invocations import bootstrap_distribution, expanded_alpha, mixture_percentiles
 from speedbench.schema import STAGES
 
 
@@ -45,6 +46,24 @@ def bootstrap_ratio(base_ms, new_ms, confidence=0.95, n_boot=N_BOOT, rng=None):
     return ratio, float(lo), float(hi)
 
 
+def hierarchical_ratio(base_groups, new_groups, confidence=0.95, n_boot=N_BOOT, rng=None):
+    """(ratio of medians new/base, ci_lo, ci_hi): both sides resampled at two levels.
+
+    Each side is a list of sample arrays, one per invocation. The estimate is the ratio of
+    the equal-weight mixture medians; the interval is the expanded percentile interval of
+    the bootstrap ratios, with the smaller side's invocation count as the units and the
+    pooled two-sample degrees of freedom (speedbench.measure.invocations.expanded_alpha).
+    """
+    rng = rng or np.random.default_rng(0)
+    est = mixture_percentiles(new_groups, (50,))[0] / mixture_percentiles(base_groups, (50,))[0]
+    r = bootstrap_distribution(new_groups, (50,), n_boot, rng)[:, 0] / \
+        bootstrap_distribution(base_groups, (50,), n_boot, rng)[:, 0]
+    rb, rn = len(base_groups), len(new_groups)
+    tail = expanded_alpha(confidence, min(rb, rn), rb + rn - 2)
+    lo, hi = np.quantile(r, [tail, 1 - tail])
+    return float(est), float(min(lo, est)), float(max(hi, est))
+
+
 def _boot_medians(x, n_boot, rng, chunk_elems=4_000_000):
     n = len(x)
     out = np.empty(n_boot)
@@ -56,13 +75,15 @@ def _boot_medians(x, n_boot, rng, chunk_elems=4_000_000):
 
 
 def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: int = 0,
-            n_boot: int = N_BOOT, fail_on_drift: bool = False, host_adjusted: bool = False) -> Comparison:
+            n_boot: int = N_BOOT, fail_on_drift: bool = False, host_adjusted: bool = False,
+            gate_single_process: bool = False) -> Comparison:
     """Match points by configuration and give each a verdict (see the module docstring).
 
     base, new: Run objects, run directory paths, or bare points DataFrames (then the
     recorded CIs of the median stand in for raw samples).
-    A regression is: a point slower beyond the threshold, a point that failed only in
-    the new run, mAP lower beyond its CI, or (with fail_on_drift) changed detections.
+    A regression is: a point slower beyond the threshold (measured in two or more worker
+    processes on both sides, or any point with gate_single_process), a point that failed
+    only in the new run, mAP lower beyond its CI, or (with fail_on_drift) changed detections.
     The host's own speed change between the runs (hostspeed.py) is reported with every
     comparison; host_adjusted: gate on the probe-adjusted latency verdict instead of the raw one.
     """
@@ -89,7 +110,8 @@ def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: 
         columns=["side", "point_id", "label"])
     sb, sn = _samples_by_id(b), _samples_by_id(n)
     rows = [_compare_point(pid, bi.loc[pid], ni.loc[pid], sb.get(pid), sn.get(pid),
-                           threshold, confidence, seed, n_boot, fail_on_drift) for pid in common]
+                           threshold, confidence, seed, n_boot, fail_on_drift, gate_single_process)
+            for pid in common]
     host = host_change(b, n, confidence, seed, n_boot, threshold)
     host["gate"] = "probe-adjusted" if host_adjusted else "raw"
     if host.get("status") == "recorded":
@@ -97,7 +119,8 @@ def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: 
             if row["method"]:
                 row.update(adjust(row, host, threshold))
                 if host_adjusted:
-                    row["regression"] = (row["adj_verdict"] == "slower" or row["accuracy"] == "lower"
+                    row["regression"] = ((row["adj_verdict"] == "slower" and row["gated"])
+                                         or row["accuracy"] == "lower"
                                          or (fail_on_drift and row["drift"] == "changed"))
     elif host_adjusted:
         raise UserError(f"--host-adjusted: {host['status']}; nothing to adjust by")
@@ -113,6 +136,12 @@ def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: 
     if len(points) and (points["method"] == "recorded CIs").any():
         notes.append("some points had no raw samples; their ratio CI is built from the recorded "
                      "CIs of the medians (conservative)")
+    single = points[~points["gated"].astype(bool) & points["verdict"].isin(["slower", "faster"])] \
+        if len(points) and "gated" in points.columns else points.iloc[0:0]
+    if len(single):
+        notes.append(f"{len(single)} latency verdict(s) from points measured in one worker process on at "
+                     f"least one side are reported, not gated: one process cannot show how far a rerun "
+                     f"moves (measure with [repetitions] invocations >= 2, or pass --gate-single-process)")
     if len(points) and (points["drift"] == "not recorded").all():
         notes.append("detection drift not recorded in these runs")
     notes += [x for x in load_notes(b, n, np_, bp) if x not in notes]
@@ -136,20 +165,29 @@ def host_change(b: Run, n: Run, confidence=0.95, seed=0, n_boot=N_BOOT, threshol
 
 
 def _samples_by_id(run: Run) -> dict:
+    """point_id -> list of sample arrays, one per invocation (one array for runs without `invocation`)."""
     s = run.samples
     if s is None or not len(s):
         return {}
     require_columns(s, ["point_id", "ms"], f"{run.name} samples")
-    s = s.sort_values([c for c in ("point_id", "i") if c in s.columns])
-    return {pid: g["ms"].to_numpy(dtype=float) for pid, g in s.groupby("point_id", sort=False)}
+    s = s.sort_values([c for c in ("point_id", "invocation", "i") if c in s.columns])
+    out = {}
+    for pid, g in s.groupby("point_id", sort=False):
+        if "invocation" in g.columns:
+            out[pid] = [h["ms"].to_numpy(dtype=float) for _, h in g.groupby("invocation", sort=True)]
+        else:
+            out[pid] = [g["ms"].to_numpy(dtype=float)]
+    return out
 
 
-def _compare_point(pid, rb, rn, sb, sn, threshold, confidence, seed, n_boot, fail_on_drift) -> dict:
+def _compare_point(pid, rb, rn, sb, sn, threshold, confidence, seed, n_boot, fail_on_drift,
+                   gate_single_process=False) -> dict:
     ok_b = _is_ok(rb)
     ok_n = _is_ok(rn)
     row = {"point_id": pid, "label": rb["label"], "base_p50_ms": _f(rb.get("lat_p50_ms")),
            "new_p50_ms": _f(rn.get("lat_p50_ms")), "ratio": math.nan, "ci_lo": math.nan,
-           "ci_hi": math.nan, "method": "", "n_base": 0, "n_new": 0}
+           "ci_hi": math.nan, "method": "", "n_base": 0, "n_new": 0, "invocations_base": 0,
+           "invocations_new": 0, "gated": False}
     if not (ok_b and ok_n):
         verdict = {(False, True): "failed in base", (True, False): "failed in new"}.get((ok_b, ok_n), "failed in both")
         row.update(verdict=verdict, regression=verdict == "failed in new",
@@ -157,13 +195,21 @@ def _compare_point(pid, rb, rn, sb, sn, threshold, confidence, seed, n_boot, fai
                    map_delta_ci_hi=math.nan, accuracy="n/a", drift="n/a",
                    stage_note=str(rn.get("reason") if not ok_n else rb.get("reason") or ""))
         return row
-    if sb is not None and sn is not None and len(sb) >= MIN_SAMPLES and len(sn) >= MIN_SAMPLES:
+    nb, nn = (sum(len(g) for g in x) if x else 0 for x in (sb, sn))
+    if nb >= MIN_SAMPLES and nn >= MIN_SAMPLES:
         rng = np.random.default_rng([seed, zlib.crc32(str(pid).encode())])
-        ratio, lo, hi = bootstrap_ratio(sb, sn, confidence, n_boot, rng)
-        row.update(method="bootstrap", n_base=len(sb), n_new=len(sn))
+        if len(sb) >= 2 and len(sn) >= 2:
+            ratio, lo, hi = hierarchical_ratio(sb, sn, confidence, n_boot, rng)
+            method = "hierarchical bootstrap"
+        else:
+            ratio, lo, hi = bootstrap_ratio(np.concatenate(sb), np.concatenate(sn), confidence, n_boot, rng)
+            method = "bootstrap (one process)"
+        row.update(method=method, n_base=nb, n_new=nn, invocations_base=len(sb), invocations_new=len(sn))
     else:
         ratio, lo, hi = _ratio_from_recorded(rb, rn)
-        row.update(method="recorded CIs")
+        ib, in_ = (int(v) if np.isfinite(v) else 1 for v in (_f(rb.get("invocations")), _f(rn.get("invocations"))))
+        row.update(method="recorded CIs", invocations_base=ib, invocations_new=in_)
+    row["gated"] = bool(gate_single_process or (row["invocations_base"] >= 2 and row["invocations_new"] >= 2))
     row.update(ratio=ratio, ci_lo=lo, ci_hi=hi)
     if not np.isfinite(lo) or not np.isfinite(hi):
         verdict = "unknown"
@@ -178,7 +224,7 @@ def _compare_point(pid, rb, rn, sb, sn, threshold, confidence, seed, n_boot, fai
     row.update(_accuracy_delta(rb, rn))
     row["drift"] = _drift(rb, rn)
     row.update(_stages(rb, rn))
-    row["regression"] = (verdict == "slower" or row["accuracy"] == "lower"
+    row["regression"] = ((verdict == "slower" and row["gated"]) or row["accuracy"] == "lower"
                          or (fail_on_drift and row["drift"] == "changed"))
     return row
 

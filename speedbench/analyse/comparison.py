@@ -53,7 +53,9 @@ class Comparison:
         rows = []
         adjusted = self.show_adjusted()
         for _, r in self.points.iterrows():
-            row = [r["label"], _ms(r["base_p50_ms"]), _ms(r["new_p50_ms"]), _ratio(r), r["verdict"]]
+            ungated = r["verdict"] in ("slower", "faster") and not bool(r.get("gated", True))
+            row = [r["label"], _ms(r["base_p50_ms"]), _ms(r["new_p50_ms"]), _ratio(r),
+                   r["verdict"] + (" (1 process, not gated)" if ungated else "")]
             if adjusted:
                 row += [_ratio(r, "adj_"), r.get("adj_verdict", "n/a")]
             rows.append(row + [_signed(r["mem_delta_mib"], "MiB", 0), _acc(r), r["drift"], r["stage_note"]])

@@ -180,7 +180,7 @@ def compare_run(path, threshold: float = 0.05, confidence: float = 0.95, seed: i
     if not Path(path).exists():
         raise UserError(f"{path}: run directory not found")
     with RunDir.open(path) as rd:
-        meta, invs, points = rd.meta(), rd.invocations(), rd.points()
+        meta, invs, points = rd.meta(), rd.env_invocations(), rd.points()
     setup = meta.get("interleaved")
     if not isinstance(setup, dict) or not isinstance(setup.get("envs"), dict):
         raise UserError(f"{path}: not an interleaved run (one made by speedbench compare --envs)")

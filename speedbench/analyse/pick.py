@@ -6,10 +6,11 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from speedbench.analyse.common import bounds, has_accuracy, latency_col, require_columns, split_ok
+from speedbench.analyse.common import bounds, has_accuracy, latency_col, precision_of, require_columns, split_ok
 from speedbench.analyse.paired import paired_diff
 from speedbench.analyse.prices import SINGLE, add_costs
 from speedbench.errors import UserError
+from speedbench.schema import PRECISIONS
 
 
 CAUTION = ("Caution: measured on one machine with a small image set; a safety-relevant deployment "
@@ -111,7 +112,7 @@ def _acc(r) -> str:
 
 
 def pick(df: pd.DataFrame, budget_ms: float, latency: str = "p50", threads=None,
-         max_memory_mb=None, min_map=None, prices: dict | None = None) -> Pick:
+         max_memory_mb=None, min_map=None, prices: dict | None = None, precision: str | None = None) -> Pick:
     """Best configuration whose latency statistic fits the budget.
 
     Ranking: highest mAP first, lower latency breaking ties. When no fitting row has
@@ -122,12 +123,16 @@ def pick(df: pd.DataFrame, budget_ms: float, latency: str = "p50", threads=None,
     cheapest fitting row per million frames (mAP, then latency, breaking ties); rows of a
     host without a price, or without a frame rate, are excluded with that reason.
     With rows from several hosts (a `host` column) `per_host` holds each host's own answer.
+    precision: only configurations of that precision ("fp32" or "int8").
     """
     if budget_ms is None or not np.isfinite(budget_ms) or budget_ms <= 0:
         raise UserError(f"--budget-ms: must be a positive number of milliseconds, not {budget_ms!r}")
     col = latency_col(latency)
     require_columns(df, [col], "pick")
+    if precision is not None and precision not in PRECISIONS:
+        raise UserError(f"--precision: must be one of {', '.join(PRECISIONS)}, not {precision!r}")
     ok, bad = split_ok(df)
+    ok["_precision"] = precision_of(ok)
     v, lo, hi = bounds(ok, col) if len(ok) else (np.array([]),) * 3
     ok["_lo"], ok["_hi"] = lo, hi
     if prices is not None:
@@ -143,6 +148,8 @@ def pick(df: pd.DataFrame, budget_ms: float, latency: str = "p50", threads=None,
                 why.append("no frame rate recorded, cost per million frames unknown")
         if threads is not None and int(r.get("intra_threads", -1)) != int(threads):
             why.append(f"intra threads {r.get('intra_threads')} != {threads}")
+        if precision is not None and r["_precision"] != precision:
+            why.append(f"precision {r['_precision']} != {precision}")
         if max_memory_mb is not None:
             mem = r.get("rss_peak_mib")
             if mem is None or pd.isna(mem):
@@ -206,6 +213,10 @@ def pick(df: pd.DataFrame, budget_ms: float, latency: str = "p50", threads=None,
         if best["_hi"] > budget_ms:
             notes.append(f"the {stat} CI of the pick reaches {best['_hi']:.2f} ms, past the budget: "
                          "a rerun may not fit")
+        reps = pd.to_numeric(pd.Series([best.get("invocations")]), errors="coerce").fillna(1).iloc[0]
+        if reps <= 1:
+            notes.append(f"the pick's {stat} interval covers one worker process only: a rerun in a new process "
+                         "can land outside it; measure with [repetitions] invocations >= 3 before relying on it")
         noisy = best.get("noisy", False)
         if isinstance(noisy, (bool, np.bool_)) and noisy:
             cov = best.get("lat_cov")

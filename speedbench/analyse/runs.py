@@ -25,7 +25,7 @@ class Run:
         p = Path(path)
         if not p.exists():
             raise UserError(f"{p}: run directory not found")
-        with RunDir.open(p) as rd:
+        with RunDir.open(p, readonly=True) as rd:
             return cls(points=rd.points(), samples=rd.samples(), meta=rd.meta(), path=str(p),
                        profile_text=rd.profile_text())
 

@@ -56,7 +56,7 @@ import pandas as pd
 from speedbench.analyse.frontier import frontier
 from speedbench.errors import UserError
 from speedbench.measure.point import ORT_ONLY_KNOBS, uses_ort_knobs
-from speedbench.schema import CONFIG_COLUMNS
+from speedbench.schema import CONFIG_COLUMNS, ID_DEFAULTS
 
 # Rule of thumb (ours): workers that got less than this share of their cores' CPU time were
 # competing with other work on the host (or idling threads), so the throughput understates a
@@ -99,7 +99,7 @@ def size(df, streams, fps, p99_ms=None, server_cores=(8, 16, 32, 64), headroom=0
         known = {str(h.host): h.cores_logical for h in df.hosts.itertuples()}
         host_cores = {**known, **(host_cores or {})}
         df = df.points
-    streams, fps, p99_ms, shapes, headroom, core_hour_cost = _check_args(
+    streams, fps, p99_ms, shapes, headroom, core_hour_cost = check_args(
         streams, fps, p99_ms, server_cores, headroom, core_hour_cost)
     required = streams * fps
     configs, excluded = scaling_summary(df)
@@ -180,7 +180,8 @@ def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
     df = df.copy()
     for col in CONFIG_KEY:
         if col not in df.columns:
-            df[col] = "" if col in ("model", "weights", "backend", "exec_mode", "opt_level") else 0
+            df[col] = ID_DEFAULTS[col] if col in ID_DEFAULTS else (
+                "" if col in ("model", "weights", "backend", "exec_mode", "opt_level") else 0)
     if "status" in df.columns:
         df = df[df["status"].fillna("ok").astype(str) == "ok"]
     for col in ("tput_fps", "tput_p99_ms", "tput_mean_ms", "cores_used", "concurrency",
@@ -386,7 +387,11 @@ def _assumption(cfg: dict, shape: int) -> str:
             f"{basis}; memory bandwidth and cache contention on larger hosts may lower it")
 
 
-def _check_args(streams, fps, p99_ms, server_cores, headroom, cost):
+MAX_STREAMS = 1_000_000
+MIN_FPS, MAX_FPS = 0.001, 10_000.0
+
+
+def check_args(streams, fps, p99_ms, server_cores, headroom, cost):
     def number(name, value):
         try:
             v = float(value)
@@ -396,23 +401,25 @@ def _check_args(streams, fps, p99_ms, server_cores, headroom, cost):
             raise UserError(f"{name}: must be finite, got {value!r}")
         return v
 
+    # Ranges wide enough for any real deployment and narrow enough that streams x fps,
+    # servers and costs stay finite numbers (1e-300 fps used to divide by zero, 1e308 overflow).
     s = number("streams (--streams)", streams)
-    if s <= 0 or s != int(s):
-        raise UserError(f"streams (--streams): must be a whole number > 0, got {streams!r}")
+    if not 0 < s <= MAX_STREAMS or s != int(s):
+        raise UserError(f"streams (--streams): must be a whole number in 1..{MAX_STREAMS}, got {streams!r}")
     f = number("fps (--fps)", fps)
-    if f <= 0:
-        raise UserError(f"fps (--fps): must be > 0, got {fps!r}")
+    if not MIN_FPS <= f <= MAX_FPS:
+        raise UserError(f"fps (--fps): must be in [{MIN_FPS:g}, {MAX_FPS:g}], got {fps!r}")
     if p99_ms is not None:
         p99_ms = number("p99_ms (--p99-ms)", p99_ms)
-        if p99_ms <= 0:
-            raise UserError(f"p99_ms (--p99-ms): must be > 0, got {p99_ms!r}")
+        if not 0 < p99_ms <= 1e6:
+            raise UserError(f"p99_ms (--p99-ms): must be in (0, 1e6], got {p99_ms!r}")
     if isinstance(server_cores, (int, float, str)):
         server_cores = [server_cores]
     shapes = []
     for c in server_cores or ():
         v = number("server_cores (--server-cores)", c)
-        if v <= 0 or v != int(v):
-            raise UserError(f"server_cores (--server-cores): each must be a whole number > 0, got {c!r}")
+        if not 0 < v <= 4096 or v != int(v):
+            raise UserError(f"server_cores (--server-cores): each must be a whole number in 1..4096, got {c!r}")
         shapes.append(int(v))
     if not shapes:
         raise UserError("server_cores (--server-cores): give at least one server core count")
@@ -421,6 +428,6 @@ def _check_args(streams, fps, p99_ms, server_cores, headroom, cost):
         raise UserError(f"headroom (--headroom): must be in (0, 1], got {headroom!r}")
     if cost is not None:
         cost = number("core_hour_cost (--core-hour-cost)", cost)
-        if cost < 0:
-            raise UserError(f"core_hour_cost (--core-hour-cost): must be >= 0, got {cost!r}")
+        if not 0 <= cost <= 1e6:
+            raise UserError(f"core_hour_cost (--core-hour-cost): must be in [0, 1e6], got {cost!r}")
     return int(s), f, p99_ms, sorted(set(shapes)), h, cost

@@ -8,10 +8,32 @@ quickly: heavy libraries (torch, onnxruntime, matplotlib) are imported inside
 from __future__ import annotations
 
 import argparse
+import errno
 import importlib
+import signal
+import sqlite3
 import sys
 
-from speedbench.errors import UserError
+from speedbench.errors import UserError, storage_error
+
+# OSErrors that are the machine's state, not a bug: a one-line error, not a traceback.
+PLACE_ERRNOS = {errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EACCES, errno.EPERM, errno.ENAMETOOLONG}
+
+
+class Parser(argparse.ArgumentParser):
+    """argparse with one-line errors: `speedbench: error: argument --min-map: ... (see speedbench pick --help)`,
+    exit status 2 (main() returns it, like every other user mistake)."""
+
+    def error(self, message):
+        self.exit(2, f"speedbench: error: {' '.join(message.split())} (see {self.prog} --help)\n")
+
+
+class Terminated(KeyboardInterrupt):
+    """SIGTERM, raised in the main thread so that every `finally` runs (workers stopped, temp files removed)."""
+
+
+def _on_sigterm(signum, frame):
+    raise Terminated()
 
 # Order is the order shown in --help.
 COMMANDS = [
@@ -23,7 +45,7 @@ COMMANDS = [
 def build_parser() -> argparse.ArgumentParser:
     from speedbench import __version__
 
-    parser = argparse.ArgumentParser(
+    parser = Parser(
         prog="speedbench",
         description="Measure CPU object detectors and choose a configuration from the evidence.",
     )
@@ -38,18 +60,42 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
-    args = parser.parse_args(argv)
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:   # --help / --version (0), or a refused argument, already said in one line (2)
+        return exc.code if isinstance(exc.code, int) else 2
     if not getattr(args, "run", None):
         parser.print_help()
         return 2
+    import threading
+
+    main_thread = threading.current_thread() is threading.main_thread()
+    previous = signal.signal(signal.SIGTERM, _on_sigterm) if main_thread else None
     try:
         return int(args.run(args) or 0)
     except UserError as exc:
         print(f"speedbench: error: {exc}", file=sys.stderr)
         return 2
+    except OSError as exc:
+        if exc.errno not in PLACE_ERRNOS:
+            raise
+        # A full disk or a read-only place met outside the run directory's own writes.
+        print(f"speedbench: error: {storage_error(exc, exc.filename or '?')}", file=sys.stderr)
+        return 2
+    except sqlite3.OperationalError as exc:
+        if (getattr(exc, "sqlite_errorcode", None) or 0) & 0xFF != sqlite3.SQLITE_FULL:
+            raise
+        print(f"speedbench: error: no space left on device ({exc})", file=sys.stderr)
+        return 2
+    except Terminated:
+        print("speedbench: terminated; results written so far are kept", file=sys.stderr)
+        return 143
     except KeyboardInterrupt:
         print("speedbench: interrupted; results written so far are kept", file=sys.stderr)
         return 130
+    finally:
+        if main_thread:
+            signal.signal(signal.SIGTERM, previous)
 
 
 if __name__ == "__main__":  # pragma: no cover

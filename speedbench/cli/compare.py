@@ -9,6 +9,8 @@ with no configuration in common: a gate must not pass on an empty comparison).
 """
 from __future__ import annotations
 
+from speedbench.cli.args import int_in
+
 USAGE = ("speedbench compare [options] BASE_RUN NEW_RUN\n"
          "       speedbench compare [options] --envs OLD_PYTHON NEW_PYTHON PROFILE\n"
          "       speedbench compare [options] INTERLEAVED_RUN")
@@ -27,13 +29,19 @@ def add_parser(subparsers):
     p.add_argument("base", metavar="BASE_RUN", nargs="?",
                    help="run directory before the change (with --envs: the profile; alone: an interleaved run)")
     p.add_argument("new", metavar="NEW_RUN", nargs="?", help="run directory after the change")
-    p.add_argument("--threshold", default="5%", type=_fraction,
+    p.add_argument("--threshold", default="5%", type=lambda t: _fraction(t, 0, 10, "[0, 10] (0%..1000%)"),
                    help="slowdown tolerated before a verdict of slower, e.g. 5%% or 0.05 (default 5%%)")
-    p.add_argument("--confidence", default=0.95, type=_fraction, help="confidence of the intervals (default 0.95)")
+    p.add_argument("--confidence", default=0.95, type=lambda t: _fraction(t, 0.5, 0.9999, "[0.5, 0.9999]"),
+                   help="confidence of the intervals, 0.5..0.9999 (default 0.95)")
     p.add_argument("--format", default="text", choices=["text", "md", "json"], help="output format")
     p.add_argument("--fail-on-drift", action="store_true",
                    help="count changed detections on the held-out images as a regression")
-    p.add_argument("--seed", type=int, default=0, help="bootstrap seed, and with --envs the order's seed (default 0)")
+    p.add_argument("--seed", type=int_in(0, 2**32 - 1), default=0,
+                   help="bootstrap seed, and with --envs the order's seed (default 0)")
+    p.add_argument("--gate-single-process", action="store_true",
+                   help="also fail on latency of points measured in one worker process on either side "
+                        "(by default reported, not gated: one process cannot show how far a rerun moves); "
+                        "BASE_RUN NEW_RUN only")
     p.add_argument("--host-adjusted", action="store_true",
                    help="gate on the latency verdict adjusted by the host speed probe (the machine's own "
                         "speed change between the runs) instead of the raw one; both are always shown "
@@ -42,7 +50,7 @@ def add_parser(subparsers):
     g.add_argument("--envs", nargs=2, metavar=("OLD_PYTHON", "NEW_PYTHON"),
                    help="the two environments' interpreters (e.g. two venvs' bin/python), each with the same "
                         "speedbench installed")
-    g.add_argument("--pairs", type=int, default=None,
+    g.add_argument("--pairs", type=int_in(1, 10**6), default=None,
                    help="A/B pairs of worker invocations per point (default 6)")
     g.add_argument("--same-graph", action="store_true",
                    help="measure one graph file (exported by OLD) in both environments, isolating the runtime; "
@@ -53,14 +61,18 @@ def add_parser(subparsers):
     p.set_defaults(run=run)
 
 
-def _fraction(text: str) -> float:
+def _fraction(text: str, lo: float = 0.0, hi: float = 10.0, span: str = "[0, 10]") -> float:
     import argparse
+    import math
 
     s = str(text).strip()
     try:
-        return float(s[:-1]) / 100 if s.endswith("%") else float(s)
+        value = float(s[:-1]) / 100 if s.endswith("%") else float(s)
     except ValueError:
         raise argparse.ArgumentTypeError(f"expected a fraction like 0.05 or a percentage like 5%, not {text!r}")
+    if not (math.isfinite(value) and lo <= value <= hi):
+        raise argparse.ArgumentTypeError(f"must be in {span}, not {text}")
+    return value
 
 
 def run(args) -> int:
@@ -73,6 +85,9 @@ def run(args) -> int:
         if args.host_adjusted:
             raise UserError("--host-adjusted: an interleaved run needs no host adjustment (both sides share "
                             "its time window)")
+        if args.gate_single_process:
+            raise UserError("--gate-single-process: only with BASE_RUN NEW_RUN (an interleaved run is judged "
+                            "on its A/B pairs of worker processes)")
         return _interleaved(args)
     used = [f"--{k.replace('_', '-')}" for k in interleaved_only if getattr(args, k) not in (None, False)]
     if used:
@@ -80,6 +95,9 @@ def run(args) -> int:
     if args.base and not args.new:
         from speedbench.analyse.interleaved import compare_run
 
+        if args.gate_single_process:
+            raise UserError("--gate-single-process: only with BASE_RUN NEW_RUN (an interleaved run is judged "
+                            "on its A/B pairs of worker processes)")
         return _report(args, compare_run(args.base, threshold=args.threshold, confidence=args.confidence,
                                          seed=args.seed, fail_on_drift=args.fail_on_drift), args.base)
     if not args.base:
@@ -88,7 +106,8 @@ def run(args) -> int:
 
     base, new = Run.load(args.base), Run.load(args.new)
     result = compare(base, new, threshold=args.threshold, confidence=args.confidence, seed=args.seed,
-                     fail_on_drift=args.fail_on_drift, host_adjusted=args.host_adjusted)
+                     fail_on_drift=args.fail_on_drift, host_adjusted=args.host_adjusted,
+                     gate_single_process=args.gate_single_process)
     return _report(args, result, f"{args.new}: no configuration in common with {args.base}")
 
 

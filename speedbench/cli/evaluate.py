@@ -2,7 +2,10 @@
 from __future__ import annotations
 
 import json
+import os
 import sys
+
+from speedbench.cli.args import int_in, output_file
 
 FEW_BOXES = 10  # per-class AP from fewer ground-truth boxes than this is flagged (common practice)
 
@@ -18,33 +21,47 @@ def add_parser(subparsers):
     p.add_argument("--graph", help="ONNX graph to run over the set instead of reading DETS")
     p.add_argument("--model", help="zoo id whose class names label the graph's outputs (with --graph)")
     p.add_argument("--classes", help="comma-separated class names by label index (with --graph)")
-    p.add_argument("--threads", type=int, default=1, help="intra-op threads for --graph (default 1)")
-    p.add_argument("--save-dets", metavar="PATH", help="write the graph's detections here (with --graph)")
-    p.add_argument("--bootstrap", type=int, default=1000, help="bootstrap resamples (0 = no interval)")
-    p.add_argument("--seed", type=int, default=0, help="seed of the bootstrap (default 0)")
+    p.add_argument("--threads", type=int_in(0, 256), default=1, help="intra-op threads for --graph, 0..256 (default 1)")
+    p.add_argument("--save-dets", metavar="PATH", type=output_file(".json"),
+                   help="write the graph's detections here (.json, with --graph)")
+    p.add_argument("--bootstrap", type=int_in(0, 100_000), default=1000,
+                   help="bootstrap resamples, 0..100000 (0 = no interval)")
+    p.add_argument("--seed", type=int_in(0, 2**32 - 1), default=0, help="seed of the bootstrap (default 0)")
     p.add_argument("--json", action="store_true", help="print one JSON object")
     p.set_defaults(run=run)
 
 
 def run(args) -> int:
-    from speedbench.data import load_dataset
+    # Scoring a results file is a command users wait on: it reads the two files once each,
+    # straight into arrays, and imports neither torch nor matplotlib (tests/test_cocoeval.py).
+    from speedbench.data import load_annotations, load_dataset
     from speedbench.errors import UserError
-    from speedbench.evaluate import coco_evaluate, load_detections
+    from speedbench.evaluate import GroundTruth, coco_evaluate, read_detections
 
     if (args.dets is None) == (args.graph is None):
         raise UserError("give either DETS (a results file) or --graph, not both or neither")
-    dataset = load_dataset(args.gt, check_images=args.graph is not None)
     if args.graph:
+        dataset = load_dataset(args.gt)
+        ground = GroundTruth(dataset.coco)
         dets = _run_graph(args, dataset)
     else:
-        dets = load_detections(args.dets, dataset)
-    result = coco_evaluate(dataset.coco, dets, bootstrap=args.bootstrap, seed=args.seed)
+        ground = GroundTruth(load_annotations(args.gt))
+        dets = read_detections(args.dets, ground)
+    result = coco_evaluate(ground, dets, bootstrap=args.bootstrap, seed=args.seed, threads=_cores())
     if args.json:
         json.dump(result, sys.stdout)
         sys.stdout.write("\n")
     else:
         sys.stdout.write(format_result(result, args.gt, args.dets or args.graph))
     return 0
+
+
+def _cores() -> int:
+    """Threads for the bootstrap: the cores this process may run on."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # not on Linux
+        return max(1, os.cpu_count() or 1)
 
 
 def _run_graph(args, dataset):

@@ -5,6 +5,8 @@ writes) give one frontier per host, each row also marked against every host's po
 """
 from __future__ import annotations
 
+from speedbench.cli.args import output_file
+
 AXES = {"latency": None, "memory": "rss_peak_mib", "fps": "fps"}
 
 
@@ -20,7 +22,8 @@ def add_parser(subparsers):
     p.add_argument("--axis", default="latency", choices=sorted(AXES),
                    help="cost axis against accuracy: latency (default), memory (peak RSS) or fps (throughput)")
     p.add_argument("--all", action="store_true", help="also list dominated configurations")
-    p.add_argument("-o", "--output", metavar="FILE.png", help="draw the frontier plot (.png or .svg)")
+    p.add_argument("-o", "--output", metavar="FILE.png", type=output_file(".png", ".svg"),
+                   help="draw the frontier plot (.png or .svg)")
     p.set_defaults(run=run)
 
 

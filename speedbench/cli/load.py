@@ -7,6 +7,8 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
+from speedbench.cli.args import float_in, output_dir
+
 def add_parser(subparsers):
     p = subparsers.add_parser(
         "load", help="throughput under concurrency: K workers per point (frames/s, p99 under load)",
@@ -14,13 +16,14 @@ def add_parser(subparsers):
                     "and Little's-law concurrency with K concurrent worker processes per point.")
     p.add_argument("target", metavar="PROFILE-or-RUN", help="a profile (.toml) or a run directory")
     p.add_argument("-k", "--concurrency", default="1,2", help="worker counts K, comma-separated (default 1,2)")
-    p.add_argument("--seconds", type=float, default=5.0, help="measurement window per K (default 5)")
+    p.add_argument("--seconds", type=float_in(0, 3600, open_lo=True), default=5.0,
+                   help="measurement window per K, (0, 3600] (default 5)")
     p.add_argument("--pin", action="store_true", help="pin each worker to its own T cores")
     p.add_argument("--utilisation", default="0.5,0.7,0.9",
                    help="for the largest K, paced-arrival runs at these fractions of its throughput "
                         "(latency incl. queueing, read by `speedbench size`); 'none' to skip "
                         "(default 0.5,0.7,0.9)")
-    p.add_argument("-o", "--out", default=None, help="run directory to create (profile mode)")
+    p.add_argument("-o", "--out", default=None, type=output_dir, help="run directory to create (profile mode)")
     p.add_argument("--quiet", action="store_true", help="no per-point lines")
     p.set_defaults(run=run)
 
@@ -65,8 +68,8 @@ def parse_ks(text) -> list[int]:
             k = int(part)
         except ValueError:
             raise UserError(f"-k/--concurrency: {part!r} is not a whole number") from None
-        if k < 1:
-            raise UserError(f"-k/--concurrency: K must be >= 1, got {k}")
+        if not 1 <= k <= 256:
+            raise UserError(f"-k/--concurrency: K must be >= 1 and <= 256, got {k}")
         ks.append(k)
     if not ks:
         raise UserError("-k/--concurrency: give at least one K, e.g. -k 1,2")
@@ -84,7 +87,7 @@ def parse_utilisations(text) -> tuple:
             u = float(part)
         except ValueError:
             raise UserError(f"--utilisation: {part.strip()!r} is not a number") from None
-        if not 0 < u <= 1.5:
+        if not 0 < u <= 1.5:   # also refuses nan
             raise UserError(f"--utilisation: each must be in (0, 1.5], got {u:g}")
         out.append(u)
     return tuple(out)

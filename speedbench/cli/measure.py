@@ -1,6 +1,8 @@
 """`speedbench measure`: time one configuration in its own worker process."""
 from __future__ import annotations
 
+from speedbench.cli.args import float_in, int_in, output_file
+
 
 def add_parser(subparsers):
     p = subparsers.add_parser(
@@ -11,29 +13,43 @@ def add_parser(subparsers):
     p.add_argument("graph", nargs="?", help="ONNX file (backend ort); omitted: exported with speedbench.export")
     p.add_argument("--model", help="zoo id (default: the graph's file name)")
     p.add_argument("--weights", default="none", help="none | torchvision | demo | file:PATH (default none)")
-    p.add_argument("--size", type=int, default=0, help="input size the model resizes to (0 = its default)")
-    p.add_argument("--proposals", type=int, default=0, help="proposal / candidate budget (0 = default)")
+    p.add_argument("--size", type=int_in(0, 4096), default=0,
+                   help="input size the model resizes to, 32..4096 (0 = the graph's / model's own)")
+    p.add_argument("--proposals", type=int_in(0, 10_000), default=0,
+                   help="proposal / candidate budget, 1..10000 (0 = default)")
     p.add_argument("--backend", choices=("ort", "eager", "synthetic"), default="ort")
-    p.add_argument("--threads", type=int, default=1, help="intra-op threads (0 = library default)")
-    p.add_argument("--inter-threads", type=int, default=1, help="inter-op threads (default 1)")
+    p.add_argument("--adapter", metavar="FILE", help="GRAPH is an external detector described by this adapter "
+                   "(TOML; keys in speedbench/adapt/spec.py): host pre/postprocessing are timed with it")
+    p.add_argument("--threads", type=int_in(0, 256), default=1, help="intra-op threads, 0..256 (0 = library default)")
+    p.add_argument("--inter-threads", type=int_in(0, 256), default=1, help="inter-op threads, 0..256 (default 1)")
     p.add_argument("--mode", choices=("sequential", "parallel"), default="sequential", help="ORT execution mode")
     p.add_argument("--opt", choices=("disable", "basic", "extended", "all"), default="all",
                    help="ORT graph optimisation level (default all)")
-    p.add_argument("--affinity", type=int, default=0, help="pin the worker to N cores (0 = no pinning)")
+    p.add_argument("--affinity", type=int_in(0, 1024), default=0, help="pin the worker to N cores (0 = no pinning)")
+    p.add_argument("--no-spin", action="store_true",
+                   help="ORT pool threads sleep instead of spinning while waiting for work (spin_wait off)")
+    p.add_argument("--invocations", type=int_in(1, 1000), default=1,
+                   help="measure in R fresh worker processes; R >= 2 gives intervals that include "
+                        "process-to-process variation (default 1)")
     src = p.add_mutually_exclusive_group()
     src.add_argument("--images", nargs="+", metavar="PATH", help="image files or folders to time on")
     src.add_argument("--dataset", help="COCO JSON / VOC folder; its images are used")
-    src.add_argument("--scenes", type=int, default=8, help="generated scenes to time on (default 8)")
-    p.add_argument("--max-images", type=int, default=16, help="use at most this many images (default 16)")
-    p.add_argument("--min-reps", type=int, default=20)
-    p.add_argument("--max-reps", type=int, default=1000)
-    p.add_argument("--max-seconds", type=float, default=30.0, help="timing budget per point (default 30)")
-    p.add_argument("--rel-ci", type=float, default=0.02, help="stop when the median's 95%% CI half-width "
-                   "is within this fraction of the median (default 0.02)")
+    src.add_argument("--scenes", type=int_in(1, 10_000), default=8, help="generated scenes to time on (default 8)")
+    p.add_argument("--max-images", type=int_in(1, 10_000), default=16,
+                   help="use at most this many images (default 16)")
+    p.add_argument("--min-reps", type=int_in(1, 1_000_000), default=20)
+    p.add_argument("--max-reps", type=int_in(1, 1_000_000), default=1000)
+    p.add_argument("--max-seconds", type=float_in(0, 86400, open_lo=True), default=30.0,
+                   help="timing budget per point, (0, 86400] (default 30)")
+    p.add_argument("--rel-ci", type=float_in(0, 1, open_lo=True, open_hi=True), default=0.02,
+                   help="stop when the median's 95%% CI half-width is within this fraction of the median, "
+                        "(0, 1) (default 0.02)")
     p.add_argument("--no-stages", action="store_true", help="skip the profiled per-stage pass")
-    p.add_argument("--timeout", type=float, default=600, help="kill the worker after this many seconds")
+    p.add_argument("--timeout", type=float_in(1, 86400), default=600,
+                   help="kill the worker after this many seconds, 1..86400 (default 600)")
     p.add_argument("--json", action="store_true", help="print the flat result row as JSON")
-    p.add_argument("-o", "--out", help="write the full result (every sample) as JSON to this file")
+    p.add_argument("-o", "--out", type=output_file(".json"),
+                   help="write the full result (every sample) as JSON to this file (.json)")
     p.set_defaults(run=run)
 
 
@@ -68,10 +84,52 @@ def _images(args):
     return [render_scene(scene_rng(0, "heldout", i))[0] for i in range(min(args.scenes, args.max_images))]
 
 
+def graph_size(graph: str) -> int | None:
+    """The input size a graph was exported for: from its export record (GRAPH.json beside it,
+    written by speedbench export), else from the cache's file name (MODEL-sSIZE-pK-oOPSET-...)."""
+    import json
+    import re
+    from pathlib import Path
+
+    record = Path(graph).with_suffix(".json")
+    try:
+        size = json.loads(record.read_text()).get("size")
+        if isinstance(size, int) and not isinstance(size, bool):
+            return size
+    except (OSError, ValueError, AttributeError, RecursionError):
+        pass
+    m = re.search(r"-s(\d+)-p\d+-o\d+", Path(graph).stem)
+    return int(m.group(1)) if m else None
+
+
+def check_graph(graph: str) -> None:
+    """A readable ONNX file, or a UserError naming it (a corrupt graph is bad input, not a failed point)."""
+    from pathlib import Path
+
+    from speedbench.errors import UserError
+
+    path = Path(graph)
+    if not path.is_file():
+        raise UserError(f"{path}: ONNX graph file not found")
+    try:
+        import onnx
+
+        onnx.load(str(path), load_external_data=False)
+    except Exception as exc:  # onnx raises DecodeError, ValueError, OSError... for a damaged file
+        raise UserError(f"{path}: not a readable ONNX graph ({type(exc).__name__})") from None
+
+
 def _graph(args, model):
     from speedbench.errors import UserError
 
     if args.graph:
+        check_graph(args.graph)
+        exported = graph_size(args.graph)
+        if exported is not None and args.size and args.size != exported:
+            raise UserError(f"--size {args.size}: {args.graph} was exported for {exported} px (the size is "
+                            f"part of the graph); export it at {args.size} px or leave --size out")
+        if exported is not None:
+            args.size = exported
         return args.graph
     from speedbench.export import export_onnx
 
@@ -82,25 +140,71 @@ def _graph(args, model):
 
 
 def run(args) -> int:
+    from pathlib import Path
+
+    from speedbench.errors import UserError
+    from speedbench.measure import Point
+
+    model = args.model or (Path(args.graph).stem if args.graph else None)
+    if not model:
+        raise UserError("--model: give a zoo id (or an ONNX file)")
+    if args.size and args.size < 32:
+        raise UserError(f"--size {args.size}: must be 0 (the graph's own) or 32..4096")
+    if args.min_reps > args.max_reps:
+        raise UserError(f"--max-reps {args.max_reps}: must be >= --min-reps {args.min_reps}")
+    if args.adapter:
+        return _run_point(args, _adapted_point(args, model))
+    ort = args.backend == "ort"
+    graph = _graph(args, model) if ort else None
+    point = Point(model=model, weights=args.weights, size=args.size, proposals=args.proposals,
+                  backend=args.backend, intra_threads=args.threads, inter_threads=args.inter_threads,
+                  exec_mode=args.mode if ort else "", opt_level=args.opt if ort else "",
+                  affinity=args.affinity, spin_wait="off" if args.no_spin else "on", graph=graph)
+    return _run_point(args, point)
+
+
+def _adapted_point(args, model):
+    """Point for GRAPH + --adapter: backend "adapted", the adapter checked against the graph first."""
+    from pathlib import Path
+
+    from speedbench.adapt import check_graph, load_adapter
+    from speedbench.errors import UserError
+    from speedbench.measure import Point
+
+    if not args.graph:
+        raise UserError("--adapter: give the external ONNX graph it describes")
+    if args.backend != "ort":
+        raise UserError(f"--adapter: an external graph runs on ONNX Runtime, not --backend {args.backend}")
+    adapter = load_adapter(args.adapter)
+    check_graph(args.graph, adapter)
+    if args.size and adapter.fixed and args.size != adapter.native_size:
+        raise UserError(f"--size {args.size}: {args.graph} has a fixed input of "
+                        f"{adapter.input.size[0]} x {adapter.input.size[1]}")
+    if args.proposals and not adapter.host_nms:
+        raise UserError("--proposals: NMS runs inside this graph (nms.enabled = false); there is no host top-k")
+    size = args.size or adapter.native_size
+    if not adapter.fixed and adapter.input.resize == "none":
+        size = 0
+    return Point(model=model, weights=f"onnx:{Path(args.graph).name}", size=size,
+                 proposals=(args.proposals or adapter.nms.candidates) if adapter.host_nms else 0,
+                 backend="adapted", intra_threads=args.threads, inter_threads=args.inter_threads,
+                 exec_mode=args.mode, opt_level=args.opt, affinity=args.affinity, graph=args.graph,
+                 spin_wait="off" if args.no_spin else "on",
+                 adapter=adapter.to_dict())
+
+
+def _run_point(args, point) -> int:
     import json
     import math
     import sys
     from pathlib import Path
 
-    from speedbench.errors import UserError
-    from speedbench.measure import Point, Policy, measure_point
+    from speedbench.measure import Policy
+    from speedbench.measure.launch import measure_invocations
 
-    model = args.model or (Path(args.graph).stem if args.graph else None)
-    if not model:
-        raise UserError("--model: give a zoo id (or an ONNX file)")
-    ort = args.backend == "ort"
-    point = Point(model=model, weights=args.weights, size=args.size, proposals=args.proposals,
-                  backend=args.backend, intra_threads=args.threads, inter_threads=args.inter_threads,
-                  exec_mode=args.mode if ort else "", opt_level=args.opt if ort else "",
-                  affinity=args.affinity, graph=_graph(args, model) if ort else None)
     policy = Policy(min_reps=args.min_reps, max_reps=args.max_reps, max_seconds=args.max_seconds,
                     rel_ci=args.rel_ci, profile_stages=not args.no_stages)
-    res = measure_point(point, _images(args), policy, timeout_s=args.timeout)
+    res = measure_invocations(point, _images(args), policy, invocations=args.invocations, timeout_s=args.timeout)
     if args.out:
         Path(args.out).write_text(json.dumps(res.to_dict(), indent=1))
     if args.json:
@@ -126,6 +230,11 @@ def _print_summary(res) -> None:
     print(f"  latency ms: p50 {m.median:.2f} (95% CI {lo:.2f}-{hi:.2f})  p90 {m.percentile(90):.2f}  "
           f"p99 {m.percentile(99):.2f}  min {m.min:.2f}  mean {m.mean:.2f}  CoV {m.cov:.3f}  n {m.n} "
           f"({res.extra.get('stop')}) on {res.extra.get('n_images')} images")
+    scope = m.summary()
+    print(f"  invocations {scope['invocations']}: {scope['ci_scope']}"
+          + (f"; between-invocation CoV {scope['between_cov']:.1%}" if scope["invocations"] > 1 else ""))
+    if res.failed_invocations:
+        print(f"  failed invocations: {'; '.join(res.failed_invocations)}")
     if m.noisy:
         print("  NOISY: the spread is high or the CI target was not reached; do not rank on this point alone")
     if res.stages:

@@ -1,6 +1,8 @@
 """speedbench report RUN [RUN ...] -o report.html: a self-contained review report."""
 from __future__ import annotations
 
+from speedbench.cli.args import float_in, output_file
+
 
 def add_parser(subparsers):
     p = subparsers.add_parser(
@@ -10,9 +12,11 @@ def add_parser(subparsers):
                     "parent directory of them, as a fleet sweep writes) give per-host frontiers side by side.")
     p.add_argument("run_dirs", nargs="+", metavar="RUN",
                    help="run directory, or a parent of run directories (several: one report over all, per host)")
-    p.add_argument("-o", "--output", default="report.html", metavar="FILE", help="HTML file (default report.html)")
+    p.add_argument("-o", "--output", default="report.html", metavar="FILE", type=output_file(".html", ".htm"),
+                   help="HTML file (.html; default report.html)")
     p.add_argument("--markdown", action="store_true", help="also write FILE.md with the figures as PNGs beside it")
-    p.add_argument("--budget-ms", type=float, metavar="X", help="answer the question for this latency budget")
+    p.add_argument("--budget-ms", type=float_in(0, 1e6, open_lo=True), metavar="X",
+                   help="answer the question for this latency budget (ms), (0, 1e6]")
     p.add_argument("--latency", default="p50", choices=["p50", "p90", "p99"], help="latency statistic")
     p.add_argument("--price-table", metavar="FILE",
                    help="USD per host-hour (TOML `[prices] label = 0.34` or CSV `host,usd_per_hour`): "

@@ -1,6 +1,8 @@
 """`speedbench train`: train the compact demo zoo on synthetic scenes (wraps speedbench.demo.train)."""
 from __future__ import annotations
 
+from speedbench.cli.args import int_in, output_dir
+
 
 def add_parser(subparsers):
     p = subparsers.add_parser(
@@ -9,10 +11,10 @@ def add_parser(subparsers):
                     "(fp16 weights + manifest.json). Seeded and reproducible.")
     p.add_argument("--model", default="all",
                    help="demo_ssdlite, demo_fcos, demo_frcnn, demo_frcnn_lite or all (default all)")
-    p.add_argument("--steps", type=int, default=None, help="override the recipe's step count")
-    p.add_argument("--out", default=None, help="weights directory (default: the package's zoo/weights)")
-    p.add_argument("--seed", type=int, default=0)
-    p.add_argument("--heldout-images", type=int, default=100,
+    p.add_argument("--steps", type=int_in(1, 1_000_000), default=None, help="override the recipe's step count")
+    p.add_argument("--out", default=None, type=output_dir, help="weights directory (default: the package's zoo/weights)")
+    p.add_argument("--seed", type=int_in(0, 2**31 - 1), default=0)
+    p.add_argument("--heldout-images", type=int_in(1, 100_000), default=100,
                    help="held-out scenes scored for the manifest (default 100)")
     p.set_defaults(run=run)
 

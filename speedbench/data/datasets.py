@@ -20,11 +20,13 @@ import math
 import warnings
 from dataclasses import dataclass
 from functools import cached_property
+from itertools import chain
 from pathlib import Path
 
 import numpy as np
 
-from speedbench.data.images import read_image
+from speedbench.data.images import DEFAULT_MAX_PIXELS, read_image
+from speedbench.data.jsonio import INT_LIMIT, read_json
 from speedbench.errors import UserError
 
 ANNOTATIONS_FILE = "annotations.json"
@@ -33,6 +35,9 @@ ANNOTATIONS_FILE = "annotations.json"
 BOX_TOLERANCE = 1.0
 # Names in torchvision's COCO label list that are not classes.
 PLACEHOLDER_CLASSES = {"__background__", "n/a", ""}
+# Largest image side the annotations may claim (px); the pixel count is bounded separately
+# (max_pixels). Ids must fit in 64 bits (numpy / pycocotools arrays).
+MAX_SIDE = 1_000_000
 
 
 @dataclass(frozen=True)
@@ -50,8 +55,10 @@ class ImageRecord:
 class Dataset:
     """A validated held-out set. `coco` is its COCO-format dict (ids as in the source)."""
 
-    def __init__(self, root: Path, coco: dict, source: Path, images: list[ImageRecord]):
+    def __init__(self, root: Path, coco: dict, source: Path, images: list[ImageRecord],
+                 max_pixels: int = DEFAULT_MAX_PIXELS):
         self.root = root
+        self.max_pixels = max_pixels
         self.coco = coco
         self.source = source
         self.images = images
@@ -71,7 +78,7 @@ class Dataset:
             raise UserError(f"{self.source}: no image with id {image_id!r}")
         im = self._by_id[image_id]
         try:
-            return read_image(im.path)
+            return read_image(im.path, self.max_pixels)
         except UserError as exc:
             raise UserError(f"{self.source}: image id {im.id}: {exc}") from None
 
@@ -97,7 +104,7 @@ class Dataset:
             "annotations": [a for a in self.coco["annotations"] if a["image_id"] in keep],
             "categories": self.coco["categories"],
         }
-        return Dataset(self.root, coco, self.source, images)
+        return Dataset(self.root, coco, self.source, images, self.max_pixels)
 
     @property
     def fingerprint(self) -> str:  # the name the sweep's caches look for
@@ -115,14 +122,40 @@ class Dataset:
         return h.hexdigest()
 
 
-def load_dataset(path, images_dir=None, check_images: bool = True) -> Dataset:
+def load_dataset(path, images_dir=None, check_images: bool = True,
+                 max_pixels: int = DEFAULT_MAX_PIXELS) -> Dataset:
     """Load and validate a held-out set.
 
     path: a COCO JSON file (images relative to its folder, or to images_dir), a folder
     holding annotations.json, or a Pascal VOC folder (Annotations/*.xml + JPEGImages/).
     check_images decodes every image once (missing / corrupt files, size mismatch);
     turn it off when only the annotations are needed (evaluating a results file).
+    max_pixels: images with more pixels (width x height, from the annotations and from each
+    file's header) are refused, naming the file; the profile key [dataset] max_pixels.
     """
+    coco, root, source = _read_annotations(path, images_dir)
+    if not root.is_dir():
+        raise UserError(f"{root}: image folder not found")
+    images = [_record(im, root, source) for im in coco["images"]]
+    for rec in images:
+        if rec.width * rec.height > max_pixels:
+            raise UserError(f"{source}: image {rec.id}: {rec.file_name} is {rec.width}x{rec.height} = "
+                            f"{rec.width * rec.height} pixels, above the limit of {max_pixels} "
+                            f"(profile key dataset.max_pixels); refused")
+    if check_images:
+        for rec in images:
+            _check_image(rec, source, max_pixels)
+    return Dataset(root, coco, source, images, max_pixels)
+
+
+def load_annotations(path) -> dict:
+    """The validated COCO dict of a held-out set (any form load_dataset reads), without
+    touching its images: all that scoring a results file needs."""
+    return _read_annotations(path, None)[0]
+
+
+def _read_annotations(path, images_dir):
+    """(validated COCO dict, image root, source path) of a dataset path."""
     path = Path(path)
     if not path.exists():
         raise UserError(f"{path}: dataset not found")
@@ -139,14 +172,7 @@ def load_dataset(path, images_dir=None, check_images: bool = True) -> Dataset:
     else:
         raise UserError(f"{path}: not a dataset (expected a COCO JSON file, a folder with "
                         f"{ANNOTATIONS_FILE}, or a Pascal VOC folder with Annotations/)")
-    if not root.is_dir():
-        raise UserError(f"{root}: image folder not found")
-    coco = validate_coco(coco, source)
-    images = [_record(im, root, source) for im in coco["images"]]
-    if check_images:
-        for rec in images:
-            _check_image(rec, source)
-    return Dataset(root, coco, source, images)
+    return validate_coco(coco, source), root, source
 
 
 def category_map(dataset, model_classes) -> dict[int, int]:
@@ -170,8 +196,12 @@ def category_map(dataset, model_classes) -> dict[int, int]:
                           "label index to category id instead - check that this is intended",
                           stacklevel=2)
     if not mapping:
+        source = getattr(dataset, "source", None)
+        where = f"{source}: " if source else ""
+        if not cats:
+            raise UserError(f"{where}the dataset has no categories; nothing to score the model's classes against")
         raise UserError(
-            f"no model class maps to a dataset category: model has {_sample(n for _, n in labels)}, "
+            f"{where}no model class maps to a dataset category: model has {_sample(n for _, n in labels)}, "
             f"dataset has {_sample(c['name'] for c in cats)}")
     missing = [c["name"] for c in cats if c["id"] not in mapping.values()]
     if missing:
@@ -205,8 +235,8 @@ def validate_coco(coco, source) -> dict:
         if not isinstance(im.get("file_name"), str) or not im["file_name"]:
             raise UserError(f"{where}: missing file_name")
         for key in ("width", "height"):
-            if _need_int(im, key, where) <= 0:
-                raise UserError(f"{where}: {key} must be positive")
+            if not 0 < _need_int(im, key, where) <= MAX_SIDE:
+                raise UserError(f"{where}: {key} must be in 1..{MAX_SIDE}, got {im[key]}")
         images[im["id"]] = {k: im[k] for k in ("id", "file_name", "width", "height")}
     names = set()
     for i, c in enumerate(coco["categories"]):
@@ -222,6 +252,10 @@ def validate_coco(coco, source) -> dict:
             raise UserError(f"{where}: duplicate category name {c['name']!r}")
         names.add(_norm(c["name"]))
         cats[c["id"]] = {"id": c["id"], "name": c["name"]}
+    anns = _clean_annotations(coco["annotations"], images, cats)
+    if anns is not None:
+        return {"images": list(images.values()), "annotations": anns, "categories": list(cats.values())}
+    anns = []  # something is wrong: walk the entries to name the first bad one
     seen = set()
     for i, a in enumerate(coco["annotations"]):
         where = f"{source}: annotation {_label(a, i)}"
@@ -238,17 +272,59 @@ def validate_coco(coco, source) -> dict:
         im = images[a["image_id"]]
         box = a.get("bbox")
         if not (isinstance(box, list) and len(box) == 4 and all(_is_number(v) for v in box)):
-            raise UserError(f"{where}: bbox must be [x, y, w, h] numbers, got {box!r}")
+            raise UserError(f"{where}: bbox must be [x, y, w, h] numbers, got {_short_repr(box)}")
         check_box(*box, im["width"], im["height"], where)
         area = a.get("area", box[2] * box[3])
         if not _is_number(area) or area < 0:
-            raise UserError(f"{where}: area must be a number >= 0, got {area!r}")
+            raise UserError(f"{where}: area must be a number >= 0, got {_short_repr(area)}")
         crowd = a.get("iscrowd", 0)
         if crowd not in (0, 1):
-            raise UserError(f"{where}: iscrowd must be 0 or 1, got {crowd!r}")
+            raise UserError(f"{where}: iscrowd must be 0 or 1, got {_short_repr(crowd)}")
         anns.append({"id": a["id"], "image_id": a["image_id"], "category_id": a["category_id"],
                      "bbox": [float(v) for v in box], "area": float(area), "iscrowd": int(crowd)})
     return {"images": list(images.values()), "annotations": anns, "categories": list(cats.values())}
+
+
+_NO_AREA = object()  # an annotation without "area" (its box's w x h is used)
+
+
+def _clean_annotations(anns: list, images: dict, cats: dict):
+    """The clean annotation list when every entry passes validate_coco's checks, else None.
+
+    The same checks as the entry-by-entry loop, on whole columns at once (a large set has
+    tens of thousands of boxes); on None the loop runs and words the first problem.
+    """
+    if not all(type(a) is dict for a in anns):
+        return None
+    try:
+        ids = [a["id"] for a in anns]
+        img = [a["image_id"] for a in anns]
+        cat = [a["category_id"] for a in anns]
+        boxes = [a["bbox"] for a in anns]
+        areas = [a.get("area", _NO_AREA) for a in anns]
+        crowds = [a.get("iscrowd", 0) for a in anns]
+        if (not set(map(type, chain(ids, img, cat))) <= {int} or len(set(ids)) != len(ids)
+                or not set(img) <= images.keys() or not set(cat) <= cats.keys()
+                or not set(map(type, boxes)) <= {list} or not set(map(len, boxes)) <= {4}
+                or not set(map(type, chain.from_iterable(boxes))) <= {int, float}
+                or not set(map(type, areas)) <= {int, float, object}  # object: _NO_AREA
+                or not set(crowds) <= {0, 1}):
+            return None
+        if ids and not (min(chain(ids, img, cat)) >= -INT_LIMIT and max(chain(ids, img, cat)) < INT_LIMIT):
+            return None  # an id beyond 64 bits: the entry-by-entry check names it
+        box = np.array(boxes, dtype=np.float64).reshape(-1, 4)
+        size = np.array([(images[i]["width"], images[i]["height"]) for i in img], dtype=np.float64).reshape(-1, 2)
+        area = np.array([box[j, 2] * box[j, 3] if v is _NO_AREA else v for j, v in enumerate(areas)], np.float64)
+    except (KeyError, TypeError, OverflowError):  # a missing key, an unhashable iscrowd, a huge number
+        return None
+    x, y, w, h = box.T
+    t = BOX_TOLERANCE
+    if not (np.isfinite(box).all() and np.isfinite(area).all() and (area >= 0).all()
+            and (w > 0).all() and (h > 0).all() and (x >= -t).all() and (y >= -t).all()
+            and (x + w <= size[:, 0] + t).all() and (y + h <= size[:, 1] + t).all()):
+        return None
+    return [{"id": i, "image_id": m, "category_id": c, "bbox": b, "area": float(ar), "iscrowd": int(cr)}
+            for i, m, c, b, ar, cr in zip(ids, img, cat, box.tolist(), area.tolist(), crowds)]
 
 
 def check_box(x, y, w, h, width, height, where):
@@ -264,6 +340,8 @@ def check_box(x, y, w, h, width, height, where):
 
 def _record(im: dict, root: Path, source) -> ImageRecord:
     name = im["file_name"]
+    if "\0" in name or any(len(part.encode("utf-8", "replace")) > 255 for part in Path(name).parts):
+        raise UserError(f"{source}: image {im['id']}: file_name {name[:60]!r} is not a usable file name")
     base = root.resolve()
     path = (base / name).resolve()
     if Path(name).is_absolute() or not path.is_relative_to(base):
@@ -272,11 +350,11 @@ def _record(im: dict, root: Path, source) -> ImageRecord:
     return ImageRecord(im["id"], name, path, im["width"], im["height"])
 
 
-def _check_image(rec: ImageRecord, source):
+def _check_image(rec: ImageRecord, source, max_pixels: int = DEFAULT_MAX_PIXELS):
     if not rec.path.is_file():
         raise UserError(f"{source}: image {rec.id}: missing image file {rec.path}")
     try:
-        pixels = read_image(rec.path)
+        pixels = read_image(rec.path, max_pixels)
     except UserError as exc:
         raise UserError(f"{source}: image {rec.id}: {exc}") from None
     h, w = pixels.shape[:2]
@@ -299,7 +377,7 @@ def _voc_to_coco(folder: Path) -> dict:
             raise UserError(f"{f}: not a readable Pascal VOC XML file ({exc})") from None
         try:
             name = node.findtext("filename").strip()
-            width, height = (int(float(node.findtext(f"size/{k}"))) for k in ("width", "height"))
+            width, height = (_voc_side(node.findtext(f"size/{k}"), f"{f}: size/{k}") for k in ("width", "height"))
             objects = []
             for j, obj in enumerate(node.findall("object")):
                 where = f"{f}: object {j}"
@@ -311,6 +389,8 @@ def _voc_to_coco(folder: Path) -> dict:
                                       for k in ("xmin", "ymin", "xmax", "ymax"))
                 except (TypeError, ValueError):
                     raise UserError(f"{where}: bndbox needs numeric xmin, ymin, xmax, ymax") from None
+                if not all(math.isfinite(v) for v in (x1, y1, x2, y2)):
+                    raise UserError(f"{where}: bndbox values must be finite numbers")
                 box = [x1 - 1, y1 - 1, x2 - x1 + 1, y2 - y1 + 1]
                 check_box(*box, width, height, where)
                 difficult = (obj.findtext("difficult") or "0").strip() == "1"
@@ -331,26 +411,54 @@ def _voc_to_coco(folder: Path) -> dict:
 
 
 def _read_json(path: Path):
+    return read_json(path, "annotation file")
+
+
+def _voc_side(text, where: str) -> int:
+    """A VOC size/width or size/height: a whole number of pixels in 1..MAX_SIDE (\"480.0\" is fine)."""
     try:
-        return json.loads(path.read_text())
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise UserError(f"{path}: not a readable JSON file ({exc})") from None
+        value = float(text)
+    except (TypeError, ValueError):
+        raise UserError(f"{where}: needs a number, got {text!r}") from None
+    if not (math.isfinite(value) and value == int(value) and 0 < value <= MAX_SIDE):
+        raise UserError(f"{where}: must be a whole number in 1..{MAX_SIDE}, got {text.strip()!r}")
+    return int(value)
 
 
 def _label(obj, i: int) -> str:
     """An entry's id for messages, or its list position when it has none."""
-    return str(obj["id"]) if isinstance(obj, dict) and "id" in obj else f"[{i}]"
+    if not isinstance(obj, dict) or "id" not in obj:
+        return f"[{i}]"
+    v = obj["id"]
+    if isinstance(v, str) or (isinstance(v, int) and abs(v) < 10**30):
+        return str(v)[:60]
+    return _short_repr(v)
 
 
 def _need_int(obj: dict, key: str, where: str) -> int:
     v = obj.get(key)
     if not isinstance(v, int) or isinstance(v, bool):
-        raise UserError(f"{where}: {key} must be an integer, got {v!r}")
+        raise UserError(f"{where}: {key} must be an integer, got {_short_repr(v)}")
+    if not -INT_LIMIT <= v < INT_LIMIT:
+        raise UserError(f"{where}: {key} must fit in 64 bits, got {_short_repr(v)}")
     return v
 
 
+def _short_repr(v) -> str:
+    try:
+        text = repr(v)
+    except ValueError:   # an int with more digits than Python prints
+        return "<a huge integer>"
+    return text if len(text) <= 60 else text[:57] + "..."
+
+
 def _is_number(v) -> bool:
-    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
+    if isinstance(v, bool) or not isinstance(v, (int, float)):
+        return False
+    try:
+        return math.isfinite(v) and abs(v) < 1e15   # beyond any pixel coordinate; keeps w*h finite
+    except OverflowError:   # an int too large for a float
+        return False
 
 
 def _norm(name) -> str:

@@ -25,7 +25,7 @@ import numpy as np
 from speedbench.errors import UserError
 
 SCENE_CLASSES = ("crate", "drum", "pylon")
-SPLITS = ("train", "heldout")
+SPLITS = ("train", "heldout", "calibration")   # appended: existing streams keep their index
 DEFAULT_WIDTH = 320
 DEFAULT_HEIGHT = 320
 

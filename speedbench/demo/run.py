@@ -11,6 +11,7 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
+from speedbench.demo.sizing import measure_throughput, size_fleet
 from speedbench.errors import UserError
 
 # The checkout's copy; speedbench/demo/demo.toml is a symlink to it, which a wheel build
@@ -36,8 +37,13 @@ def demo_profile_path() -> Path:
     return DEMO_PROFILE
 
 
+EXAMPLE_BUDGET_MS = 30.0   # the printed pick's latency budget when --budget-ms is not given
+
+
 def run_demo(out_dir=None, quiet: bool = False, budget_ms: float | None = None, stream=None) -> dict:
-    """Run (or resume) the demo sweep, then plot and report. Returns the paths written and the points."""
+    """Run (or resume) the demo sweep, measure throughput of its frontier configurations, size the
+    example fleet, then plot and report. Returns the paths written, the points, "throughput"
+    (what was measured under load) and "sizing" (the example fleet's table, or None)."""
     from speedbench.sweep import load_profile, load_run
     from speedbench.sweep.runner import run_sweep
 
@@ -51,9 +57,17 @@ def run_demo(out_dir=None, quiet: bool = False, budget_ms: float | None = None, 
     # A rerun also retries points that failed (for example a worker killed from outside).
     run_sweep(profile_path, out_dir=out, resume=resume, quiet=quiet, stream=stream, retry_failed=resume)
 
+    print("throughput of the frontier configurations (K = 1 and 2 workers, short runs):", file=stream)
+    throughput = measure_throughput(out, load_run(out), quiet=quiet)
+    sizing, error = None, ""
+    try:
+        sizing = size_fleet(out)
+    except UserError as exc:  # e.g. every load point failed: the rest of the demo still stands
+        error = str(exc)
     df = load_run(out)
     ok = int((df["status"] == "ok").sum())
-    return {"run": out, "points": df, "points_ok": ok, "points_failed": len(df) - ok, **render(out, df, budget_ms)}
+    return {"run": out, "points": df, "points_ok": ok, "points_failed": len(df) - ok,
+            "throughput": throughput, "sizing": sizing, "sizing_error": error, **render(out, df, budget_ms)}
 
 
 def family_table(df):

@@ -214,11 +214,14 @@ def _precision_at_recalls(tps: np.ndarray, fps: np.ndarray, npig: float):
     q = np.zeros((T, len(REC_THRS)))
     if nd == 0:
         return q, np.zeros(T)
-    tp = np.cumsum(tps, axis=1).astype(float)
-    fp = np.cumsum(fps, axis=1).astype(float)
+    # Counts as int32 (exact, and numpy's bool -> int64 default takes a slow casting path).
+    tp = np.cumsum(tps, axis=1, dtype=np.int32).astype(float)
+    fp = np.cumsum(fps, axis=1, dtype=np.int32).astype(float)
     rc = tp / npig
     pr = tp / (fp + tp + EPS)
-    pr = np.maximum.accumulate(pr[:, ::-1], axis=1)[:, ::-1]  # precision envelope
+    # Precision envelope (suffix maximum); non-negative doubles order like their bits as integers.
+    bits = pr.view(np.int64)[:, ::-1]
+    np.maximum.accumulate(bits, axis=1, out=bits)
     for t in range(T):
         inds = np.searchsorted(rc[t], REC_THRS, side="left")
         q[t] = np.where(inds < nd, pr[t, np.minimum(inds, nd - 1)], 0.0)

@@ -11,22 +11,25 @@ SUMMARY_KEYS = ("map", "map50", "map75", "map_small", "map_medium", "map_large",
                 "mar_1", "mar_10", "mar_100", "mar_small", "mar_medium", "mar_large")
 
 
-def coco_evaluate(gt, dets, bootstrap: int = 1000, seed: int = 0, confidence: float = 0.95) -> dict:
+def coco_evaluate(gt, dets, bootstrap: int = 1000, seed: int = 0, confidence: float = 0.95,
+                  threads: int = 1) -> dict:
     """Evaluate COCO-format detections against ground truth with the COCO protocol.
 
-    gt: a COCO dict (images / annotations / categories) or a Dataset (its .coco).
-    dets: a COCO results list [{image_id, category_id, bbox [x, y, w, h], score}].
+    gt: a COCO dict (images / annotations / categories), a Dataset (its .coco) or a GroundTruth.
+    dets: a COCO results list [{image_id, category_id, bbox [x, y, w, h], score}], or
+    Detections parsed against the same GroundTruth (results.read_detections).
     Returns the summary (SUMMARY_KEYS; -1 where undefined, as the reference),
     per_class {name: AP}, per_class_gt {name: non-crowd boxes}, n_images, n_detections, and map_ci95 = [lo, hi]: a
     percentile bootstrap over images (`bootstrap` resamples, seeded) at the given
     confidence. It reflects the sampling noise of the held-out set only, not
     annotation error or dataset shift; None when bootstrap=0 or mAP is undefined.
+    threads: how many threads the bootstrap may use (the figures do not depend on it).
     """
     if not isinstance(bootstrap, int) or isinstance(bootstrap, bool) or bootstrap < 0:
         raise UserError(f"bootstrap must be a whole number >= 0, not {bootstrap!r}")
     if not 0 < confidence < 1:
         raise UserError(f"confidence must be between 0 and 1, not {confidence!r}")
-    ground = GroundTruth(getattr(gt, "coco", gt))
+    ground = gt if isinstance(gt, GroundTruth) else GroundTruth(getattr(gt, "coco", gt))
     dt = dets if isinstance(dets, Detections) else parse_detections(dets, ground)
     matching = Matching(ground, dt)
     precision, recall = accumulate(matching, len(ground.cat_ids))
@@ -38,7 +41,7 @@ def coco_evaluate(gt, dets, bootstrap: int = 1000, seed: int = 0, confidence: fl
     out["n_detections"] = len(dt.score)
     out["map_ci95"] = None
     if bootstrap and out["map"] > -1 and ground.n_images:
-        maps = resampled_maps(matching, draw_weights(ground.n_images, bootstrap, seed))
+        maps = resampled_maps(matching, draw_weights(ground.n_images, bootstrap, seed), threads)
         out["map_ci95"] = percentile_interval(maps, confidence)
     out["bootstrap"] = {"resamples": bootstrap, "seed": seed, "confidence": confidence}
     return out

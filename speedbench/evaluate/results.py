@@ -6,12 +6,14 @@ when something is wrong do we walk the entries to name the first bad one.
 from __future__ import annotations
 
 import json
+import math
 from itertools import chain
 from numbers import Real
 from pathlib import Path
 
 import numpy as np
 
+from speedbench.data.jsonio import read_json
 from speedbench.errors import UserError
 from speedbench.evaluate.cocoeval import Detections, GroundTruth
 
@@ -21,16 +23,19 @@ _NUMBER_TYPES = (int, float, np.integer, np.floating)
 
 def load_detections(path, gt) -> list[dict]:
     """Read and validate a COCO results JSON file against ground truth (dict or Dataset)."""
-    path = Path(path)
-    try:
-        dets = json.loads(path.read_text())
-    except FileNotFoundError:
-        raise UserError(f"{path}: detections file not found") from None
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise UserError(f"{path}: not a readable JSON file ({exc})") from None
-    ground = gt if isinstance(gt, GroundTruth) else GroundTruth(getattr(gt, "coco", gt))
-    parse_detections(dets, ground, source=str(path))
+    # Bounded nesting and 64-bit integers; NaN / inf get their per-field message below.
+    dets = read_json(path, "detections file", allow_nonfinite=True)
+    parse_detections(dets, _ground(gt), source=str(Path(path)))
     return dets
+
+
+def read_detections(path, gt) -> Detections:
+    """Read and validate a COCO results JSON file straight into arrays (parsed once)."""
+    return parse_detections(read_json(path, "detections file", allow_nonfinite=True), _ground(gt), source=str(Path(path)))
+
+
+def _ground(gt) -> GroundTruth:
+    return gt if isinstance(gt, GroundTruth) else GroundTruth(getattr(gt, "coco", gt))
 
 
 def parse_detections(dets, gt: GroundTruth, source: str = "detections") -> Detections:
@@ -51,11 +56,11 @@ def parse_detections(dets, gt: GroundTruth, source: str = "detections") -> Detec
             if len(dets):
                 raise ValueError
             box = box.reshape(0, 4)
-    except (KeyError, TypeError, ValueError):
+        img_f, cat_f = np.array(img, float), np.array(cat, float)
+        score = np.array(score, np.float64)
+    except (KeyError, TypeError, ValueError, OverflowError):   # OverflowError: an int beyond float range
         _raise_first_bad(dets, source)
         raise  # pragma: no cover - _raise_first_bad always raises
-    img_f, cat_f = np.array(img, float), np.array(cat, float)
-    score = np.array(score, np.float64)
     checks = [
         (~np.isfinite(img_f) | (img_f != np.round(img_f)), "image_id must be an integer"),
         (~np.isin(img_f, gt.image_ids), "image_id is not an image of the ground truth"),
@@ -80,18 +85,29 @@ def _raise_first_bad(dets, source):
         if missing:
             raise UserError(f"{source}: detection [{i}]: missing field {missing[0]!r}")
         for f in ("image_id", "category_id", "score"):
+            if not isinstance(d[f], Real) or isinstance(d[f], bool):
+                raise UserError(f"{source}: detection [{i}]: {f} must be a number, got {_short(d[f])}")
             if not _is_number(d[f]):
-                raise UserError(f"{source}: detection [{i}]: {f} must be a number, got {d[f]!r}")
+                raise UserError(f"{source}: detection [{i}]: {f} must be a finite number in range, "
+                                f"got {_short(d[f])}")
         b = d["bbox"]
         if not isinstance(b, (list, tuple)) or len(b) != 4 or not all(_is_number(v) for v in b):
-            raise UserError(f"{source}: detection [{i}]: bbox must be [x, y, w, h] numbers, got {b!r}")
+            raise UserError(f"{source}: detection [{i}]: bbox must be [x, y, w, h] finite numbers, got {_short(b)}")
     raise UserError(f"{source}: malformed detections list")
 
 
 def _is_number(v) -> bool:
-    return isinstance(v, Real) and not isinstance(v, bool)
+    if not isinstance(v, Real) or isinstance(v, bool):
+        return False
+    try:
+        return math.isfinite(float(v))
+    except OverflowError:   # an int too large for a float
+        return False
 
 
 def _short(d) -> str:
-    text = json.dumps(d, default=str)
+    try:
+        text = json.dumps(d, default=str)
+    except (ValueError, RecursionError):
+        text = "<unprintable>"
     return text if len(text) <= 120 else text[:117] + "..."

@@ -1,7 +1,9 @@
 """Run an exported graph over a held-out set and score it.
 
-The graph resizes, normalises and post-processes internally (DEVELOPERS.md,
-"Graph I/O"), so its boxes are already in original-image pixels; every box is
+A zoo graph resizes, normalises and post-processes internally (DEVELOPERS.md,
+"Graph I/O"), so its boxes are already in original-image pixels. An external graph
+runs with its adapter (speedbench.adapt.AdaptedGraph: host preprocess, graph, host
+postprocess), the same call the measure backend "adapted" times; every box is
 checked to lie inside its image, which catches a graph that returns boxes in
 its resized frame. Raw outputs are cached per (graph sha256, dataset digest):
 intra-op threads only split the same arithmetic, which check_thread_invariance
@@ -24,29 +26,35 @@ OUTPUTS = ("boxes", "scores", "labels")
 _BOX_SLACK = 1.0  # px; boxes are clipped to the image inside the graph
 
 
-def detect_dataset(graph_path, dataset, label_map, intra_threads: int = 1, cache_dir=None) -> list[dict]:
+def detect_dataset(graph_path, dataset, label_map, intra_threads: int = 1, cache_dir=None,
+                   adapter=None, size: int = 0) -> list[dict]:
     """COCO results list for every image of the dataset (labels mapped by label_map).
 
     Model labels absent from label_map are dropped (classes the dataset does not have).
+    adapter (speedbench.adapt.Adapter, candidates already set) and size: run an external
+    graph through its host pre/postprocessing.
     """
-    raw = raw_detections(graph_path, dataset, intra_threads, cache_dir)
+    raw = raw_detections(graph_path, dataset, intra_threads, cache_dir, adapter, size)
     return to_results(raw, label_map)
 
 
-def raw_detections(graph_path, dataset, intra_threads: int = 1, cache_dir=None) -> dict:
+def raw_detections(graph_path, dataset, intra_threads: int = 1, cache_dir=None, adapter=None,
+                   size: int = 0) -> dict:
     """{image_id: (boxes xyxy float32 [N, 4], scores [N], labels int64 [N])}, cached on disk."""
     graph_path = _graph(graph_path)
     cache = None
     if cache_dir is not None:
         key = f"{_sha256(graph_path)[:20]}-{dataset.digest[:20]}"
+        if adapter is not None:
+            key += f"-a{adapter.digest()}-s{int(size)}"
         cache = Path(cache_dir) / f"detections-{key}.npz"
         if cache.is_file():
             try:
                 return _load_raw(cache)
             except (OSError, ValueError, KeyError):
                 pass  # a damaged cache entry is recomputed
-    session = _session(graph_path, intra_threads)
-    raw = {rec.id: _run(session, dataset.read(rec.id), graph_path, rec) for rec in dataset.images}
+    run = _runner(graph_path, intra_threads, adapter, size)
+    raw = {rec.id: _checked(run(img := dataset.read(rec.id)), img, graph_path, rec) for rec in dataset.images}
     if cache is not None:
         _save_raw(cache, raw)
     return raw
@@ -64,7 +72,8 @@ def to_results(raw: dict, label_map: dict) -> list[dict]:
     return out
 
 
-def check_thread_invariance(graph_path, dataset, label_map=None, threads=(1, 2), n_images: int = 4) -> dict:
+def check_thread_invariance(graph_path, dataset, label_map=None, threads=(1, 2), n_images: int = 4,
+                            adapter=None, size: int = 0) -> dict:
     """Run the first n_images with each intra-op thread count and compare the raw outputs.
 
     identical is True only if every output array is bit-for-bit equal; max_box_diff and
@@ -76,8 +85,8 @@ def check_thread_invariance(graph_path, dataset, label_map=None, threads=(1, 2),
     pixels = [dataset.read(rec.id) for rec in images]
     runs = []
     for n in threads:
-        session = _session(graph_path, n)
-        runs.append([_run(session, img, graph_path, rec) for img, rec in zip(pixels, images)])
+        run = _runner(graph_path, n, adapter, size)
+        runs.append([_checked(run(img), img, graph_path, rec) for img, rec in zip(pixels, images)])
     identical, box_diff, score_diff = True, 0.0, 0.0
     for other in runs[1:]:
         for a, b in zip(runs[0], other):
@@ -95,7 +104,7 @@ def check_thread_invariance(graph_path, dataset, label_map=None, threads=(1, 2),
 
 def evaluate_graph(graph_path, dataset, label_map=None, *, model=None, model_classes=None,
                    limit=None, intra_threads: int = 1, cache_dir=None, bootstrap: int = 1000,
-                   seed: int = 0, check_threads: bool = True) -> dict:
+                   seed: int = 0, check_threads: bool = True, adapter=None, size: int = 0) -> dict:
     """detect_dataset + coco_evaluate.
 
     label_map, else model_classes (names by label index), else model (a zoo id: its
@@ -103,7 +112,8 @@ def evaluate_graph(graph_path, dataset, label_map=None, *, model=None, model_cla
     first `limit` images. Adds map_ci_lo / map_ci_hi (NaN when undefined) and, unless
     check_threads=False, thread_invariance: the raw outputs of 4 images under 1 and 2
     intra-op threads compared (see check_thread_invariance), the evidence that one
-    accuracy figure serves every thread setting of this graph.
+    accuracy figure serves every thread setting of this graph. adapter, size: an external
+    graph, run through its adapter (see detect_dataset).
     """
     from speedbench.data.datasets import category_map
 
@@ -115,12 +125,14 @@ def evaluate_graph(graph_path, dataset, label_map=None, *, model=None, model_cla
         label_map = category_map(dataset, model_classes)
     if limit:
         dataset = dataset.first(int(limit))
-    dets = detect_dataset(graph_path, dataset, label_map, intra_threads, cache_dir)
-    result = coco_evaluate(dataset.coco, dets, bootstrap=bootstrap, seed=seed)
+    dets = detect_dataset(graph_path, dataset, label_map, intra_threads, cache_dir, adapter, size)
+    # The bootstrap may use the cores the caller grants the graph (the figures do not depend on it).
+    result = coco_evaluate(dataset.coco, dets, bootstrap=bootstrap, seed=seed, threads=max(1, int(intra_threads)))
     lo, hi = result["map_ci95"] or (math.nan, math.nan)
     result.update(map_ci_lo=lo, map_ci_hi=hi, label_map={int(k): int(v) for k, v in label_map.items()})
     if check_threads:
-        result["thread_invariance"] = check_thread_invariance(graph_path, dataset, label_map)
+        result["thread_invariance"] = check_thread_invariance(graph_path, dataset, label_map,
+                                                              adapter=adapter, size=size)
     return result
 
 
@@ -140,7 +152,17 @@ def _graph(path) -> Path:
     return path
 
 
-def _session(graph_path: Path, intra_threads: int):
+def _runner(graph_path: Path, intra_threads: int, adapter=None, size: int = 0):
+    """image -> (boxes, scores, labels): the zoo graph's own I/O, or the external graph's adapter."""
+    if adapter is None:
+        session = _session(graph_path, intra_threads)
+        return lambda image: _outputs(session, image)
+    from speedbench.adapt import AdaptedGraph
+
+    return AdaptedGraph(graph_path, adapter, _session(graph_path, intra_threads, check_io=False), size=size)
+
+
+def _session(graph_path: Path, intra_threads: int, check_io: bool = True):
     import onnxruntime as ort
 
     if not isinstance(intra_threads, int) or isinstance(intra_threads, bool) or intra_threads < 1:
@@ -156,14 +178,22 @@ def _session(graph_path: Path, intra_threads: int):
         raise UserError(f"{graph_path}: not a loadable ONNX graph ({type(exc).__name__})") from None
     names = [o.name for o in session.get_outputs()]
     inputs = [i.name for i in session.get_inputs()]
-    if inputs[:1] != ["image"] or names[:3] != list(OUTPUTS):
+    if check_io and (inputs[:1] != ["image"] or names[:3] != list(OUTPUTS)):
         raise UserError(f"{graph_path}: expected input 'image' and outputs boxes, scores, labels; "
                         f"graph has inputs {inputs} and outputs {names}")
     return session
 
 
 def _run(session, image: np.ndarray, graph_path, rec):
-    boxes, scores, labels = session.run(list(OUTPUTS), {"image": to_input(image)})[:3]
+    return _checked(_outputs(session, image), image, graph_path, rec)
+
+
+def _outputs(session, image: np.ndarray):
+    return session.run(list(OUTPUTS), {"image": to_input(image)})[:3]
+
+
+def _checked(detections, image: np.ndarray, graph_path, rec):
+    boxes, scores, labels = detections
     boxes = np.asarray(boxes, np.float32).reshape(-1, 4)
     h, w = image.shape[:2]
     if boxes.size and (boxes.min() < -_BOX_SLACK or (boxes[:, [0, 2]].max() > w + _BOX_SLACK)

@@ -6,8 +6,12 @@ Public face:
 - model_facts(model_id, size, proposals, weights) -> {params, gmacs, gmacs_per_stage, onnx_mib?}
 - ort_session(path, intra_threads=1): a quiet ONNX Runtime CPU session
 - default_cache_dir(): $SPEEDBENCH_CACHE or ~/.cache/speedbench/exports
+- quantise_graph(fp32_record, QuantSettings(...), calibration_dataset, cache_dir=None) -> ExportRecord
+  (precision "int8", static QDQ, cached by content; speedbench.export.quantise), agreement(fp32, int8)
 """
 from speedbench.export.facts import model_facts
 from speedbench.export.onnx_export import ExportRecord, default_cache_dir, export_onnx, ort_session
+from speedbench.export.quantise import PRECISIONS, QuantSettings, agreement, quantise_graph
 
-__all__ = ["export_onnx", "ExportRecord", "model_facts", "ort_session", "default_cache_dir"]
+__all__ = ["export_onnx", "ExportRecord", "model_facts", "ort_session", "default_cache_dir",
+           "quantise_graph", "QuantSettings", "PRECISIONS", "agreement"]

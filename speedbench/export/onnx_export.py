@@ -15,6 +15,7 @@ from pathlib import Path
 from speedbench.errors import UserError
 from speedbench.system import atomic_write
 from speedbench.zoo import get_spec, weights_digest
+from speedbench.zoo.weights import installed_version
 
 EXPORT_FORMAT = 2          # bump when the graph layout or the record changes
 MIN_OPSET, DEFAULT_OPSET = 11, 17
@@ -40,6 +41,8 @@ class ExportRecord:
     versions: dict = dataclasses.field(default_factory=dict)
     notes: list = dataclasses.field(default_factory=list)
     seconds: float = 0.0
+    precision: str = "fp32"     # "int8": a quantised copy of an fp32 export (export/quantise.py)
+    quantisation: dict = dataclasses.field(default_factory=dict)   # int8: settings, calibration set
 
     def to_dict(self) -> dict:
         d = dataclasses.asdict(self)
@@ -69,40 +72,18 @@ def ort_session(path, intra_threads: int = 1):
 
 
 def _check_opset(opset) -> int:
-    import onnx
-
-    top = onnx.defs.onnx_opset_version()
     try:
         value = int(opset)
     except (TypeError, ValueError):
         raise UserError(f"--opset must be a whole number, not {opset!r}") from None
+    if MIN_OPSET <= value <= DEFAULT_OPSET:
+        return value  # every onnx release we support knows these (no import on a cache hit)
+    import onnx
+
+    top = onnx.defs.onnx_opset_version()
     if not MIN_OPSET <= value <= top:
         raise UserError(f"--opset {value} is out of range: use {MIN_OPSET}..{top}")
     return value
-
-
-def installed_version(dist: str) -> str:
-    """`dist.__version__` without importing it (importing torch costs seconds on a cache hit).
-
-    The package's version.py holds the full version with its local label (2.14.1+cu130);
-    importlib.metadata gives only the public part (2.14.1), so it is the fallback. Reading the
-    file keeps the cache key exactly what `torch.__version__` was, so existing entries still hit.
-    """
-    import re
-    from importlib import metadata
-
-    try:
-        dist_info = metadata.distribution(dist)
-    except metadata.PackageNotFoundError:
-        return "none"
-    try:
-        text = Path(dist_info.locate_file(f"{dist}/version.py")).read_text()
-        found = re.search(r"^__version__\s*(?::\s*str\s*)?=\s*['\"]([^'\"]+)['\"]", text, re.M)
-        if found:
-            return found.group(1)
-    except OSError:
-        pass
-    return dist_info.version
 
 
 def export_key(model_id, size, proposals, weights, opset, num_classes=None) -> tuple[str, str]:

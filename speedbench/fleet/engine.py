@@ -1,6 +1,9 @@
 """The optional engine (Dask distributed): importing it, reaching a scheduler, reading host labels."""
 from __future__ import annotations
 
+import re
+import socket
+
 from speedbench.errors import UserError
 from speedbench.fleet.task import LABEL_PREFIX, LABEL_RE, labels_of
 
@@ -24,12 +27,56 @@ def connect(cluster, timeout_s: float = 20.0):
     address = getattr(cluster, "scheduler_address", cluster)
     if not isinstance(address, str) or not address.strip():
         raise UserError(f"--cluster: expected a scheduler address such as tcp://HOST:8786, got {address!r}")
+    if not isinstance(cluster, str) or not address.startswith("inproc://"):
+        probe(address, min(timeout_s, 4.0))
     try:
         client = distributed.Client(address, timeout=f"{timeout_s}s", set_as_default=False)
     except (OSError, TimeoutError, ValueError) as exc:
         raise UserError(f"--cluster {address}: cannot reach the scheduler ({' '.join(str(exc).split())[:200]})") \
             from None
     return client, True
+
+
+ADDRESS_RE = re.compile(r"(?:(tcp|tls|ws|wss|ucx)://)?(\[[0-9a-fA-F:.]+\]|[A-Za-z0-9._-]+):(\d{1,5})/?")
+
+
+def check_address(address: str) -> tuple[str, str, int]:
+    """(scheme, host, port) of a scheduler address [scheme://]HOST:PORT, or a one-line UserError."""
+    m = ADDRESS_RE.fullmatch(address.strip())
+    if not m or not 0 < int(m.group(3)) < 65536:
+        raise UserError(f"--cluster: {address!r} is not a scheduler address such as tcp://HOST:8786")
+    return m.group(1) or "tcp", m.group(2).strip("[]"), int(m.group(3))
+
+
+def probe(address: str, timeout_s: float = 5.0) -> None:
+    """Fail fast, in one line, when no scheduler answers at `address`.
+
+    Resolves the host, then opens one connection and exchanges the engine's handshake.
+    Without this the scheduler client retries for its whole timeout and, on giving up,
+    its destructor prints a second TimeoutError at interpreter exit."""
+    import asyncio
+
+    from distributed.comm import connect as comm_connect
+
+    scheme, host, port = check_address(address)
+    if scheme in ("tcp", "tls"):
+        try:
+            socket.getaddrinfo(host, port)
+        except socket.gaierror as exc:
+            raise UserError(f"--cluster {address}: cannot resolve host {host!r} ({exc.strerror})") from None
+
+    async def hello():
+        comm = await comm_connect(address if "://" in address else f"tcp://{address}", timeout=timeout_s)
+        await comm.close()
+
+    try:
+        asyncio.run(asyncio.wait_for(hello(), timeout_s + 1))
+    except (OSError, TimeoutError, asyncio.TimeoutError) as exc:   # refused, unreachable, timed out
+        why = " ".join(str(exc).split())[:160] or type(exc).__name__
+        raise UserError(f"--cluster {address}: cannot reach the scheduler ({why})") from None
+    except Exception:  # something answered that does not speak the scheduler's protocol
+        why = "something answered there, but not a Dask scheduler"
+        raise UserError(f"--cluster {address}: cannot reach the scheduler ({why})") from None
 
 
 def workers_by_label(client) -> dict[str, list[dict]]:

@@ -196,7 +196,7 @@ class _Fleet:
             if h.out.exists() and (not h.out.is_dir() or any(h.out.iterdir())):
                 raise UserError(f"{h.out}: exists and is not an empty directory; choose another output directory")
             return
-        with RunDir.open(h.out) as rd:
+        with RunDir.open(h.out, readonly=True) as rd:
             try:
                 stored = parse_profile(rd.profile_text(), str(h.out / "profile.toml"))
             except UserError:
@@ -298,7 +298,7 @@ class _Fleet:
         _, planned = h.futures.pop(fut.key)
         if fut.status == "finished":
             got = fut.result()
-            self._store(h, got["row"], got["samples"])
+            self._store(h, got["row"], got["samples"], got.get("invocations"))
         elif fut.status == "error" and _killed_worker(fut):
             if fut.key in self.started:
                 reason = f"host {h.label} lost during the point (its worker died while running it: {_reason(fut)})"
@@ -323,8 +323,8 @@ class _Fleet:
         if not h.futures and h.state == "running":
             self._finish(h)
 
-    def _store(self, h: _Host, row: dict, samples) -> None:
-        h.rd.write_point(row, samples)
+    def _store(self, h: _Host, row: dict, samples, invocations=None) -> None:
+        h.rd.write_point(row, samples, invocations)
         status = "ok" if row.get("status") == "ok" else "failed"
         h.counts[status] += 1
         h.fps.update(baselines([row]))

@@ -110,11 +110,11 @@ def measure_on_host(text: str, source: str, label: str, planned, baseline=None, 
     try:
         context = _context(_profile(text, source), label, needs_data=planned.config["backend"] != "synthetic")
         got = run_point(PointJob(planned, baseline_fps=baseline_fps), context)
-        row, samples = got.row, got.samples
+        row, samples, index = got.row, got.samples, got.invocations
         if got.graph.path:
             row["host_graph"] = got.graph.path   # the graph stays on the host (its export cache)
     except UserError as exc:            # the host's dataset cannot be read
-        row, samples = build_row(planned, PreparedGraph(), label, reason=str(exc)), []
+        row, samples, index = build_row(planned, PreparedGraph(), label, reason=str(exc)), [], None
     finished = time.time()
     row["wall_s"] = round(finished - started, 3)
     row["started_unix"], row["finished_unix"] = round(started, 3), round(finished, 3)
@@ -122,7 +122,8 @@ def measure_on_host(text: str, source: str, label: str, planned, baseline=None, 
         row["note"] = "; ".join(([row["note"]] if row.get("note") else [])
                                 + [f"{busy} other measurement worker(s) were running on this host when the point "
                                    f"started"])
-    return {"row": row, "samples": [float(x) for x in samples]}
+    # index: the invocation of each sample (the profile's [repetitions] invocations, one after the other)
+    return {"row": row, "samples": [float(x) for x in samples], "invocations": index}
 
 
 def _context(profile, label: str, needs_data: bool):

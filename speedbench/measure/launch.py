@@ -15,13 +15,16 @@ import signal
 import subprocess
 import sys
 import tempfile
+import time
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
 
 from speedbench.errors import UserError
 from speedbench.measure.point import Point, Policy
-from speedbench.measure.result import PointResult
+from speedbench.measure.invocations import Replicated
+from speedbench.measure.result import PointResult, combine_invocations
 from speedbench.measure.worker import THREAD_VARS
 
 _SIGNAL_REASONS = {
@@ -69,14 +72,54 @@ def signal_reason(returncode: int) -> str:
     return _SIGNAL_REASONS.get(sig, f"killed by {sig.name}")
 
 
-def measure_point(point: Point, images, policy: Policy | None = None, timeout_s: float = 600,
-                  python: str | None = None) -> PointResult:
-    """Measure one point in its own worker process; never raises for a worker failure.
+# Pause between two worker processes, so the next one does not start while the last one's
+# exit (freeing its memory, the OS reclaiming its pages) still takes a core. See README, method.
+SETTLE_S = 0.5
+# The worker's invocation index, in its environment (the synthetic backend can fail on one of them).
+INVOCATION_VAR = "SPEEDBENCH_INVOCATION"
 
+
+def measure_point(point: Point, images, policy: Policy | None = None, timeout_s: float = 600,
+                  invocation: int = 0, python: str | None = None) -> PointResult:
+    """Measure one point in its own worker process (one invocation); never raises for a worker failure.
+
+    invocation: the index this process has among the point's invocations; every sample
+    of the result carries it (result.measurement.invocation).
     python: the interpreter the worker is started with (default: this one). An upgrade check
     measures the same point under two environments' interpreters (speedbench.sweep.interpreters
     checks them first).
     """
+    result = _measure_once(point, images, policy, timeout_s, invocation, python)
+    result.extra["invocation"] = int(invocation)
+    m = result.measurement
+    if m is not None:
+        result.measurement = Replicated(m.samples_ms, [int(invocation)] * m.n, confidence=m.confidence,
+                                        noisy_cov=m.noisy_cov, rel_ci=m.rel_ci)
+    return result
+
+
+def measure_invocations(point: Point, images, policy: Policy | None = None, invocations: int = 1,
+                        timeout_s: float = 600, settle_s: float = SETTLE_S) -> PointResult:
+    """Measure one point in `invocations` fresh worker processes, one after the other; combined result.
+
+    Only the first invocation runs the stage profile (the others time only). A sweep
+    interleaves the invocations of all its points instead (speedbench.sweep); this is the
+    one-point form for the API and `speedbench measure`.
+    """
+    if not isinstance(invocations, int) or invocations < 1:
+        raise UserError(f"measure: invocations must be an integer >= 1, got {invocations!r}")
+    policy = policy or Policy()
+    results = []
+    for i in range(invocations):
+        if i:
+            time.sleep(settle_s)
+        results.append(measure_point(point, images, policy if i == 0 else replace(policy, profile_stages=False),
+                                     timeout_s, invocation=i))
+    return combine_invocations(results)
+
+
+def _measure_once(point: Point, images, policy: Policy | None, timeout_s: float, invocation: int = 0,
+                  python: str | None = None) -> PointResult:
     policy = policy or Policy()
     point.validate()
     policy.validate()
@@ -95,7 +138,8 @@ def measure_point(point: Point, images, policy: Policy | None = None, timeout_s:
         (tmp / "spec.json").write_text(json.dumps(spec))
         with open(tmp / "stderr.txt", "wb") as err:
             proc = subprocess.Popen([python or sys.executable, "-m", "speedbench.measure.worker", str(tmp / "spec.json")],
-                                    env=thread_env(point), stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
+                                    env={**thread_env(point), INVOCATION_VAR: str(int(invocation))},
+                                    stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
                                     stderr=err, start_new_session=True)
             timed_out = False
             try:

@@ -6,7 +6,7 @@ from pathlib import Path
 
 from speedbench.errors import UserError
 from speedbench.measure.backends import NAMES as BACKENDS
-from speedbench.schema import CONFIG_COLUMNS, point_id
+from speedbench.schema import CONFIG_COLUMNS, PRECISIONS, SPIN_VALUES, point_id
 from speedbench.system import cores_available
 
 EXEC_MODES = ("sequential", "parallel")
@@ -15,16 +15,17 @@ ORT_ONLY_KNOBS = ("exec_mode", "opt_level")   # "" on every other backend (schem
 
 
 def uses_ort_knobs(backend: str) -> bool:
-    """Only ONNX Runtime has an execution mode and a graph optimisation level."""
-    return backend == "ort"
+    """Only ONNX Runtime has an execution mode and a graph optimisation level ("adapted" runs on it too)."""
+    return backend in ("ort", "adapted")
 
 
 @dataclass
 class Point:
-    """One configuration. Fields up to `concurrency` are its identity (schema.CONFIG_COLUMNS).
+    """One configuration. Fields up to `precision` are its identity (schema.CONFIG_COLUMNS).
 
-    `graph` (the ONNX file for backend "ort") and `options` (settings of the
-    synthetic test backend) are not part of the identity: the same configuration
+    `graph` (the ONNX file for backends "ort" and "adapted"), `options` (settings of the
+    synthetic test backend) and `adapter` (how backend "adapted" feeds and decodes an
+    external graph) are not part of the identity: the same configuration
     measured from a re-exported file, or with an injected slowdown, is the same point.
     """
 
@@ -39,14 +40,17 @@ class Point:
     opt_level: str = "all"
     affinity: int = 0
     concurrency: int = 1
+    precision: str = "fp32"      # "int8": `graph` is the quantised graph (the sweep prepares it)
+    spin_wait: str = "on"
     env: str = ""
     graph: str | None = None
     options: dict = field(default_factory=dict)
+    adapter: dict = field(default_factory=dict)   # backend "adapted": the adapter table (adapt.Adapter.to_dict)
 
     def __post_init__(self):
         # The one place ORT-only knobs are blanked: plan, stored row and point_id(row) then agree.
         if not uses_ort_knobs(self.backend):
-            self.exec_mode, self.opt_level = "", ""
+            self.exec_mode, self.opt_level, self.spin_wait = "", "", ""
 
     def config(self) -> dict:
         return {c: getattr(self, c) for c in CONFIG_COLUMNS}
@@ -78,15 +82,27 @@ class Point:
         cores = cores_available()
         if self.affinity > cores:
             raise UserError(f"point field 'affinity': {self.affinity} cores requested, {cores} available")
-        if self.backend == "ort":
+        if self.precision not in PRECISIONS:
+            raise UserError(f"point field 'precision': {self.precision!r} is not one of {', '.join(PRECISIONS)}")
+        if self.precision != "fp32" and self.backend == "eager":
+            raise UserError("point field 'precision': the eager backend runs fp32 only")
+        if self.backend in ("ort", "adapted"):
             if self.exec_mode not in EXEC_MODES:
                 raise UserError(f"point field 'exec_mode': {self.exec_mode!r} is not one of {', '.join(EXEC_MODES)}")
             if self.opt_level not in OPT_LEVELS:
                 raise UserError(f"point field 'opt_level': {self.opt_level!r} is not one of {', '.join(OPT_LEVELS)}")
+            if self.spin_wait not in SPIN_VALUES:
+                raise UserError(f"point field 'spin_wait': {self.spin_wait!r} is not one of {', '.join(SPIN_VALUES)}")
             if not self.graph:
-                raise UserError("point field 'graph': backend 'ort' needs the path of an ONNX file")
+                raise UserError(f"point field 'graph': backend {self.backend!r} needs the path of an ONNX file")
             if not Path(self.graph).is_file():
                 raise UserError(f"{self.graph}: ONNX graph file not found")
+        if self.backend == "adapted":
+            from speedbench.adapt import parse_adapter
+
+            if not self.adapter:
+                raise UserError("point field 'adapter': backend 'adapted' needs the adapter of the external graph")
+            parse_adapter(self.adapter, f"{self.graph}: adapter")
         if not isinstance(self.options, dict):
             raise UserError(f"point field 'options': expected a table/dict, got {type(self.options).__name__}")
         if self.backend == "synthetic":
@@ -122,6 +138,8 @@ class Policy:
     profile_stages: bool = True
     profile_reps: int = 5
     memory_every: int = 5       # sample process RSS every N timed runs (outside the timed region)
+    subgraph_check: bool = False  # also time each stage's sub-graph alone (measure.subgraphs); costs time
+    subgraph_reps: int = 20
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -136,7 +154,7 @@ class Policy:
 
     def validate(self) -> None:
         for name in ("warmup_min", "warmup_max", "warmup_window", "min_reps", "max_reps", "profile_reps",
-                     "memory_every"):
+                     "memory_every", "subgraph_reps"):
             value = getattr(self, name)
             if not isinstance(value, int) or isinstance(value, bool) or value < 0:
                 raise UserError(f"repetition policy {name!r}: expected an integer >= 0, got {value!r}")

@@ -5,9 +5,12 @@ import json
 import math
 from dataclasses import dataclass, field
 
+import numpy as np
+
+from speedbench.measure.invocations import Replicated
 from speedbench.measure.point import Point
 from speedbench.measure.stats import Measurement
-from speedbench.measure.timebase import stage_columns
+from speedbench.measure.timebase import stage_columns, subgraph_columns
 from speedbench.schema import LATENCY_COLUMNS, MEMORY_COLUMNS
 
 NAN = float("nan")
@@ -24,6 +27,7 @@ class PointResult:
     profiling_overhead: float = NAN         # profiled median / unprofiled median - 1
     memory: dict = field(default_factory=dict)      # MEMORY_COLUMNS (+ details) in MiB
     extra: dict = field(default_factory=dict)
+    failed_invocations: list = field(default_factory=list)   # "invocation i: reason" of each failed one
 
     @property
     def ok(self) -> bool:
@@ -36,6 +40,7 @@ class PointResult:
         row["status"] = self.status
         row["reason"] = self.reason
         row.update({c: NAN for c in LATENCY_COLUMNS})      # same columns for failed points
+        row["ci_scope"] = ""
         if self.measurement is not None:
             row.update(self.measurement.summary())
             p50 = row["lat_p50_ms"]
@@ -43,11 +48,14 @@ class PointResult:
         # stage_X_ms in the unprofiled time base; the profiled pass's own ms under stage_X_profiled_ms
         median = self.measurement.median if self.measurement is not None else NAN
         row.update(stage_columns(self.stages, median))
+        row.update(subgraph_columns(self.extra.get("subgraphs")))
         row["profiled_ms"] = self.profiled_ms
         row["profiling_overhead"] = self.profiling_overhead
         for col in MEMORY_COLUMNS:
             row[col] = float(self.memory.get(col, NAN))
         row.update(probe_columns(self.extra.get("probe")))
+        row["invocations_failed"] = len(self.failed_invocations)
+        row["invocation_errors"] = "; ".join(self.failed_invocations)
         return row
 
     def to_dict(self) -> dict:
@@ -56,21 +64,24 @@ class PointResult:
         return {
             "point": self.point.to_dict(), "status": self.status, "reason": self.reason,
             "samples_ms": None if m is None else m.samples_ms.tolist(),
+            "invocation": None if m is None else getattr(m, "invocation", np.zeros(m.n, dtype=int)).tolist(),
             "measurement_settings": None if m is None else
             {"confidence": m.confidence, "noisy_cov": m.noisy_cov, "rel_ci": m.rel_ci},
             "stages": self.stages, "profiled_ms": _json_float(self.profiled_ms),
             "profiling_overhead": _json_float(self.profiling_overhead),
-            "memory": self.memory, "extra": self.extra,
+            "memory": self.memory, "extra": self.extra, "failed_invocations": self.failed_invocations,
         }
 
     @classmethod
     def from_dict(cls, d: dict) -> "PointResult":
         samples = d.get("samples_ms")
-        m = Measurement(samples, **(d.get("measurement_settings") or {})) if samples else None
+        invocation = d.get("invocation") or [0] * len(samples or [])
+        m = Replicated(samples, invocation, **(d.get("measurement_settings") or {})) if samples else None
         return cls(point=Point.from_dict(d["point"]), status=d["status"], reason=d.get("reason", ""),
                    measurement=m, stages=d.get("stages") or {},
                    profiled_ms=_float(d.get("profiled_ms")), profiling_overhead=_float(d.get("profiling_overhead")),
-                   memory=d.get("memory") or {}, extra=d.get("extra") or {})
+                   memory=d.get("memory") or {}, extra=d.get("extra") or {},
+                   failed_invocations=list(d.get("failed_invocations") or []))
 
     def __repr__(self) -> str:
         head = f"PointResult({self.point.model} size={self.point.size} {self.point.backend} " \
@@ -90,6 +101,53 @@ def probe_columns(probe: dict | None) -> dict:
         out[f"probe_{phase}_ms"] = float(ms) if isinstance(ms, (int, float)) else NAN
     out["probe_raw"] = json.dumps(probe, sort_keys=True) if probe else ""
     return out
+def combine_invocations(results: list[PointResult]) -> PointResult:
+    """One point's result from its R invocations (each a PointResult whose samples carry its index).
+
+    Samples are pooled with their invocation index (the intervals then come from the
+    hierarchical bootstrap, measure.invocations); failed invocations are counted and their
+    reasons kept; the point fails only when every invocation failed. Memory: the peak is the
+    largest of any invocation, the other figures the median. Stages: mean over the invocations
+    that profiled (usually only the first does).
+    """
+    if not results:
+        raise ValueError("no invocations to combine")
+    ok = [r for r in results if r.ok and r.measurement is not None]
+    failed = [f"invocation {_index(r, i)}: {r.reason}" for i, r in enumerate(results) if not (r.ok and r.measurement)]
+    if not ok:
+        first = results[0]
+        return PointResult(point=first.point, status="failed", extra=first.extra, failed_invocations=failed,
+                           reason=f"all {len(results)} invocation(s) failed; first: {first.reason}")
+    m0 = ok[0].measurement
+    samples = np.concatenate([r.measurement.samples_ms for r in ok])
+    index = np.concatenate([getattr(r.measurement, "invocation", np.full(r.measurement.n, i))
+                            for i, r in enumerate(ok)])
+    measurement = Replicated(samples, index, confidence=m0.confidence, noisy_cov=m0.noisy_cov, rel_ci=m0.rel_ci)
+    profiled = [r for r in ok if r.stages]
+    stages = {k: float(np.mean([r.stages.get(k, 0.0) for r in profiled])) for r in profiled for k in r.stages}
+    memory = dict(ok[0].memory)
+    for col in ("rss_imports_mib", "rss_loaded_mib"):
+        vals = [r.memory[col] for r in ok if col in r.memory]
+        if vals:
+            memory[col] = float(np.median(vals))
+    peaks = [r.memory["rss_peak_mib"] for r in ok if "rss_peak_mib" in r.memory]
+    if peaks:
+        memory["rss_peak_mib"] = float(max(peaks))
+    extra = dict(ok[0].extra)
+    extra["invocation_p50_ms"] = [float(np.median(r.measurement.samples_ms)) for r in ok]
+    extra["seconds"] = float(sum(r.extra.get("seconds", 0.0) for r in ok))
+    extra["stop"] = ",".join(sorted({str(r.extra["stop"]) for r in ok if "stop" in r.extra}))
+    extra["warmup_runs"] = int(np.median([r.extra.get("warmup_runs", 0) for r in ok]))
+    extra["warmup_settled"] = all(bool(r.extra.get("warmup_settled", True)) for r in ok)
+    return PointResult(point=ok[0].point, measurement=measurement, stages=stages,
+                       profiled_ms=float(np.mean([r.profiled_ms for r in profiled])) if profiled else NAN,
+                       profiling_overhead=(float(np.mean([r.profiling_overhead for r in profiled]))
+                                           if profiled else NAN),
+                       memory=memory, extra=extra, failed_invocations=failed)
+
+
+def _index(result: PointResult, position: int) -> int:
+    return int(result.extra.get("invocation", position))
 
 
 def _json_float(x):

@@ -12,7 +12,7 @@ from __future__ import annotations
 import math
 
 from speedbench.schema import (STAGE_METHOD, STAGE_METHOD_RESCALED, STAGES, stage_column,
-                               stage_profiled_column, stage_share_column)
+                               stage_profiled_column, stage_share_column, stage_subgraph_column)
 
 NAN = float("nan")
 
@@ -34,6 +34,17 @@ def stage_columns(profiled: dict, median_ms: float, method: str = STAGE_METHOD) 
         row[stage_column(s)] = share * median_ms if has else NAN
         row[stage_profiled_column(s)] = float(v) if _finite(v) else NAN
     row["stage_method"] = method if ok else ""
+    return row
+
+
+def subgraph_columns(result: dict | None) -> dict:
+    """Columns of the opt-in sub-graph check (measure.subgraphs); NaN where it did not run."""
+    result = result if isinstance(result, dict) else {}
+    stages = result.get("stages") or {}
+    row = {stage_subgraph_column(s): float(stages[s]) if _finite(stages.get(s)) else NAN for s in STAGES}
+    for col, key in (("subgraph_sum_ms", "sum_ms"), ("subgraph_whole_ms", "whole_ms"),
+                     ("subgraph_residual", "residual")):
+        row[col] = float(result[key]) if _finite(result.get(key)) else NAN
     return row
 
 

@@ -19,7 +19,7 @@ from speedbench.system import atomic_write
 
 # Libraries whose import cost belongs to "after imports" for each backend.
 IMPORTS = {"ort": ("numpy", "onnxruntime", "onnx"), "eager": ("numpy", "torch", "torchvision"),
-           "synthetic": ("numpy",)}
+           "synthetic": ("numpy",), "adapted": ("numpy", "onnxruntime", "onnx")}
 
 
 def pin(cores: int) -> list[int]:
@@ -90,6 +90,12 @@ def run_worker(spec: dict) -> dict:
             runs = sorted(prof.get("run_ms") or [result.profiled_ms])
             result.profiling_overhead = float(np.median(runs)) / measurement.median - 1
             extra["profile"] = prof
+    if policy.subgraph_check and hasattr(runner, "subgraphs"):
+        # Opt-in: the stage split checked without the profiler (each stage's sub-graph timed alone).
+        try:
+            extra["subgraphs"] = runner.subgraphs(inputs, policy.subgraph_reps)
+        except Exception as exc:  # the check is extra; its failure must not cost the point
+            extra["subgraphs"] = {"error": f"{type(exc).__name__}: {' '.join(str(exc).split())}"[:300]}
     runner.close()
     probe["end"] = run_probe()
     extra["probe"] = probe

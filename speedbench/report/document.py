@@ -11,8 +11,11 @@ import pandas as pd
 
 from speedbench.analyse import add_costs, combine, frontier, pick
 from speedbench.analyse.common import latency_col, split_ok
+from speedbench.analyse.precision import INT8_FLAGS, int8_flags, precision_pairs
 from speedbench.analyse.runs import Run
 from speedbench.report import plots
+from speedbench.report.replication import invocations_of, replication_lines
+from speedbench.report.machine import efficiency_blocks, peak_rows
 from speedbench.schema import STAGES
 
 SAFETY = ("These are benchmark figures from one machine and a small held-out image set. They are no "
@@ -119,6 +122,7 @@ def build(runs, budget_ms=None, latency: str = "p50", title: str | None = None,
 
     blocks.append(("h2", "Stage breakdown"))
     blocks.append(("figure", "stages", plots.plot_stages(ok), _stage_caption(ok)))
+    blocks.extend(efficiency_blocks(ok))
 
     blocks.append(("h2", "Latency distributions"))
     blocks.append(("figure", "latency", plots.plot_latency_distributions(samples, ok), "Raw samples per configuration."))
@@ -136,15 +140,23 @@ def build(runs, budget_ms=None, latency: str = "p50", title: str | None = None,
     else:
         blocks.append(("p", "Accuracy unavailable: every point used untrained weights."))
 
+    pairs = precision_pairs(ok, col) if len(ok) else pd.DataFrame()
+    if len(pairs):
+        blocks.extend(_precision_blocks(pairs, runs, stat))
+
     blocks.append(("h2", "Memory"))
     blocks.append(("figure", "memory", plots.plot_memory(ok), "Worker resident memory per configuration."))
 
     blocks.append(("h2", "All points"))
-    blocks.append(("table", ["configuration", "p50", "p90", "p99", "CoV", "n", "fps", "peak MiB", "mAP", "noisy"],
-                   [[r["label"], _num(r.get("lat_p50_ms"), 2), _num(r.get("lat_p90_ms"), 2), _num(r.get("lat_p99_ms"), 2),
-                     _num(r.get("lat_cov"), 3), _num(r.get("n_samples"), 0), _num(r.get("fps"), 1),
+    reps = invocations_of(ok)
+    blocks.append(("table", ["configuration", "p50 [95 % CI]", "p90", "p99", "CoV", "R", "between CoV", "n", "fps",
+                             "peak MiB", "mAP", "noisy"],
+                   [[r["label"], f"{_num(r.get('lat_p50_ms'), 2)} [{_num(r.get('lat_p50_ci_lo_ms'), 2)}, "
+                     f"{_num(r.get('lat_p50_ci_hi_ms'), 2)}]", _num(r.get("lat_p90_ms"), 2),
+                     _num(r.get("lat_p99_ms"), 2), _num(r.get("lat_cov"), 3), f"{int(reps[i])}",
+                     _num(r.get("between_cov"), 3), _num(r.get("n_samples"), 0), _num(r.get("fps"), 1),
                      _num(r.get("rss_peak_mib"), 0), _num(r.get("map"), 3), "yes" if _flag(r.get("noisy")) else ""]
-                    for _, r in ok.sort_values(col).iterrows()]))
+                    for i, r in ok.sort_values(col).iterrows()]))
     if len(failed):
         blocks.append(("p", f"{len(failed)} configuration(s) failed and are excluded:"))
         blocks.append(("table", ["configuration", "reason"], [[r["label"], r["reason"]] for _, r in failed.iterrows()]))
@@ -279,6 +291,7 @@ def _env_rows(run: Run) -> list[list[str]]:
     pk = env.get("packages") or {}
     if pk:
         rows.append(["packages", ", ".join(f"{k} {v}" for k, v in sorted(pk.items()))])
+    rows.extend(peak_rows(m))
     te = env.get("thread_env") or {}
     rows.append(["thread environment", ", ".join(f"{k}={v}" for k, v in sorted(te.items())) or "(none set)"])
     return [[str(a), str(b)] for a, b in rows]
@@ -306,8 +319,10 @@ def _noise_lines(ok) -> list[str]:
         lines.append(f"Run-to-run spread (coefficient of variation): median {cov.median():.1%}, worst {cov.max():.1%}.")
     noisy = int(ok["noisy"].fillna(False).astype(bool).sum()) if "noisy" in ok.columns else 0
     lines.append(f"{noisy} point(s) flagged noisy (high spread): treat their figures with extra care.")
-    lines.append("Latency intervals are distribution-free confidence intervals of each percentile (order "
-                 "statistics); accuracy intervals are bootstrap intervals over the held-out images.")
+    lines += replication_lines(ok)
+    lines.append("Latency intervals are 95 % confidence intervals of each percentile (hierarchical bootstrap "
+                 "with several invocations, order statistics of one process otherwise); accuracy intervals are "
+                 "bootstrap intervals over the held-out images.")
     if "per_image_file" in ok.columns and ok["per_image_file"].astype(str).ne("").any():
         lines.append("Accuracy comparisons between configurations (dominated / tied, the pick's runners-up) use a "
                      "paired bootstrap of the mAP difference over the same images; \"tied\" on accuracy means "
@@ -336,10 +351,10 @@ def _caveats(ok, trained, hosts, runs, priced=False) -> list[str]:
            "No extrapolation: sizes, proposal counts and thread settings that were not measured are not "
            "covered; latency is not linear in input size or thread count.",
            "The machine may be shared: points flagged noisy, and ties on the frontier, can swap on a rerun.",
-           "Latency intervals describe the runs of one worker process. The same configuration measured again "
-           "in a new process can land outside them (thread placement, other tenants of a virtual machine): "
-           "rerun the sweep and check the two runs with `speedbench compare` before relying on a small "
-           "difference."]
+           "Latency intervals measured with several invocations include process-to-process variation on this "
+           "host at the time of the run; a busier or quieter period, a new library version or another host "
+           "can still move them. Points measured in one process describe that process only. Rerun the sweep "
+           "and check the two runs with `speedbench compare` before relying on a small difference."]
     untrained = ok["untrained"].fillna(False).astype(bool).any() if "untrained" in ok.columns else not trained
     if untrained or not trained:
         out.append("Untrained weights: accuracy is unavailable for those points, and their latency may not "
@@ -386,6 +401,39 @@ def _outside_training(ok, runs) -> list[str]:
                    "accuracy there is measured, not assumed, but nothing in training prepared the model for those "
                    "sizes, which can explain a sharp drop.")
     return out
+
+
+def _precision_blocks(pairs, runs, stat) -> list:
+    """The "fp32 vs int8" section: latency ratio, stages, mAP change [CI], agreement, sizes."""
+    blocks = [("h2", "fp32 vs int8")]
+    for r in runs:
+        flags = int8_flags(r.meta.get("env"))
+        where = f" ({r.name})" if len(runs) > 1 else ""
+        blocks.append(("p", f"CPU INT8 instructions{where}: {', '.join(flags)}." if flags else
+                       f"CPU INT8 instructions{where}: none of {', '.join(INT8_FLAGS)} in the run's fingerprint; "
+                       "8-bit products run on the wider fp32/AVX2 units, so expect less from int8 than a "
+                       "CPU with VNNI or AMX gives."))
+    rows = []
+    for _, r in pairs.iterrows():
+        faster = [s for s in STAGES if r.get(f"ratio_{s}", np.nan) < 0.95]
+        lo, hi = _num(r["map_change_ci_lo"], 3), _num(r["map_change_ci_hi"], 3)
+        change = _num(r["map_change"], 3)
+        rows.append([r["label"].removesuffix(" / int8"), _num(r["fp32_ms"], 2), _num(r["int8_ms"], 2),
+                     _num(r["ratio"], 2), _num(r.get("ratio_backbone"), 2), ", ".join(faster) or "none",
+                     _num(r["map_fp32"], 3), f"{change} [{lo}, {hi}]" if change and lo and hi else (change or "n/a"),
+                     _num(r["agree_matched_fraction"], 2),
+                     f"{_num(r['model_file_mib_fp32'], 1)} -> {_num(r['model_file_mib'], 1)}",
+                     f"{_num(r['rss_peak_mib_fp32'], 0)} -> {_num(r['rss_peak_mib'], 0)}"])
+    blocks.append(("table", ["configuration", f"fp32 {stat} ms", f"int8 {stat} ms", "int8/fp32",
+                             "backbone int8/fp32", "stages >5 % faster", "fp32 mAP", "mAP change [paired CI]",
+                             "detections matched", "file MiB", "peak MiB"], rows))
+    blocks.append(("p", "Ratios below 1: int8 is faster. The mAP change is int8 minus fp32 on the same held-out "
+                        "images, with a paired bootstrap interval; detections matched is the share of detections "
+                        "that int8 and fp32 agree on (same label, IoU >= 0.5). The int8 graphs were calibrated on "
+                        "separate images (fingerprints in meta.json)."))
+    blocks.append(("warn", "An int8 graph detects differently from its fp32 graph by design: check the mAP change "
+                           "and the agreement on your own data before a safety-relevant deployment."))
+    return blocks
 
 
 def _num(v, digits) -> str:

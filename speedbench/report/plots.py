@@ -5,6 +5,7 @@ Every function takes DataFrames, returns the Figure, and saves it when given a p
 """
 from __future__ import annotations
 
+import itertools
 from pathlib import Path
 
 import numpy as np
@@ -13,7 +14,7 @@ from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 
 from speedbench.analyse import frontier as _frontier
-from speedbench.analyse.common import bounds, split_ok
+from speedbench.analyse.common import bounds, precision_of, split_ok
 from speedbench.schema import STAGES
 
 # Families told apart by marker shape as well as colour (readable in greyscale and by
@@ -75,17 +76,22 @@ def plot_frontier(df: pd.DataFrame, path=None, x: str = "lat_p50_ms", y: str = "
     yv, ylo, yhi = bounds(with_acc, y)
     fam = with_acc["family"] if "family" in with_acc.columns else pd.Series("", index=with_acc.index)
     status = with_acc["frontier_status"].to_numpy()
-    # One errorbar call per (family, status): far fewer artists than one per point.
-    for family in pd.unique(fam):
+    prec = precision_of(with_acc).to_numpy()
+    # One errorbar call per (family, precision, status): far fewer artists than one per point.
+    for family, precision in itertools.product(pd.unique(fam), pd.unique(prec)):
         marker, colour = FAMILY_STYLE.get(family, OTHER_STYLE)
         for st in ("dominated", "tied", "frontier"):
-            k = np.flatnonzero((fam.to_numpy() == family) & (status == st))
+            k = np.flatnonzero((fam.to_numpy() == family) & (prec == precision) & (status == st))
             if not len(k):
                 continue
+            fill = "white" if st == "dominated" else colour
             ax.errorbar(xv[k], yv[k], xerr=[xv[k] - xlo[k], xhi[k] - xv[k]], yerr=[yv[k] - ylo[k], yhi[k] - yv[k]],
-                        fmt=marker, ms=8 if st == "frontier" else 6, ls="none",
-                        mfc="white" if st == "dominated" else colour, mec="black" if st == "tied" else colour,
-                        color=colour, alpha=0.55 if st == "dominated" else 1.0, elinewidth=0.8, capsize=2)
+                        fmt=marker, ms=8 if st == "frontier" else 6, ls="none", mfc=fill,
+                        mec="black" if st == "tied" else colour, color=colour,
+                        alpha=0.55 if st == "dominated" else 1.0, elinewidth=0.8, capsize=2,
+                        # int8: half-filled (the other half a light tint, also when dominated)
+                        **({"fillstyle": "left", "mfcalt": "#dddddd" if st == "dominated" else "white"}
+                           if precision != "fp32" else {}))
     front = with_acc[with_acc["frontier_status"] == "frontier"].sort_values(x, ascending=minimize_x)
     if len(front) > 1:
         ax.step(front[x], front[y], where="post", color="black", lw=1.2, zorder=0)
@@ -95,6 +101,9 @@ def plot_frontier(df: pd.DataFrame, path=None, x: str = "lat_p50_ms", y: str = "
     handles += [Line2D([], [], marker="o", color="grey", mfc="grey", ls="", label="frontier (filled)"),
                 Line2D([], [], marker="o", color="black", mfc="grey", ls="", label="tied within noise (black edge)"),
                 Line2D([], [], marker="o", color="grey", mfc="white", ls="", label="dominated (hollow)")]
+    if (prec != "fp32").any():
+        handles += [Line2D([], [], marker="o", color="grey", mfc="grey", fillstyle="left", mfcalt="white", ls="",
+                           label="int8 (half-filled); fp32 full")]
     ax.legend(handles=handles, fontsize=8, loc="best")
     ax.set_xlabel(axis_name(x))
     ax.set_ylabel(axis_name(y))

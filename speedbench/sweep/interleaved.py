@@ -12,9 +12,12 @@ started with its own interpreter (sweep/env_graphs.py): an upgrade changes the w
 the exporter included. With same_graph, the old environment's graph file is measured in both
 (isolating the runtime); each environment still scores it, so changed detections show.
 
-Both sides write into one run directory: an `invocations` table (one row per worker run) and
-one points row per configuration and environment (`env` "A" / "B", with `env_python` and
-`env_fingerprint`), pooled over that side's invocations.
+Both sides write into one run directory: an `env_invocations` table (one row per worker run,
+with its samples) and one points row per configuration and environment (`env` "A" / "B", with
+`env_python` and `env_fingerprint`), pooled over that side's invocations with the hierarchical
+intervals of replicated invocations (measure.invocations); each pooled sample keeps its
+invocation index (the pair) in the samples table. (The sweep's own `invocations` table holds
+per-process results awaiting their point's row, a different shape; an interleaved run leaves it empty.)
 """
 from __future__ import annotations
 
@@ -29,7 +32,7 @@ from pathlib import Path
 
 from speedbench.errors import UserError
 from speedbench.measure.result import NAN
-from speedbench.measure.stats import Measurement
+from speedbench.measure.invocations import Replicated
 from speedbench.sweep import steps
 from speedbench.sweep.env import environment_fingerprint
 from speedbench.sweep.interleave import schedule
@@ -133,10 +136,10 @@ def _run(rd: RunDir, profile, points, order, envs, same_graph, notes, quiet, str
             progress.start(label)
             got = run_point(PointJob(side), contexts[slot.side])
             inv = _tag(got.row, envs[slot.side], slot)
-            others = rd.invocations(point_id=inv["point_id"])
+            others = rd.env_invocations(point_id=inv["point_id"])
             others = [x for x in others if x["invocation"] != inv["invocation"]]
-            pooled = _pooled_samples(others, inv, got.samples)
-            rd.write_invocation(_pooled_row(others, inv, pooled), pooled, inv, got.samples)
+            pooled, index = _pooled_samples(others, inv, got.samples)
+            rd.write_env_invocation(_pooled_row(others, inv, pooled, index), pooled, index, inv, got.samples)
             progress.done(label, got.row)
     finally:
         progress.close()
@@ -147,7 +150,7 @@ def _done_pairs(rd: RunDir) -> set:
     """(config id, pair) whose two halves are stored; a half-done pair is measured again whole,
     so its two invocations stay adjacent in time."""
     halves: dict = {}
-    for inv in rd.invocations():
+    for inv in rd.env_invocations():
         halves.setdefault((inv.get("config_id"), inv.get("pair")), set()).add(inv.get("env"))
     return {k for k, v in halves.items() if set(SIDES) <= v}
 
@@ -157,16 +160,18 @@ def _tag(row: dict, env: Interpreter, slot) -> dict:
             "invocation": slot.pair, "pair": slot.pair, "slot": slot.seq, "config_id": slot.point_id}
 
 
-def _pooled_samples(others: list[dict], inv: dict, samples) -> list:
-    """All samples of this side's ok invocations (the points row's samples), in invocation order.
+def _pooled_samples(others: list[dict], inv: dict, samples) -> tuple[list, list]:
+    """All samples of this side's ok invocations (the points row's samples), in invocation order,
+    and each sample's invocation index (the samples table's `invocation` column).
     others: the side's other stored invocations of this point."""
     runs = [(x["invocation"], x["samples_ms"]) for x in others if x.get("status") == "ok"]
     if inv.get("status") == "ok":
         runs.append((inv["invocation"], list(samples)))
-    return [ms for _, run in sorted(runs, key=lambda t: t[0]) for ms in run]
+    runs.sort(key=lambda t: t[0])
+    return [ms for _, run in runs for ms in run], [int(k) for k, run in runs for _ in run]
 
 
-def _pooled_row(others: list[dict], inv: dict, pooled: list) -> dict:
+def _pooled_row(others: list[dict], inv: dict, pooled: list, index: list) -> dict:
     """The side's points row: this invocation's row, with latency pooled over its ok invocations.
 
     invocations: how many succeeded; between_cov: CoV of their medians (the spread between
@@ -178,12 +183,9 @@ def _pooled_row(others: list[dict], inv: dict, pooled: list) -> dict:
     row["invocations"] = len(ok)
     if not ok:
         return row
-    row.update(Measurement(pooled).summary())
+    # the same hierarchical intervals over invocations as a replicated sweep row (issue 16)
+    row.update(Replicated(pooled, index).summary())
     row["fps"] = 1000.0 / row["lat_p50_ms"] if row["lat_p50_ms"] > 0 else NAN
-    meds = [float(x["lat_p50_ms"]) for x in ok if isinstance(x.get("lat_p50_ms"), (int, float))]
-    if len(meds) > 1:
-        mean = sum(meds) / len(meds)
-        row["between_cov"] = math.sqrt(sum((m - mean) ** 2 for m in meds) / (len(meds) - 1)) / mean
     probes = [json.loads(x["probe_raw"]) for x in ok if isinstance(x.get("probe_raw"), str) and x["probe_raw"]]
     row["probe_raw"] = json.dumps(probes) if probes else ""
     for phase in ("start", "end"):

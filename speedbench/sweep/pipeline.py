@@ -20,8 +20,10 @@ from pathlib import Path
 
 from speedbench import schema
 from speedbench.errors import UserError, one_line
+from speedbench.measure.launch import SETTLE_S
 from speedbench.measure.backends import get_backend
-from speedbench.sweep import steps
+from speedbench.measure.peak import ensure_peaks, peak_for
+from speedbench.sweep import external, quantised, steps
 from speedbench.sweep.plan import GraphKey, PlannedPoint
 from speedbench.zoo import trained_sizes
 
@@ -37,6 +39,7 @@ class PreparedGraph:
     facts: dict = field(default_factory=dict)       # params, gmacs, model_file_mib, opset, parity_passed
     accuracy: dict = field(default_factory=dict)    # schema.ACCURACY_COLUMNS (+ digest, thread check)
     notes: list = field(default_factory=list)
+    run_meta: dict = field(default_factory=dict)    # what the run's meta.json keeps of it (int8: quantisation)
 
 
 class GraphStore:
@@ -81,6 +84,10 @@ class GraphStore:
     def _prepare(self, key: GraphKey) -> PreparedGraph:
         from speedbench.export import export_onnx
 
+        entry = external.entry_of(self.profile, key.model)
+        if entry is not None:
+            return self._prepare_external(key, entry)
+
         try:
             # proposals 0 means "no such knob": the exporter keeps the model's own setting.
             record = export_onnx(key.model, weights=key.weights, size=key.size, proposals=key.proposals or None,
@@ -89,19 +96,65 @@ class GraphStore:
             return PreparedGraph(ok=False, reason=f"export: {exc}")
         except Exception as exc:  # an exporter crash is a failed graph, not a failed sweep
             return PreparedGraph(ok=False, reason=f"export: {type(exc).__name__}: {one_line(exc)}")
+        fp32 = record
+        if key.precision == "int8" and record.ok:
+            self.status(f"quantise {key.model} {key.size}px")
+            try:
+                record = quantised.quantised_record(record, self.profile, self.cache, self.dataset)
+            except UserError as exc:
+                return PreparedGraph(ok=False, reason=f"quantisation: {exc}")
         if not record.ok:
             return PreparedGraph(ok=False, reason=f"export: {record.reason}")
         graph = PreparedGraph(path=str(link_into(Path(record.path), self.exports_dir)), facts=_facts(record),
                               notes=list(record.notes or []))
-        return self.score(key, graph)
+        if record is not fp32:   # its export record (settings, calibration set) goes with the run
+            link_into(Path(record.path).with_suffix(".json"), self.exports_dir)
+            graph.run_meta["quantisation"] = quantised.run_meta(self.profile, self.cache, self.dataset)
+        if key.weights == "none" or not self.profile.accuracy or self.dataset is None:
+            return graph
+        self.status(f"accuracy {key.model} {key.size}px")
+        graph.accuracy = self._accuracy(record.path, key, graph.notes)
+        if record is not fp32 and graph.accuracy:
+            # the fp32 graph of the same configuration, on the same images (its accuracy is cached)
+            try:
+                graph.accuracy.update(quantised.change_vs_fp32(
+                    fp32.path, record.path, self._accuracy(fp32.path, key, []), graph.accuracy, self.dataset,
+                    self.profile, self.cache / "accuracy", steps.detections_dir(self.cache)))
+            except UserError as exc:
+                graph.notes.append(f"change vs fp32 not measured: {exc}")
+        return graph
 
     def score(self, key: GraphKey, graph: PreparedGraph) -> PreparedGraph:
-        """Accuracy of a prepared graph on the profile's dataset (with this process's runtime)."""
+        """Accuracy of a graph prepared elsewhere, on the profile's dataset (with this process's
+        runtime): an interleaved run scores each environment's graph with its own interpreter."""
         if not graph.ok or key.weights == "none" or not self.profile.accuracy or self.dataset is None:
             return graph
         self.status(f"accuracy {key.model} {key.size}px")
-        graph.accuracy = steps.accuracy(Path(graph.path), key.model, self.profile, self.dataset, self.cache,
-                                        graph.notes)
+        graph.accuracy = self._accuracy(graph.path, key, graph.notes)
+        return graph
+
+    def _accuracy(self, path, key: GraphKey, notes: list) -> dict:
+        acc = steps.accuracy(Path(path), key.model, self.profile, self.dataset, self.cache, notes)
+        if acc.get("per_image_key") and self.per_image_dir is not None:
+            link_into(self.cache / "accuracy" / f"{acc['per_image_key']}.npz", self.per_image_dir)
+        return acc
+
+
+    def _prepare_external(self, key: GraphKey, entry) -> PreparedGraph:
+        """An external graph: the user's file (no export), its facts, accuracy through its adapter."""
+        try:
+            src = Path(entry.onnx)
+            # named by content: a file replaced under the same name is a new graph, never a stale link
+            linked = link_into(src, self.exports_dir, f"{src.stem}-{steps._file_digest(src)}{src.suffix}")
+            graph = PreparedGraph(path=str(linked), facts=external.graph_facts(entry),
+                                  notes=external.graph_notes(entry))
+        except UserError as exc:
+            return PreparedGraph(ok=False, reason=f"external graph: {exc}")
+        if not self.profile.accuracy or self.dataset is None:
+            return graph
+        self.status(f"accuracy {key.model} {key.size}px")
+        graph.accuracy = steps.accuracy(src, key.model, self.profile, self.dataset, self.cache, graph.notes,
+                                        external.evaluation_args(entry, key.size, key.proposals))
         if graph.accuracy.get("per_image_key") and self.per_image_dir is not None:
             link_into(self.cache / "accuracy" / f"{graph.accuracy['per_image_key']}.npz", self.per_image_dir)
         return graph
@@ -111,18 +164,29 @@ def _facts(record) -> dict:
     """Export facts as row columns: params, gmacs, file size, opset, parity with torch eager."""
     facts = dict(record.facts or {})
     out = {k: facts[k] for k in ("params", "gmacs") if facts.get(k) is not None}
+    per_stage = facts.get("gmacs_per_stage")
+    if isinstance(per_stage, dict):
+        # achieved GMAC/s per stage = these / the stage's ms (analyse.efficiency); a stage the
+        # counter saw no matrix op in has 0 (NaN would read as "not recorded")
+        for stage in schema.STAGES:
+            out[schema.stage_gmacs_column(stage)] = float(per_stage.get(stage) or 0.0)
     out["model_file_mib"] = round(Path(record.path).stat().st_size / 2**20, 3)
     out["opset"] = record.opset
     parity = record.parity or {}
     if "passed" in parity:
         out["parity_passed"] = bool(parity["passed"])
+    if record.precision != "fp32":
+        q = record.quantisation or {}
+        out["calibration_fingerprint"] = (q.get("calibration") or {}).get("fingerprint")
+        out["quantisation"] = ", ".join(f"{k}={v}" for k, v in q.items()
+                                        if k in ("method", "per_channel", "op_types", "reduce_range"))
     return out
 
 
-def link_into(path: Path, directory: Path) -> Path:
+def link_into(path: Path, directory: Path, name: str | None = None) -> Path:
     """Keep a copy of a file in `directory` (a hard link when possible: no extra space)."""
     directory.mkdir(parents=True, exist_ok=True)
-    target = directory / path.name
+    target = directory / (name or path.name)
     if target.exists():
         return target
     tmp = directory / f".{path.name}.{os.getpid()}.tmp"
@@ -151,6 +215,8 @@ class PointContext:
     policy: object                   # measure.Policy
     host: str
     load: LoadSettings | None = None
+    # this host's fp32 matmul peak (measure.peak), filled in for each thread count a point needs
+    peaks: dict | None = None
     python: str | None = None        # the workers' interpreter (default: this one; see sweep/interleaved.py)
 
 
@@ -167,6 +233,7 @@ class PointOutcome:
     samples: list
     measured: bool          # False: nothing ran (graph missing, a configuration this host cannot run)
     graph: PreparedGraph
+    invocations: list | None = None     # the invocation index of each sample (None: all 0)
 
 
 def make_context(profile, dataset, exports_dir, host: str, per_image_dir=None, status=None, on_prepared=None,
@@ -179,8 +246,23 @@ def make_context(profile, dataset, exports_dir, host: str, per_image_dir=None, s
 
 def run_point(job: PointJob, context: PointContext) -> PointOutcome:
     """Prepare the point's graph, measure it in its own worker(s), build its row. Never raises
-    for a failure of the point: the row then has status "failed" and the reason."""
+    for a failure of the point: the row then has status "failed" and the reason.
+
+    A one-stream point runs its profile's `invocations` worker processes one after the other
+    (the local sweep interleaves them over all points instead: run_invocation + finish_point).
+    """
     planned = job.planned
+    if planned.config["concurrency"] == 1 and context.load is None:
+        outcome = []
+        for i in range(max(1, int(getattr(context.profile, "invocations", 1)))):
+            if i:
+                time.sleep(SETTLE_S)
+            got = run_invocation(job, context, i)
+            if isinstance(got, str):
+                outcome = got
+                break
+            outcome.append(got)
+        return finish_point(job, context, outcome)
     graph, result, reason = PreparedGraph(), None, ""
     t0 = time.monotonic()
     try:
@@ -189,14 +271,25 @@ def run_point(job: PointJob, context: PointContext) -> PointOutcome:
         if not graph.ok and planned.config["backend"] != "eager":   # eager builds its model itself
             reason = graph.reason
         else:
+            context.peaks = _peaks(context.peaks, planned.config)
             result = _measure(job, context, graph)
     except UserError as exc:
         reason = str(exc)
     except Exception as exc:  # a harness bug on one point must not cost the others
         reason = f"{type(exc).__name__}: {one_line(exc)}"
     row = build_row(planned, graph, context.host, result=result, reason=reason)
+    if result is not None and planned.config["backend"] != "synthetic":
+        row["matmul_peak_gmac_s"] = peak_for(context.peaks, int(planned.config["intra_threads"]))
     row["wall_s"] = round(time.monotonic() - t0, 3)
     return PointOutcome(row=row, samples=_samples(result), measured=result is not None, graph=graph)
+
+
+def _peaks(peaks: dict | None, config: dict) -> dict | None:
+    """The host's matmul peak at 1 thread and at this point's thread count, measured once per
+    context (a local sweep measures every thread count up front and records it in meta.json)."""
+    if config["backend"] == "synthetic":
+        return peaks
+    return ensure_peaks(peaks, {1, int(config["intra_threads"])})
 
 
 def _measure(job: PointJob, context: PointContext, graph: PreparedGraph):
@@ -204,8 +297,10 @@ def _measure(job: PointJob, context: PointContext, graph: PreparedGraph):
     from speedbench.measure.load import add_curve
 
     c, profile = job.planned.config, context.profile
+    entry = external.entry_of(profile, c["model"]) if c["backend"] == "adapted" else None
     point = dataclasses.replace(job.planned.point, graph=graph.path,
-                                options=dict(profile.synthetic) if c["backend"] == "synthetic" else {})
+                                options=dict(profile.synthetic) if c["backend"] == "synthetic" else {},
+                                **(external.point_fields(entry, c["proposals"]) if entry is not None else {}))
     if c["concurrency"] == 1 and context.load is None:
         return measure_point(point, context.images, context.policy, profile.timeout_s, python=context.python)
     load = context.load or LoadSettings(seconds=None)
@@ -214,6 +309,52 @@ def _measure(job: PointJob, context: PointContext, graph: PreparedGraph):
     if job.curve:
         add_curve(result, point, context.images, job.curve, **kwargs)
     return result
+
+
+def run_invocation(job: PointJob, context: PointContext, index: int):
+    """One worker process (invocation `index`) of a one-stream point: its PointResult, or a str
+    saying why no worker could run (the graph failed; a harness error). Only invocation 0 runs
+    the stage profile: the others time only."""
+    from speedbench.measure import measure_point
+
+    planned, profile = job.planned, context.profile
+    try:
+        graph = context.graphs.prepare(planned)
+        if not graph.ok and planned.config["backend"] != "eager":   # eager builds its model itself
+            return graph.reason
+        point = dataclasses.replace(planned.point, graph=graph.path,
+                                    options=dict(profile.synthetic) if planned.config["backend"] == "synthetic" else {})
+        policy = context.policy if index == 0 else dataclasses.replace(context.policy, profile_stages=False)
+        t0 = time.monotonic()
+        result = measure_point(point, context.images, policy, profile.timeout_s, invocation=index,
+                               python=context.python)
+        result.extra["wall_s"] = round(time.monotonic() - t0, 3)
+        return result
+    except UserError as exc:
+        return str(exc)
+    except Exception as exc:  # a harness bug on one point must not cost the others
+        return f"{type(exc).__name__}: {one_line(exc)}"
+
+
+def finish_point(job: PointJob, context: PointContext, outcome) -> PointOutcome:
+    """The row of a one-stream point from its invocations (PointResults, combined by the
+    hierarchical bootstrap), or a failed row from the reason none ran."""
+    from speedbench.measure.result import combine_invocations
+
+    graph = context.graphs.prepare(job.planned)     # prepared already: served from the store
+    if isinstance(outcome, str):
+        row = build_row(job.planned, graph, context.host, reason=outcome)
+        row["wall_s"] = 0.0
+        return PointOutcome(row=row, samples=[], measured=False, graph=graph)
+    result = combine_invocations(list(outcome))
+    row = build_row(job.planned, graph, context.host, result=result)
+    if job.planned.config["backend"] != "synthetic":
+        context.peaks = _peaks(context.peaks, job.planned.config)
+        row["matmul_peak_gmac_s"] = peak_for(context.peaks, int(job.planned.config["intra_threads"]))
+    row["wall_s"] = round(sum(float(r.extra.get("wall_s", 0.0)) for r in outcome), 3)
+    m = result.measurement
+    return PointOutcome(row=row, samples=_samples(result), measured=True, graph=graph,
+                        invocations=None if m is None else m.invocation.tolist())
 
 
 def _samples(result) -> list:

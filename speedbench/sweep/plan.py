@@ -1,6 +1,6 @@
 """Plan: a profile expanded into the exact list of points to measure.
 
-Expansion is the cross product models x sizes x proposals x backends x
+Expansion is the cross product models x sizes x proposals x precisions x backends x
 opt_levels x threads x concurrency, after mapping the values that do not apply
 to a combination (so two combinations that mean the same measurement become one
 point), and skipping the ones that cannot be measured here. Every mapping or
@@ -9,6 +9,7 @@ skip leaves a note; none is an error.
 from __future__ import annotations
 
 import dataclasses
+import itertools
 from collections import Counter
 from dataclasses import dataclass, field
 from typing import NamedTuple
@@ -36,6 +37,7 @@ class GraphKey(NamedTuple):
     weights: str
     size: int
     proposals: int
+    precision: str = "fp32"      # "int8": the fp32 export quantised (sweep.quantised)
 
 
 @dataclass(frozen=True)
@@ -65,12 +67,13 @@ class PlannedPoint:
         for c in ("size", "proposals", "intra_threads", "inter_threads", "affinity"):
             config[c] = int(config[c] or 0)
         config["concurrency"] = int(config["concurrency"] or 1)
-        for c in ("exec_mode", "opt_level"):
+        for c in ("exec_mode", "opt_level", "spin_wait"):
             if not config[c]:
-                config.pop(c)   # Point's defaults (ORT) or blank (other backends)
+                config.pop(c)   # Point's defaults (ORT; spin_wait: ORT's own, as old rows ran) or blank (others)
         point = Point(**config)
         return cls(point=point, family=row.get("family") or "",
-                   graph_key=GraphKey(point.model, point.weights, point.size, point.proposals))
+                   graph_key=GraphKey(point.model, point.weights, point.size, point.proposals,
+                                            point.precision))
 
     @property
     def label(self) -> str:
@@ -107,6 +110,46 @@ def synthetic_spec(model_id: str):
                      arch="", notes="harness test backend, not a detector")
 
 
+def external_spec(entry):
+    """A ModelSpec standing for an external graph, so the plan maps its knobs like a zoo model's.
+
+    native size: the fixed input's size, else the adapter's native_size; the proposal knob is
+    the host's pre-NMS top-k (nms.candidates) when NMS runs on the host, else there is none.
+    """
+    from speedbench.zoo.spec import ModelSpec
+
+    ad = entry.adapter
+    return ModelSpec(id=entry.id, builder="", family=entry.family, native_size=ad.native_size,
+                     detections_per_img=ad.nms.detections, score_thresh=ad.nms.score_threshold,
+                     default_proposals=ad.nms.candidates if ad.host_nms else 0, classes=tuple(entry.classes),
+                     num_classes=len(entry.classes), min_size=0, arch="",
+                     notes=f"external graph {entry.onnx}")
+
+
+def _is_zoo_id(get_spec, model_id: str) -> bool:
+    try:
+        get_spec(model_id)
+    except (KeyError, UserError):
+        return False
+    return True
+
+
+def _external_sizes(entry, sizes, notes) -> list:
+    """The sizes an external graph can be measured at: a fixed input only at its own size."""
+    ad = entry.adapter
+    if ad.fixed:
+        other = [s for s in sizes if s != ad.native_size]
+        if other:
+            notes[f"skipped {entry.id} at size {', '.join(map(str, other))}: the graph's input is fixed at "
+                  f"{ad.input.size[0]} x {ad.input.size[1]}"] += 1
+        return [s for s in sizes if s == ad.native_size]
+    if ad.input.resize == "none":
+        notes[f"{entry.id}: the graph takes each image at its own size (resize = \"none\"); sizes "
+              f"{', '.join(map(str, sizes))} measured once as 0"] += 1
+        return [0]
+    return sizes
+
+
 def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool = True,
                 cores: int | None = None) -> Plan:
     """Expand `profile` into a Plan.
@@ -125,13 +168,20 @@ def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool = T
 
     for mi, entry in enumerate(profile.models):
         try:
-            spec = synthetic_spec(entry.id) if entry.id.startswith("synthetic") else get_spec(entry.id)
+            if entry.external:
+                if _is_zoo_id(get_spec, entry.id):
+                    raise UserError(f"{entry.id!r} is a zoo model id; give the external graph a name of its own")
+                spec = external_spec(entry)
+            else:
+                spec = synthetic_spec(entry.id) if entry.id.startswith("synthetic") else get_spec(entry.id)
         except UserError as exc:
             raise UserError(f"{profile.source}: models[{mi}].id: {exc}") from None
         except KeyError:
             raise UserError(f"{profile.source}: models[{mi}].id: unknown model {entry.id!r} "
                             f"(list them with `speedbench models`)") from None
         sizes = _dedupe(spec.native_size if s == "native" else s for s in (entry.sizes or profile.sizes))
+        if entry.external:
+            sizes = _external_sizes(entry, sizes, notes)
         min_size = getattr(spec, "min_size", 0) or 0
         too_small = [s for s in sizes if s < min_size]
         if too_small:
@@ -141,31 +191,32 @@ def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool = T
             sizes = [s for s in sizes if s >= min_size]
         wanted = entry.proposals or profile.proposals
         if spec.default_proposals == 0:
-            if any(p != "default" for p in wanted):
+            if entry.external and any(p != "default" for p in wanted):
+                notes[f"{entry.id}: NMS runs inside the graph (nms.enabled = false), so there is no host "
+                      f"top-k to set; proposals {', '.join(map(str, wanted))} measured once as 0"] += 1
+            elif any(p != "default" for p in wanted):
                 notes[f"{entry.id}: has no proposal knob; proposals {', '.join(map(str, wanted))} "
                       f"measured once as 0"] += 1
             proposals, prop_note = [0], ("proposals mapped to 0: model has no proposal knob",)
         else:
             proposals = _dedupe(spec.default_proposals if p == "default" else p for p in wanted)
-            prop_note = ()
-        for size in sizes:
-            for prop in proposals:
-                for backend in profile.backends:
-                    for opt in profile.opt_levels:
-                        for t in profile.threads:
-                            for k in profile.concurrency:
-                                got = _one_point(profile, entry, spec, size, prop, backend, opt, t, k,
-                                                 cores, concurrency_supported, notes)
-                                if got is None:
-                                    continue
-                                point, point_notes = got
-                                if point.id in points:
-                                    merged += 1
-                                    continue
-                                points[point.id] = PlannedPoint(
-                                    point=point, family=spec.family,
-                                    graph_key=GraphKey(entry.id, entry.weights, int(size), int(prop)),
-                                    notes=prop_note + point_notes)
+            prop_note = ("proposals = the host's pre-NMS top-k (nms.candidates)",) if entry.external else ()
+        precisions = entry.precisions or profile.precisions
+        for size, prop, precision, backend, opt, t, k in itertools.product(
+                sizes, proposals, precisions, profile.backends, profile.opt_levels, profile.threads,
+                profile.concurrency):
+            got = _one_point(profile, entry, spec, size, prop, backend, opt, t, k,
+                             cores, concurrency_supported, notes, precision)
+            if got is None:
+                continue
+            point, point_notes = got
+            if point.id in points:
+                merged += 1
+                continue
+            points[point.id] = PlannedPoint(
+                point=point, family=spec.family,
+                graph_key=GraphKey(entry.id, entry.weights, int(size), int(prop), precision),
+                notes=prop_note + point_notes)
     if merged:
         notes[f"{merged} combination(s) mapped onto points already planned (measured once)"] += 1
     plan_notes = [n if c == 1 or n.startswith(tuple("0123456789")) else f"{n} ({c} combinations)"
@@ -173,9 +224,21 @@ def expand_plan(profile: Profile, get_spec=None, concurrency_supported: bool = T
     return Plan(points=list(points.values()), notes=plan_notes)
 
 
-def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, concurrency_supported, notes):
+def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, concurrency_supported, notes,
+               precision="fp32"):
     point_notes = []
     mode, inter = t.mode, t.inter
+    if precision != "fp32" and backend != "ort":
+        notes[f"skipped {precision} on backend {backend}: quantised graphs run on ONNX Runtime only"] += 1
+        return None
+    if entry.external:
+        if precision != "fp32":
+            notes[f"skipped {precision} for {entry.id}: an external graph is measured as given (not quantised)"] += 1
+            return None
+        if backend != "ort":
+            notes[f"skipped {entry.id} on backend {backend}: an external graph runs on ONNX Runtime only"] += 1
+            return None
+        backend = "adapted"   # ONNX Runtime with the adapter's host pre/postprocessing
     if entry.id.startswith("synthetic") and backend != "synthetic":
         notes[f"skipped {entry.id} on backend {backend}: a synthetic model runs on the synthetic backend only"] += 1
         return None
@@ -203,7 +266,8 @@ def _one_point(profile, entry, spec, size, prop, backend, opt, t, k, cores, conc
         return None
     point = Point(model=entry.id, weights=entry.weights, size=int(size), proposals=int(prop), backend=backend,
                   intra_threads=t.intra, inter_threads=inter, exec_mode=mode, opt_level=opt,
-                  affinity=t.affinity, concurrency=k)
+                  affinity=t.affinity, concurrency=k, precision=precision,
+                  spin_wait="on" if t.spin else "off")
     return point, tuple(point_notes)
 
 
@@ -219,14 +283,15 @@ def estimate_seconds(plan: Plan, profile: Profile, done_ids=(), n_images: int | 
                      cached_graphs=(), point_wall_s: float | None = None) -> dict:
     """Rough wall-time estimate for the points still to measure (a rule of thumb).
 
-    Per point: a worker start plus the repetition budget, or point_wall_s when
-    the run already measured points (their median wall time); per distinct
+    Per worker process (invocation): a worker start plus the repetition budget, or per
+    point point_wall_s when the run already measured points (their median wall time); per distinct
     graph still needed: one export and one accuracy pass over the dataset.
     """
     todo = plan.missing(done_ids)
     budget = profile.repetitions.get("max_seconds", DEFAULT_MAX_SECONDS)
-    per_point = point_wall_s if point_wall_s else WORKER_START_S + budget
-    measure_s = len(todo) * per_point
+    # A one-stream point runs in `invocations` worker processes; a stored row's wall_s covers all of them.
+    runs = sum(profile.invocations if p.config["concurrency"] == 1 else 1 for p in todo)
+    measure_s = len(todo) * point_wall_s if point_wall_s else runs * (WORKER_START_S + budget)
     graphs = []
     for p in todo:
         if p.graph_key not in graphs and p.config["backend"] != "synthetic":

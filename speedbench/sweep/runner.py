@@ -13,11 +13,14 @@ from pathlib import Path
 from speedbench.errors import UserError
 from speedbench.sweep import steps
 from speedbench.sweep.env import environment_fingerprint
-from speedbench.sweep.pipeline import PointJob, baselines, make_context, record_run_facts, run_point, stream_key
+from speedbench.measure.launch import SETTLE_S
+from speedbench.sweep.pipeline import (PointJob, baselines, finish_point, make_context, record_run_facts,
+                                       run_invocation, run_point, stream_key)
 from speedbench.sweep.plan import Plan, expand_plan
 from speedbench.sweep.profile import Profile, load_profile, parse_profile
 from speedbench.sweep.progress import Progress
 from speedbench.sweep.rundir import PER_IMAGE_DIR, RunDir, now_iso
+from speedbench.sweep.schedule import run_interleaved
 
 
 def run_sweep(profile_path, out_dir=None, resume: bool = False, quiet: bool = False,
@@ -57,7 +60,12 @@ def _open_run(profile: Profile, out: Path, resume: bool) -> RunDir:
     if resume:
         rd = RunDir.open(out)
         try:
-            stored = parse_profile(rd.profile_text(), str(out / "profile.toml"))
+            text = rd.profile_text()   # a missing copy is said as such, not as "a different profile"
+        except UserError:
+            rd.close()
+            raise
+        try:
+            stored = parse_profile(text, str(out / "profile.toml"))
         except UserError:
             stored = None
         if stored is None or not same_study(stored, profile):
@@ -98,27 +106,58 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
 
     if dataset is None and any(p.config["backend"] != "synthetic" for p in todo):
         dataset = steps.prepare_dataset(profile, Path(profile.cache))
-    progress = Progress(len(todo), quiet=quiet, stream=stream)
+    reps = profile.invocations
+    one_stream = [p for p in plan.points if p.config["concurrency"] == 1]
+    throughput = [p for p in todo if p.config["concurrency"] != 1]
+    progress = Progress(len(todo), quiet=quiet, stream=stream,
+                        steps=reps * (len(todo) - len(throughput)) + len(throughput))
     context = make_context(profile, dataset, rd.exports, host=profile.host, per_image_dir=rd.path / PER_IMAGE_DIR,
                            status=progress.status, on_prepared=lambda key, graph: _note_thread_check(rd, key, graph))
-    # One-stream throughput of each configuration, for the scaling efficiency of K > 1 points.
-    x1 = baselines(rd.rows())
+    rd.update_meta(invocations=reps)
+    if retry_failed:
+        for pid in rd.failed_ids():
+            rd.clear_invocations(pid)
+    # the host's matmul peak at every thread count of the plan, once per run, recorded in meta.json
+    context.peaks = steps.host_peak(rd, todo, None if quiet else stream)
     try:
-        for planned in todo:      # the plan lists a configuration's K = 1 point before its K > 1 points
+        # Exports and accuracy first: nothing heavy runs in this process while a worker measures.
+        for planned in todo:
+            context.graphs.prepare(planned)
+        # One-stream points: their invocations round-robin over the points, seeded shuffled order.
+        got = run_interleaved(
+            rd, one_stream, reps, settle_s=SETTLE_S, complete=done,
+            measure=lambda planned, i: run_invocation(PointJob(planned), context, i),
+            finish=lambda planned, what: _stored(finish_point(PointJob(planned), context, what)),
+            on_start=lambda planned, i: progress.start(f"{planned.label} #{i + 1}/{reps}"),
+            on_invocation=lambda planned, i, result: progress.advance(),
+            on_point=lambda planned, row: progress.done(planned.label, row))
+        for k in ("ok", "failed"):
+            counts[k] += got[k]
+        # Throughput points after every K = 1 point, whose row gives their scaling baseline.
+        x1 = baselines(rd.rows())
+        for planned in throughput:
             progress.start(planned.label)
-            got = run_point(PointJob(planned, baseline_fps=x1.get(stream_key(planned.config))), context)
-            x1.update(baselines([got.row]))
-            rd.write_point(got.row, got.samples)
-            counts["ok" if got.row.get("status") == "ok" else "failed"] += 1
-            progress.done(planned.label, got.row)
+            out = run_point(PointJob(planned, baseline_fps=x1.get(stream_key(planned.config))), context)
+            rd.write_point(out.row, out.samples, out.invocations)
+            progress.advance()
+            counts["ok" if out.row.get("status") == "ok" else "failed"] += 1
+            progress.done(planned.label, out.row)
     finally:
         progress.close()
     rd.finish()
     return counts
 
 
+def _stored(outcome) -> tuple:
+    """(row, samples, invocation index per sample): what the run directory stores of a point."""
+    return outcome.row, outcome.samples, outcome.invocations
+
+
 def _note_thread_check(rd: RunDir, key: tuple, graph) -> None:
-    """meta["thread_invariance"]: per graph, did 1 and 2 intra-op threads detect the same?"""
+    """meta["thread_invariance"]: per graph, did 1 and 2 intra-op threads detect the same?
+    Also what a graph brings to meta.json (int8: quantisation settings and both fingerprints)."""
+    if graph.run_meta:
+        rd.update_meta(**graph.run_meta)
     acc = graph.accuracy or {}
     if "threads_identical" not in acc:
         return

@@ -26,8 +26,8 @@ def prepare_dataset(profile, cache: Path):
     from speedbench.data import load_dataset
 
     if profile.dataset_path:
-        return load_dataset(profile.dataset_path)
-    return load_dataset(scenes_path(profile, cache))
+        return load_dataset(profile.dataset_path, max_pixels=profile.max_pixels)
+    return load_dataset(scenes_path(profile, cache), max_pixels=profile.max_pixels)
 
 
 def scenes_path(profile, cache: Path) -> Path:
@@ -73,6 +73,29 @@ def make_policy(repetitions: dict):
     return policy
 
 
+# ----------------------------------------------------------------- host peak
+def host_peak(rd, points, stream=None) -> dict | None:
+    """This host's dense fp32 matmul peak at 1 thread and at the points' thread counts, once per run.
+
+    Kept in meta["matmul_peak"]; a resumed run measures only thread counts it lacks.
+    Nothing is measured when no point runs a model (the synthetic test backend).
+    """
+    from speedbench.measure.peak import ensure_peaks
+
+    have = rd.meta().get("matmul_peak")
+    real = [p for p in points if p.config["backend"] != "synthetic"]
+    if not real:
+        return have
+    peak = ensure_peaks(have, {1} | {int(p.config["intra_threads"]) for p in real})
+    if peak != (have or {}):
+        if stream is not None:
+            print("note: measured this host's fp32 matmul peak (GMAC/s per thread count): " + ", ".join(
+                f"{t}: {r.get('gmac_s', float('nan')):.1f}" for t, r in sorted(peak["by_threads"].items())),
+                file=stream)
+        rd.update_meta(matmul_peak=peak)
+    return peak
+
+
 # ----------------------------------------------------------------- accuracy
 def _file_digest(path: Path) -> str:
     h = hashlib.sha256()
@@ -82,15 +105,19 @@ def _file_digest(path: Path) -> str:
     return h.hexdigest()[:16]
 
 
-def accuracy(graph: Path, model: str, profile, dataset, cache: Path, notes: list) -> dict:
+def accuracy(graph: Path, model: str, profile, dataset, cache: Path, notes: list, adapted=None) -> dict:
     """mAP of one graph over the dataset; cached by (graph bytes, dataset, limit, runtime version).
 
     The runtime version is part of the key so that an upgrade which changes what the
     graph outputs shows up as an accuracy change instead of being served from the cache.
+    adapted: evaluate_graph's arguments for an external graph (classes, adapter, size); the
+    adapter (with its candidate count) and the size join the key.
     """
     ort = _ort_version()
-    key = hashlib.sha256(json.dumps([_file_digest(graph), dataset_fingerprint(dataset), profile.limit, ort])
-                         .encode()).hexdigest()[:20]
+    parts = [_file_digest(graph), dataset_fingerprint(dataset), profile.limit, ort]
+    if adapted:
+        parts += [adapted["adapter"].digest(), adapted["size"]]
+    key = hashlib.sha256(json.dumps(parts).encode()).hexdigest()[:20]
     path = Path(cache) / "accuracy" / f"{key}.json"
     if path.exists():
         try:
@@ -100,18 +127,20 @@ def accuracy(graph: Path, model: str, profile, dataset, cache: Path, notes: list
                 return cached
         except (OSError, json.JSONDecodeError):
             pass  # a damaged cache entry is recomputed
-    det_cache = Path(cache) / "detections" / f"ort-{ort}"
+    det_cache = detections_dir(cache)
     try:
         from speedbench.evaluate import detect_dataset, evaluate_graph
         from speedbench.evaluate.paired import per_image_results
 
         # Always check threads (once per graph, cached with the accuracy): the one accuracy
         # figure stands for every thread setting only if 1 and 2 threads detect the same.
-        result = evaluate_graph(graph, dataset, model=model, limit=profile.limit or None,
-                                intra_threads=cores_available(), cache_dir=det_cache, check_threads=True)
+        how = dict(adapted) if adapted else {"model": model}
+        result = evaluate_graph(graph, dataset, limit=profile.limit or None, intra_threads=cores_available(),
+                                cache_dir=det_cache, check_threads=True, **how)
         scored = dataset.first(int(profile.limit)) if profile.limit else dataset
         # Same graph, images and cache as evaluate_graph: served from its detections cache.
-        dets = detect_dataset(graph, scored, result["label_map"], cores_available(), det_cache)
+        dets = detect_dataset(graph, scored, result["label_map"], cores_available(), det_cache,
+                              adapter=how.get("adapter"), size=how.get("size", 0))
     except UserError as exc:
         notes.append(f"accuracy not measured: {exc}")
         return {}
@@ -149,6 +178,11 @@ def detections_digest(dets: list[dict]) -> str:
             (int(d["category_id"]), x, y, w, h, round(float(d["score"]), 4)))
     blob = json.dumps(sorted((k, sorted(v)) for k, v in per_image.items()), separators=(",", ":"))
     return hashlib.sha256(blob.encode()).hexdigest()[:20]
+
+
+def detections_dir(cache: Path) -> Path:
+    """Where a graph's raw detections are cached (per onnxruntime version)."""
+    return Path(cache) / "detections" / f"ort-{_ort_version()}"
 
 
 def _ort_version() -> str:

@@ -21,16 +21,18 @@ from speedbench.sweep.profile import load_profile, parse_profile
 from speedbench.sweep.rundir import PER_IMAGE_DIR, RunDir
 
 
-def load_into_run(run_dir, ks, seconds=5.0, pin=False, utilisations=(), report=None) -> dict:
+def load_into_run(run_dir, ks, seconds=5.0, pin=False, utilisations=(), report=None, only=None) -> dict:
     """Re-measure the ok single-stream points of a run at each K; rows go into the same run.
 
     report(label, row_or_None, reason): told about each K as it finishes (None: not measured).
+    only: point ids to measure (default: every ok single-stream point).
     Returns counts {"ok", "failed"}.
     """
     rd = RunDir.open(run_dir)
     try:
         profile = parse_profile(rd.profile_text(), source=str(Path(run_dir) / "profile.toml"))
-        rows = [r for r in rd.rows() if r.get("status") == "ok" and int(r.get("concurrency") or 1) == 1]
+        rows = [r for r in rd.rows() if r.get("status") == "ok" and int(r.get("concurrency") or 1) == 1
+                and (only is None or r.get("point_id") in only)]
         if not rows:
             raise UserError(f"{run_dir}: no ok single-stream points to measure under load")
         samples = rd.samples()

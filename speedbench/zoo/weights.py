@@ -170,15 +170,42 @@ def load_demo(model_id: str) -> tuple[dict, dict]:
     return state_dict_from(safe_load(path, "demo weights"), path), entry
 
 
-def weights_digest(model_id: str, weights="none") -> str:
-    """16 hex digits that change whenever the weights a build would load change."""
-    import torch
-    import torchvision
+def installed_version(dist: str) -> str:
+    """`dist.__version__` without importing it (importing torch costs seconds on a cache hit).
 
+    The package's version.py holds the full version with its local label (2.14.1+cu130);
+    importlib.metadata gives only the public part (2.14.1), so it is the fallback. Reading the
+    file keeps the cache key exactly what `torch.__version__` was, so existing entries still hit.
+    """
+    import re
+    from importlib import metadata
+
+    try:
+        dist_info = metadata.distribution(dist)
+    except metadata.PackageNotFoundError:
+        return "none"
+    try:
+        text = Path(dist_info.locate_file(f"{dist}/version.py")).read_text()
+        found = re.search(r"^__version__\s*(?::\s*str\s*)?=\s*['\"]([^'\"]+)['\"]", text, re.M)
+        if found:
+            return found.group(1)
+    except OSError:
+        pass
+    return dist_info.version
+
+
+def weights_digest(model_id: str, weights="none") -> str:
+    """16 hex digits that change whenever the weights a build would load change.
+
+    Without importing torch (seconds, paid per graph by every sweep that finds its exports
+    cached): versions are read from the installed files, digests from the weight files or
+    the demo manifest. Only torchvision weights import torchvision, for their file's URL.
+    """
     kind, path = parse_weights(weights)
     if kind == "none":
         # Untrained weights are a seeded init; they change only with the library versions.
-        blob = f"none|{model_id}|{UNTRAINED_RECIPE}|{torch.__version__}|{torchvision.__version__}"
+        blob = (f"none|{model_id}|{UNTRAINED_RECIPE}|{installed_version('torch')}|"
+                f"{installed_version('torchvision')}")
         return hashlib.sha256(blob.encode()).hexdigest()[:16]
     if kind == "torchvision":
         url = torchvision_weights(model_id).url

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import importlib
 
-NAMES = ("ort", "eager", "synthetic")
+NAMES = ("ort", "eager", "synthetic", "adapted")   # adapted: an external graph + its adapter
 
 
 def get_backend(name: str):

@@ -35,6 +35,10 @@ def session_options(point, profile_dir: str | None = None):
     so.inter_op_num_threads = int(point.inter_threads)
     so.execution_mode = getattr(ort.ExecutionMode, _MODES[point.exec_mode])
     so.graph_optimization_level = getattr(ort.GraphOptimizationLevel, _LEVELS[point.opt_level])
+    # Spin-waiting (ORT's default) keeps idle pool threads polling for work: see schema.SPIN_VALUES.
+    spin = "0" if getattr(point, "spin_wait", "on") == "off" else "1"
+    so.add_session_config_entry("session.intra_op.allow_spinning", spin)
+    so.add_session_config_entry("session.inter_op.allow_spinning", spin)
     if profile_dir is not None:
         so.enable_profiling = True
         so.profile_file_prefix = os.path.join(profile_dir, "ort_profile")
@@ -89,6 +93,21 @@ class Runner:
             out["note"] = ("parallel executor: node times overlap across threads, "
                            "so stage times can add up to more than the run")
         return out
+
+    def subgraphs(self, inputs, reps: int) -> dict:
+        """The stage split checked without the profiler (speedbench.measure.subgraphs)."""
+        import onnx
+        import onnxruntime as ort
+
+        from speedbench.measure import stages as st
+        from speedbench.measure.subgraphs import time_stage_subgraphs
+
+        def session(blob):
+            return ort.InferenceSession(blob, session_options(self.point), providers=["CPUExecutionProvider"])
+
+        model = onnx.load(self.point.graph)
+        return time_stage_subgraphs(model, st.stage_function(_spec(self.point.model)), inputs, session,
+                                    self.session, reps)
 
     def close(self):
         self.session = None

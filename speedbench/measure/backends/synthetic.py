@@ -12,6 +12,10 @@ model "synthetic:work_ms=5,alloc_mib=300". Keys:
                delay_ms is accepted as another name for it
 - mode         "busy" (spin on the CPU, default) or "sleep"
 - jitter       relative spread of the work, uniform +-jitter, seeded (default 0)
+- process_cov  a between-process effect: each worker process draws its own offset once, at load,
+               from fresh OS entropy, and every run of that process takes work_ms x (1 + offset)
+               x (1 +- jitter); offset ~ Normal(0, process_cov), clipped to >= -0.8. One process's
+               samples cannot see it; only several invocations can (measure.invocations)
 - alloc_mib    MiB allocated, written and freed in every run
 - load_mib     MiB allocated at load time and held
 - limit_mib    cap the worker's address space (RLIMIT_AS) at load to this many MiB above
@@ -19,6 +23,8 @@ model "synthetic:work_ms=5,alloc_mib=300". Keys:
                out-of-memory worker does (MemoryError)
 - fail         "abort" | "segv" | "hang" | "raise" | "sigkill"
 - fail_at      "load" (default) or "run"; fail_after: runs before failing at "run"
+- fail_invocation  fail (as `fail` says, "raise" by default) only in the worker process of this
+               invocation index (the launcher puts it in SPEEDBENCH_INVOCATION)
 - stages       {"backbone": 0.6, ...} fractions of work_ms reported by profile()
 - SPEEDBENCH_SYNTHETIC_FACTOR (environment variable, not a setting): multiplies work_ms; a test
                gives it to one side of an interleaved A/B run to stand for a slower environment
@@ -38,8 +44,8 @@ TIMED_REGION = "synthetic: one busy-wait/sleep of work_ms (+ alloc_mib written a
 DEFAULT_STAGES = {"preprocess": 0.1, "backbone": 0.5, "head": 0.3, "postprocess": 0.1}
 
 
-KEYS = ("work_ms", "delay_ms", "mode", "jitter", "seed", "alloc_mib", "load_mib", "limit_mib",
-        "fail", "fail_at", "fail_after", "stages", "drift_per_s", "drift_t0")
+KEYS = ("work_ms", "delay_ms", "mode", "jitter", "process_cov", "seed", "alloc_mib", "load_mib", "limit_mib",
+        "fail", "fail_at", "fail_after", "fail_invocation", "stages", "drift_per_s", "drift_t0")
 
 
 def settings(point) -> dict:
@@ -73,6 +79,21 @@ def drift_factor(opts: dict, t: float) -> float:
     if not rate:
         return 1.0
     return max(0.1, 1.0 + rate * (t - float(opts.get("drift_t0", t))))
+def process_offset(opts: dict, rng: np.random.Generator) -> float:
+    """The relative offset one worker process runs at (0 without process_cov)."""
+    cov = float(opts.get("process_cov", 0.0))
+    return max(-0.8, cov * float(rng.standard_normal())) if cov else 0.0
+
+
+def run_ms(opts: dict, offset: float, rng: np.random.Generator, n: int = 1) -> np.ndarray:
+    """How long n runs of a process with this offset take, ms: the latency model the Runner busy-waits.
+
+    Symmetric around work_ms over processes and runs, so the true median of the population
+    of all processes' runs is work_ms (what the tests check intervals against).
+    """
+    jitter = float(opts.get("jitter", 0.0))
+    noise = 1 + rng.uniform(-jitter, jitter, size=n) if jitter else np.ones(n)
+    return float(opts["work_ms"]) * (1 + offset) * noise
 
 
 def _number(v: str):
@@ -121,8 +142,14 @@ class Runner:
         self.jitter = float(self.opts.get("jitter", 0.0))
         self.alloc = int(float(self.opts.get("alloc_mib", 0)) * 2**20)
         self.rng = np.random.default_rng(int(self.opts.get("seed", 0)))
+        self.offset = process_offset(self.opts, np.random.default_rng())   # fresh entropy per process
         self.runs = 0
         self.opts.setdefault("drift_t0", time.time())
+        if "fail_invocation" in self.opts:
+            if os.environ.get("SPEEDBENCH_INVOCATION") != str(int(self.opts["fail_invocation"])):
+                self.opts.pop("fail", None)        # not this process's turn
+            else:
+                self.opts.setdefault("fail", "raise")
         fail = self.opts.get("fail")
         if fail and self.opts.get("fail_at", "load") == "load":
             _fail(fail)
@@ -140,10 +167,10 @@ class Runner:
         return np.asarray(image)
 
     def _ms(self) -> float:
-        ms = self.work_ms * drift_factor(self.opts, time.time())
-        if self.jitter:
-            return ms * (1 + self.rng.uniform(-self.jitter, self.jitter))
-        return ms
+        drift = drift_factor(self.opts, time.time())
+        if self.jitter or self.offset:
+            return float(run_ms(self.opts, self.offset, self.rng)[0]) * drift
+        return self.work_ms * drift
 
     def __call__(self, x):
         self.runs += 1
