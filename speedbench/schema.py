@@ -37,6 +37,7 @@ CONFIG_COLUMNS = (
     "concurrency",    # K concurrent workers for throughput points; 1 otherwise
     "precision",      # "fp32" (the exported graph) or "int8" (its static QDQ quantisation)
     "spin_wait",      # ORT intra-/inter-op threads spin while waiting for work: "on" / "off"; "" for eager
+    "env",            # interleaved A/B runs: which Python environment ("A" old, "B" new); "" otherwise
 )
 
 # Identity columns added after runs already existed, with the value every older run
@@ -47,6 +48,7 @@ CONFIG_COLUMNS = (
 ID_DEFAULTS: dict = {
     "precision": "fp32",
     "spin_wait": "on",    # ONNX Runtime's own default: session.intra_op.allow_spinning = "1"
+    "env": "",            # not an interleaved A/B run
 }
 
 PRECISIONS = ("fp32", "int8")
@@ -65,7 +67,8 @@ LATENCY_STATS = tuple(f"p{p}" for p in LATENCY_PERCENTILES)
 # Columns that hold text and flags; every other schema column is numeric (NaN when missing).
 TEXT_COLUMNS = frozenset({"model", "weights", "backend", "exec_mode", "opt_level", "precision", "spin_wait",
                           "point_id", "host", "family", "status", "reason", "stage_method",
-                          "calibration_fingerprint", "ci_scope", "invocation_errors"})
+                          "calibration_fingerprint", "ci_scope", "invocation_errors",
+                          "probe_raw", "env", "env_python", "env_fingerprint"})
 BOOL_COLUMNS = frozenset({"noisy", "untrained", "between_dominates"})
 
 # Groups of result columns, named here once; RESULT_COLUMNS below lists them in table order.
@@ -103,9 +106,20 @@ LOAD_COLUMNS = (
 ACCURACY_COLUMNS = ("map", "map50", "map75", "map_small", "map_medium", "map_large", "mar_100",
                     "map_ci_lo", "map_ci_hi")
 
+# Interleaved A/B runs (speedbench compare --envs): the environment's interpreter and a digest of
+# its software (Python, package versions, code revision). The row's worker invocations are the
+# replicated-invocation columns ("invocations", ...) below.
+INTERLEAVED_COLUMNS = ("env_python", "env_fingerprint")
+
+# Host speed probe (speedbench/measure/probe.py), timed at the start and the end of each worker
+# process: median ms of its rounds; probe_raw keeps every round time as JSON
+# ({"start": {"hash_ms": [...], "copy_ms": [...], "ms": m, "version": v}, "end": {...}}).
+PROBE_COLUMNS = ("probe_start_ms", "probe_end_ms", "probe_raw")
+
 # Other columns of the points table (see README.md for their meaning).
 RESULT_COLUMNS = (
     "point_id", "host", "family", "status", "reason",
+    *INTERLEAVED_COLUMNS,
     "n_samples", "lat_min_ms", "lat_mean_ms", "lat_std_ms", "lat_cov",
     *[f"lat_{s}_ms" for s in LATENCY_STATS],
     *[f"lat_{s}_ci_lo_ms" for s in LATENCY_STATS],
@@ -134,6 +148,7 @@ RESULT_COLUMNS = (
     "params", "gmacs",
     "map", "map50", "map75", "map_small", "map_medium", "map_large", "mar_100",
     "map_ci_lo", "map_ci_hi", "untrained",
+    *PROBE_COLUMNS,
     # int8 rows: accuracy change vs the fp32 graph of the same configuration (paired bootstrap
     # over the same held-out images) and detection agreement with it
     "map_change", "map_change_ci_lo", "map_change_ci_hi",
@@ -177,6 +192,12 @@ def latency_column(stat: str) -> str:
     return f"lat_{stat}_ms"
 
 
+def _is_default(column: str, value) -> bool:
+    """A later identity column that is missing (None, NaN: a frame without it), blank (the knob
+    does not apply to the point's backend) or at its default."""
+    return value is None or value != value or value == "" or value == ID_DEFAULTS[column]
+
+
 def point_id(config: dict) -> str:
     """Stable id of a configuration: a digest of its CONFIG_COLUMNS values.
 
@@ -186,8 +207,7 @@ def point_id(config: dict) -> str:
     import hashlib
     import json
 
-    key = {c: config.get(c) for c in CONFIG_COLUMNS
-           if not (c in ID_DEFAULTS and config.get(c, ID_DEFAULTS[c]) in (ID_DEFAULTS[c], "", None))}
+    key = {c: config.get(c) for c in CONFIG_COLUMNS if not (c in ID_DEFAULTS and _is_default(c, config.get(c)))}
     blob = json.dumps(key, sort_keys=True, default=str).encode()
     return hashlib.sha1(blob).hexdigest()[:12]
 
@@ -212,6 +232,9 @@ def config_label(row) -> str:
     opt = get("opt_level", "")
     if isinstance(opt, str) and opt not in ("", "all"):
         parts.append(f"opt {opt}")
+    env = get("env", "")
+    if isinstance(env, str) and env:
+        parts.append(f"[{env}]")      # interleaved A/B runs: which environment
     pin = _int_or(get("affinity", None))
     if pin:
         parts.append(f"{pin} cores")

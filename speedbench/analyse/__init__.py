@@ -7,6 +7,8 @@ Public face (all take pandas DataFrames of points, which may carry a `host` colu
 - pick(df, budget_ms, latency="p50", threads=None, max_memory_mb=None, min_map=None, prices=None) -> Pick
   (with several hosts it names the host; with prices it picks the cheapest per million frames)
 - compare(base, new, threshold=0.05, confidence=0.95, seed=0) -> Comparison
+- compare_invocations(inv, threshold=0.05, ...) -> Comparison: an interleaved A/B run's verdicts from
+  pairs of adjacent invocations (paired_ratio: geometric mean ratio, bootstrap over pairs)
 - Run / as_run: a run's points, raw samples and metadata, from a directory or frames
 - load_runs(paths) -> [Run]: run directories, or parents holding run directories (fleet OUT/<label>/)
 - combine(runs) -> Combined: one points table keyed by host (label, else CPU model + cores)
@@ -20,6 +22,7 @@ Public face (all take pandas DataFrames of points, which may carry a `host` colu
 from speedbench.analyse.common import label
 from speedbench.analyse.compare import Comparison, bootstrap_ratio, compare, env_diff
 from speedbench.analyse.frontier import frontier
+from speedbench.analyse.interleaved import compare_invocations, paired_ratio
 from speedbench.analyse.hosts import Combined, combine, load_runs
 from speedbench.analyse.pick import Pick, pick
 from speedbench.analyse.prices import add_costs, load_prices
@@ -27,5 +30,6 @@ from speedbench.analyse.runs import Run, as_run
 from speedbench.analyse.sizing import scaling_summary, size
 
 __all__ = ["frontier", "pick", "Pick", "compare", "Comparison", "bootstrap_ratio", "env_diff",
+           "compare_invocations", "paired_ratio",
            "Run", "as_run", "load_runs", "combine", "Combined", "load_prices", "add_costs", "label",
            "size", "scaling_summary"]

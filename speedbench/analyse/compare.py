@@ -20,6 +20,7 @@ from speedbench.analyse.common import as_float as _f
 from speedbench.analyse.common import require_columns, with_ids
 from speedbench.analyse.paired import paired_diff
 from speedbench.analyse.comparison import Comparison
+from speedbench.analyse.hostspeed import adjust, host_status, probe_values
 from speedbench.analyse.rundiff import env_diff, load_notes, thread_change_notes
 from speedbench.analyse.runs import Run, as_run
 from speedbench.errors import UserError
@@ -74,7 +75,7 @@ def _boot_medians(x, n_boot, rng, chunk_elems=4_000_000):
 
 
 def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: int = 0,
-            n_boot: int = N_BOOT, fail_on_drift: bool = False,
+            n_boot: int = N_BOOT, fail_on_drift: bool = False, host_adjusted: bool = False,
             gate_single_process: bool = False) -> Comparison:
     """Match points by configuration and give each a verdict (see the module docstring).
 
@@ -83,6 +84,8 @@ def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: 
     A regression is: a point slower beyond the threshold (measured in two or more worker
     processes on both sides, or any point with gate_single_process), a point that failed
     only in the new run, mAP lower beyond its CI, or (with fail_on_drift) changed detections.
+    The host's own speed change between the runs (hostspeed.py) is reported with every
+    comparison; host_adjusted: gate on the probe-adjusted latency verdict instead of the raw one.
     """
     if not (0 <= threshold < 1):
         raise UserError(f"--threshold: must be between 0% and 100%, not {threshold!r}")
@@ -109,6 +112,18 @@ def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: 
     rows = [_compare_point(pid, bi.loc[pid], ni.loc[pid], sb.get(pid), sn.get(pid),
                            threshold, confidence, seed, n_boot, fail_on_drift, gate_single_process)
             for pid in common]
+    host = host_change(b, n, confidence, seed, n_boot, threshold)
+    host["gate"] = "probe-adjusted" if host_adjusted else "raw"
+    if host.get("status") == "recorded":
+        for row in rows:
+            if row["method"]:
+                row.update(adjust(row, host, threshold))
+                if host_adjusted:
+                    row["regression"] = ((row["adj_verdict"] == "slower" and row["gated"])
+                                         or row["accuracy"] == "lower"
+                                         or (fail_on_drift and row["drift"] == "changed"))
+    elif host_adjusted:
+        raise UserError(f"--host-adjusted: {host['status']}; nothing to adjust by")
     points = pd.DataFrame(rows)
     if len(points):
         points = points.sort_values(["regression", "ratio"], ascending=[False, False], kind="stable")
@@ -132,7 +147,21 @@ def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: 
     notes += [x for x in load_notes(b, n, np_, bp) if x not in notes]
     return Comparison(points=points, env_diff=env_diff(b.meta, n.meta), unmatched=unmatched,
                       threshold=threshold, confidence=confidence, base_name=b.name, new_name=n.name,
-                      fail_on_drift=fail_on_drift, notes=notes)
+                      fail_on_drift=fail_on_drift, notes=notes, host=host)
+
+
+def host_change(b: Run, n: Run, confidence=0.95, seed=0, n_boot=N_BOOT, threshold=0.05) -> dict:
+    """The host's speed change new / base from the worker probes, or why it is unknown."""
+    vb, vn = probe_values(b.points), probe_values(n.points)
+    missing = [r.name for r, v in ((b, vb), (n, vn)) if not len(v)]
+    if missing:
+        return {"status": "not recorded in " + " and ".join(missing)}
+    if min(len(vb), len(vn)) < 2:
+        return {"status": "too few worker processes with a probe reading"}
+    rng = np.random.default_rng([seed, zlib.crc32(b"host probe")])
+    ratio, lo, hi = bootstrap_ratio(vb, vn, confidence, n_boot, rng)
+    return host_status({"status": "recorded", "ratio": ratio, "ci_lo": lo, "ci_hi": hi,
+                        "n_base": len(vb), "n_new": len(vn)}, threshold)
 
 
 def _samples_by_id(run: Run) -> dict:

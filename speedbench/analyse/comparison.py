@@ -9,12 +9,11 @@ import numpy as np
 import pandas as pd
 
 from speedbench.analyse.common import as_float as _f
+from speedbench.analyse.hostspeed import host_lines
 from speedbench.analyse.common import md_cell as _md
 
 
 @dataclass
-
-
 class Comparison:
     points: pd.DataFrame          # one row per matched configuration
     env_diff: pd.DataFrame        # key, base, new
@@ -25,6 +24,7 @@ class Comparison:
     new_name: str = "new"
     fail_on_drift: bool = False
     notes: list[str] = field(default_factory=list)
+    host: dict = field(default_factory=dict)     # the host's speed change (analyse/hostspeed.py)
 
     @property
     def regressed(self) -> bool:
@@ -41,21 +41,41 @@ class Comparison:
                 f"{len(self.unmatched)} unmatched; threshold {self.threshold:.0%}, "
                 f"confidence {self.confidence:.0%}")
 
+    def show_adjusted(self) -> bool:
+        """Probe-adjusted columns appear when the host moved beyond the threshold, or when they
+        would change a verdict: never a silent difference between the two."""
+        if self.host.get("status") != "recorded" or "adj_verdict" not in self.points.columns:
+            return False
+        ok = self.points["adj_verdict"] != "n/a"
+        return bool(self.host.get("exceeds")) or bool((self.points["adj_verdict"] != self.points["verdict"])[ok].any())
+
     def _table(self) -> list[list[str]]:
         rows = []
+        adjusted = self.show_adjusted()
         for _, r in self.points.iterrows():
             ungated = r["verdict"] in ("slower", "faster") and not bool(r.get("gated", True))
-            rows.append([r["label"], _ms(r["base_p50_ms"]), _ms(r["new_p50_ms"]),
-                         _ratio(r), r["verdict"] + (" (1 process, not gated)" if ungated else ""), _signed(r["mem_delta_mib"], "MiB", 0),
-                         _acc(r), r["drift"], r["stage_note"]])
+            row = [r["label"], _ms(r["base_p50_ms"]), _ms(r["new_p50_ms"]), _ratio(r),
+                   r["verdict"] + (" (1 process, not gated)" if ungated else "")]
+            if adjusted:
+                row += [_ratio(r, "adj_"), r.get("adj_verdict", "n/a")]
+            rows.append(row + [_signed(r["mem_delta_mib"], "MiB", 0), _acc(r), r["drift"], r["stage_note"]])
         return rows
 
     HEADER = ["configuration", "base p50", "new p50", "ratio [CI]", "verdict",
               "peak mem", "mAP delta [CI]", "detections", "stages"]
+    ADJUSTED_HEADER = ["probe-adjusted ratio [CI]", "adjusted verdict"]
+
+    def header(self) -> list[str]:
+        if not self.show_adjusted():
+            return list(self.HEADER)
+        return self.HEADER[:5] + self.ADJUSTED_HEADER + self.HEADER[5:]
+
+    def _host_lines(self) -> list[str]:
+        return host_lines(self.host, self.threshold, self.base_name, self.new_name)
 
     def to_text(self) -> str:
-        lines = [f"compare {self.base_name} -> {self.new_name}", self._summary(), ""]
-        lines += _aligned(self.HEADER, self._table())
+        lines = [f"compare {self.base_name} -> {self.new_name}", self._summary(), *self._host_lines(), ""]
+        lines += _aligned(self.header(), self._table())
         if len(self.env_diff):
             lines += ["", "Environment changes:"]
             lines += [f"  {r.key}: {r.base} -> {r.new}" for r in self.env_diff.itertuples()]
@@ -69,9 +89,11 @@ class Comparison:
 
     def to_markdown(self) -> str:
         icon = "Regression" if self.regressed else "No regression"
-        out = [f"### speedbench compare: {icon}", "", _md(self._summary()), "",
-               f"Base: `{_md(self.base_name)}` - new: `{_md(self.new_name)}`", "",
-               "| " + " | ".join(self.HEADER) + " |", "|" + "---|" * len(self.HEADER)]
+        header = self.header()
+        out = [f"### speedbench compare: {icon}", "", _md(self._summary()), ""]
+        out += [f"> {_md(x)}" for x in self._host_lines()] + ([""] if self._host_lines() else [])
+        out += [f"Base: `{_md(self.base_name)}` - new: `{_md(self.new_name)}`", "",
+                "| " + " | ".join(header) + " |", "|" + "---|" * len(header)]
         for row in self._table():
             cells = [_md(c) for c in row]
             cells[4] = f"**{cells[4]}**" if row[4] in ("slower", "failed in new") else cells[4]
@@ -95,6 +117,8 @@ class Comparison:
             "base": self.base_name, "new": self.new_name, "counts": self.counts(),
             "points": _records(self.points), "env_diff": _records(self.env_diff),
             "unmatched": _records(self.unmatched), "notes": self.notes,
+            "host_speed": {k: (None if isinstance(v, float) and not math.isfinite(v) else v)
+                           for k, v in self.host.items()},
         }
         return json.dumps(doc, indent=2, allow_nan=False, default=str)
 
@@ -103,12 +127,13 @@ def _ms(v):
     return "-" if not np.isfinite(_f(v)) else f"{v:.2f} ms"
 
 
-def _ratio(r):
-    if not np.isfinite(_f(r["ratio"])):
+def _ratio(r, prefix=""):
+    ratio, lo, hi = _f(r.get(f"{prefix}ratio")), _f(r.get(f"{prefix}ci_lo")), _f(r.get(f"{prefix}ci_hi"))
+    if not np.isfinite(ratio):
         return "-"
-    if not np.isfinite(_f(r["ci_lo"])):
-        return f"{r['ratio']:.3f}"
-    return f"{r['ratio']:.3f} [{r['ci_lo']:.3f}, {r['ci_hi']:.3f}]"
+    if not np.isfinite(lo):
+        return f"{ratio:.3f}"
+    return f"{ratio:.3f} [{lo:.3f}, {hi:.3f}]"
 
 
 def _signed(v, unit, digits):

@@ -80,13 +80,16 @@ INVOCATION_VAR = "SPEEDBENCH_INVOCATION"
 
 
 def measure_point(point: Point, images, policy: Policy | None = None, timeout_s: float = 600,
-                  invocation: int = 0) -> PointResult:
+                  invocation: int = 0, python: str | None = None) -> PointResult:
     """Measure one point in its own worker process (one invocation); never raises for a worker failure.
 
     invocation: the index this process has among the point's invocations; every sample
     of the result carries it (result.measurement.invocation).
+    python: the interpreter the worker is started with (default: this one). An upgrade check
+    measures the same point under two environments' interpreters (speedbench.sweep.interpreters
+    checks them first).
     """
-    result = _measure_once(point, images, policy, timeout_s, invocation)
+    result = _measure_once(point, images, policy, timeout_s, invocation, python)
     result.extra["invocation"] = int(invocation)
     m = result.measurement
     if m is not None:
@@ -115,7 +118,8 @@ def measure_invocations(point: Point, images, policy: Policy | None = None, invo
     return combine_invocations(results)
 
 
-def _measure_once(point: Point, images, policy: Policy | None, timeout_s: float, invocation: int = 0) -> PointResult:
+def _measure_once(point: Point, images, policy: Policy | None, timeout_s: float, invocation: int = 0,
+                  python: str | None = None) -> PointResult:
     policy = policy or Policy()
     point.validate()
     policy.validate()
@@ -133,7 +137,7 @@ def _measure_once(point: Point, images, policy: Policy | None, timeout_s: float,
                 "parent_pid": os.getpid()}
         (tmp / "spec.json").write_text(json.dumps(spec))
         with open(tmp / "stderr.txt", "wb") as err:
-            proc = subprocess.Popen([sys.executable, "-m", "speedbench.measure.worker", str(tmp / "spec.json")],
+            proc = subprocess.Popen([python or sys.executable, "-m", "speedbench.measure.worker", str(tmp / "spec.json")],
                                     env={**thread_env(point), INVOCATION_VAR: str(int(invocation))},
                                     stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
                                     stderr=err, start_new_session=True)

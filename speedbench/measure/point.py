@@ -42,6 +42,7 @@ class Point:
     concurrency: int = 1
     precision: str = "fp32"      # "int8": `graph` is the quantised graph (the sweep prepares it)
     spin_wait: str = "on"
+    env: str = ""
     graph: str | None = None
     options: dict = field(default_factory=dict)
     adapter: dict = field(default_factory=dict)   # backend "adapted": the adapter table (adapt.Adapter.to_dict)
@@ -74,6 +75,8 @@ class Point:
             value = getattr(self, name)
             if not isinstance(value, int) or isinstance(value, bool) or value < 0:
                 raise UserError(f"point field {name!r}: expected an integer >= 0, got {value!r}")
+        if not isinstance(self.env, str):
+            raise UserError(f"point field 'env': expected a text label, got {self.env!r}")
         if not isinstance(self.concurrency, int) or isinstance(self.concurrency, bool) or self.concurrency < 1:
             raise UserError(f"point field 'concurrency': expected an integer >= 1, got {self.concurrency!r}")
         cores = cores_available()

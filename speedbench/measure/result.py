@@ -1,6 +1,7 @@
 """The outcome of measuring one point, and its rendering as one flat table row."""
 from __future__ import annotations
 
+import json
 import math
 from dataclasses import dataclass, field
 
@@ -52,6 +53,7 @@ class PointResult:
         row["profiling_overhead"] = self.profiling_overhead
         for col in MEMORY_COLUMNS:
             row[col] = float(self.memory.get(col, NAN))
+        row.update(probe_columns(self.extra.get("probe")))
         row["invocations_failed"] = len(self.failed_invocations)
         row["invocation_errors"] = "; ".join(self.failed_invocations)
         return row
@@ -90,6 +92,15 @@ class PointResult:
         return f"{head}, {self.measurement!r}" + (f", stages ms: {stages}" if stages else "") + ")"
 
 
+def probe_columns(probe: dict | None) -> dict:
+    """schema.PROBE_COLUMNS from the worker's probe record (NaN / "" when it took none)."""
+    probe = probe or {}
+    out = {}
+    for phase in ("start", "end"):
+        ms = (probe.get(phase) or {}).get("ms")
+        out[f"probe_{phase}_ms"] = float(ms) if isinstance(ms, (int, float)) else NAN
+    out["probe_raw"] = json.dumps(probe, sort_keys=True) if probe else ""
+    return out
 def combine_invocations(results: list[PointResult]) -> PointResult:
     """One point's result from its R invocations (each a PointResult whose samples carry its index).
 

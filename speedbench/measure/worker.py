@@ -14,6 +14,7 @@ import os
 import sys
 import traceback
 
+from speedbench.measure.probe import run_probe
 from speedbench.system import atomic_write
 
 # Libraries whose import cost belongs to "after imports" for each backend.
@@ -42,6 +43,8 @@ def run_worker(spec: dict) -> dict:
     extra = {}
     if point_d.get("affinity"):
         extra["cpus"] = pin(int(point_d["affinity"]))
+    # Host speed before anything of the measured stack is imported (see measure/probe.py).
+    probe = {"start": run_probe()}
 
     import importlib
 
@@ -94,6 +97,8 @@ def run_worker(spec: dict) -> dict:
         except Exception as exc:  # the check is extra; its failure must not cost the point
             extra["subgraphs"] = {"error": f"{type(exc).__name__}: {' '.join(str(exc).split())}"[:300]}
     runner.close()
+    probe["end"] = run_probe()
+    extra["probe"] = probe
     return result.to_dict()
 
 

@@ -57,11 +57,23 @@ class GraphStore:
         self.status = status or (lambda text: None)
         self.on_prepared = on_prepared
         self._graphs: dict[GraphKey, PreparedGraph] = {}
+        self.sealed = False     # True: every graph was prepared elsewhere; never export here
+
+    @classmethod
+    def prepared(cls, profile, graphs: dict) -> "GraphStore":
+        """A store of graphs prepared elsewhere (an interleaved run prepares each environment's
+        graphs with that environment's interpreter); a graph it lacks is a failed graph."""
+        store = cls(profile, None, ".")
+        store._graphs.update(graphs)
+        store.sealed = True
+        return store
 
     def prepare(self, planned: PlannedPoint) -> PreparedGraph:
         if planned.config["backend"] == "synthetic":
             return PreparedGraph()   # the synthetic backend runs no graph
         key = planned.graph_key
+        if key not in self._graphs and self.sealed:
+            return PreparedGraph(ok=False, reason=f"graph {key.model} {key.size}px was not prepared")
         if key not in self._graphs:
             self.status(f"export {key.model} {key.size}px")
             self._graphs[key] = graph = self._prepare(key)
@@ -101,19 +113,28 @@ class GraphStore:
         if key.weights == "none" or not self.profile.accuracy or self.dataset is None:
             return graph
         self.status(f"accuracy {key.model} {key.size}px")
-        graph.accuracy = self._accuracy(record, key, graph.notes)
+        graph.accuracy = self._accuracy(record.path, key, graph.notes)
         if record is not fp32 and graph.accuracy:
             # the fp32 graph of the same configuration, on the same images (its accuracy is cached)
             try:
                 graph.accuracy.update(quantised.change_vs_fp32(
-                    fp32.path, record.path, self._accuracy(fp32, key, []), graph.accuracy, self.dataset,
+                    fp32.path, record.path, self._accuracy(fp32.path, key, []), graph.accuracy, self.dataset,
                     self.profile, self.cache / "accuracy", steps.detections_dir(self.cache)))
             except UserError as exc:
                 graph.notes.append(f"change vs fp32 not measured: {exc}")
         return graph
 
-    def _accuracy(self, record, key: GraphKey, notes: list) -> dict:
-        acc = steps.accuracy(Path(record.path), key.model, self.profile, self.dataset, self.cache, notes)
+    def score(self, key: GraphKey, graph: PreparedGraph) -> PreparedGraph:
+        """Accuracy of a graph prepared elsewhere, on the profile's dataset (with this process's
+        runtime): an interleaved run scores each environment's graph with its own interpreter."""
+        if not graph.ok or key.weights == "none" or not self.profile.accuracy or self.dataset is None:
+            return graph
+        self.status(f"accuracy {key.model} {key.size}px")
+        graph.accuracy = self._accuracy(graph.path, key, graph.notes)
+        return graph
+
+    def _accuracy(self, path, key: GraphKey, notes: list) -> dict:
+        acc = steps.accuracy(Path(path), key.model, self.profile, self.dataset, self.cache, notes)
         if acc.get("per_image_key") and self.per_image_dir is not None:
             link_into(self.cache / "accuracy" / f"{acc['per_image_key']}.npz", self.per_image_dir)
         return acc
@@ -196,6 +217,7 @@ class PointContext:
     load: LoadSettings | None = None
     # this host's fp32 matmul peak (measure.peak), filled in for each thread count a point needs
     peaks: dict | None = None
+    python: str | None = None        # the workers' interpreter (default: this one; see sweep/interleaved.py)
 
 
 @dataclass
@@ -287,7 +309,7 @@ def _measure(job: PointJob, context: PointContext, graph: PreparedGraph):
     c, profile = job.planned.config, context.profile
     point = _worker_point(job.planned, profile, graph)
     if c["concurrency"] == 1 and context.load is None:
-        return measure_point(point, context.images, context.policy, profile.timeout_s)
+        return measure_point(point, context.images, context.policy, profile.timeout_s, python=context.python)
     load = context.load or LoadSettings(seconds=None)
     kwargs = {"policy": context.policy, "timeout_s": profile.timeout_s, "seconds": load.seconds, "pin": load.pin}
     result = measure_load(point, context.images, k=c["concurrency"], baseline_fps=job.baseline_fps, **kwargs)
@@ -310,7 +332,8 @@ def run_invocation(job: PointJob, context: PointContext, index: int):
         point = _worker_point(planned, profile, graph)
         policy = context.policy if index == 0 else dataclasses.replace(context.policy, profile_stages=False)
         t0 = time.monotonic()
-        result = measure_point(point, context.images, policy, profile.timeout_s, invocation=index)
+        result = measure_point(point, context.images, policy, profile.timeout_s, invocation=index,
+                               python=context.python)
         result.extra["wall_s"] = round(time.monotonic() - t0, 3)
         return result
     except UserError as exc:

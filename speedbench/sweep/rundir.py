@@ -7,7 +7,9 @@ Layout of a run directory::
     points.sqlite    the source of truth: points(point_id PRIMARY KEY, seq, row JSON),
                      samples(point_id, i, ms, invocation), and invocations(point_id,
                      invocation, status, result JSON): each worker process's result the
-                     moment it finishes, before its point's row exists (resume per invocation)
+                     moment it finishes, before its point's row exists (resume per invocation);
+                     in an interleaved A/B run also env_invocations(point_id, invocation, seq,
+                     row JSON, samples JSON): each side's worker runs, stored with its pooled row
     schedule.json    the seeded shuffled order the invocations were run in
     points.csv       the points table, regenerated as points arrive (temp file + os.replace)
     points.parquet   the same, when pyarrow is installed
@@ -91,6 +93,22 @@ CREATE TABLE IF NOT EXISTS invocations (
     result TEXT NOT NULL,
     PRIMARY KEY (point_id, invocation)
 );
+"""
+
+
+# Worker invocations of an interleaved A/B run (speedbench compare --envs), each stored with its
+# side's pooled points row; created on first use, so runs without it read as having none.
+# samples: that invocation's raw samples, JSON list (ms). Separate from `invocations` above
+# (a sweep's per-process results awaiting their point's row), which has another shape.
+_ENV_INVOCATIONS_SQL = """
+CREATE TABLE IF NOT EXISTS env_invocations (
+    point_id TEXT NOT NULL,
+    invocation INTEGER NOT NULL,
+    seq INTEGER NOT NULL,
+    row TEXT NOT NULL,
+    samples TEXT NOT NULL,
+    PRIMARY KEY (point_id, invocation)
+)
 """
 
 
@@ -386,6 +404,19 @@ class RunDir:
         each sample (all 0 when omitted). The CSV/Parquet copies are
         regenerated afterwards (they are conveniences; SQLite is the truth).
         """
+        self._transaction(row, samples_ms, invocations)
+
+    def write_env_invocation(self, row: dict, samples_ms, invocations, invocation: dict,
+                             invocation_samples_ms) -> None:
+        """Store one worker invocation of an interleaved A/B run together with its side's
+        updated points row and pooled samples (invocations: each sample's invocation index),
+        in one transaction.
+
+        invocation: that invocation's own row; its key is (row["point_id"], invocation["invocation"]).
+        """
+        self._transaction(row, samples_ms, invocations, (invocation, invocation_samples_ms))
+
+    def _transaction(self, row: dict, samples_ms, invocations=None, env_invocation=None) -> None:
         self._check_writable()
         pid = row.get("point_id")
         if not pid:
@@ -405,6 +436,15 @@ class RunDir:
             db.execute("INSERT OR REPLACE INTO points (point_id, seq, row) VALUES (?, ?, ?)", (pid, seq, blob))
             db.execute("DELETE FROM samples WHERE point_id = ?", (pid,))
             db.executemany("INSERT INTO samples (point_id, i, ms, invocation) VALUES (?, ?, ?, ?)", samples)
+            if env_invocation is not None:
+                inv, inv_samples = env_invocation
+                db.execute(_ENV_INVOCATIONS_SQL)
+                inv_seq = db.execute("SELECT COALESCE(MAX(seq), 0) + 1 FROM env_invocations").fetchone()[0]
+                db.execute("INSERT OR REPLACE INTO env_invocations (point_id, invocation, seq, row, samples) "
+                           "VALUES (?, ?, ?, ?, ?)",
+                           (pid, int(inv["invocation"]), inv_seq,
+                            json.dumps({k: _clean(v) for k, v in inv.items()}, default=_json_default),
+                            json.dumps([float(x) for x in inv_samples or []])))
             db.execute("COMMIT")
         except (sqlite3.Error, OSError) as exc:
             if db.in_transaction:
@@ -564,6 +604,32 @@ class RunDir:
                      for k in df["per_image_key"]]
             df["per_image_file"] = [f if f and os.path.isfile(f) else "" for f in files]
         return df
+
+    def env_invocations(self, point_id: str | None = None) -> list[dict]:
+        """An interleaved A/B run's stored worker invocations' rows (with point_id, invocation, seq
+        and samples_ms), all or one point's."""
+        try:
+            if not self._db.execute("SELECT 1 FROM sqlite_master WHERE type='table' "
+                                    "AND name='env_invocations'").fetchone():
+                return []
+            sql = "SELECT point_id, invocation, seq, row, samples FROM env_invocations"
+            args = ()
+            if point_id is not None:
+                sql, args = sql + " WHERE point_id = ?", (point_id,)
+            got = self._db.execute(sql + " ORDER BY seq", args).fetchall()
+        except sqlite3.DatabaseError as exc:
+            raise UserError(f"{self.path / DB_FILE}: corrupt points database ({exc})") from None
+        out = []
+        for pid, inv, seq, blob, samples in got:
+            try:
+                row, ms = json.loads(blob), json.loads(samples)
+            except json.JSONDecodeError:
+                raise UserError(f"{self.path / DB_FILE}: corrupt invocation {inv} of point {pid}") from None
+            if not isinstance(row, dict) or not isinstance(ms, list):
+                raise UserError(f"{self.path / DB_FILE}: corrupt invocation {inv} of point {pid}")
+            row.update(point_id=pid, invocation=inv, seq=seq, samples_ms=ms)
+            out.append(row)
+        return out
 
     def samples(self):
         import pandas as pd

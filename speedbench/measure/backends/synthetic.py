@@ -26,6 +26,11 @@ model "synthetic:work_ms=5,alloc_mib=300". Keys:
 - fail_invocation  fail (as `fail` says, "raise" by default) only in the worker process of this
                invocation index (the launcher puts it in SPEEDBENCH_INVOCATION)
 - stages       {"backbone": 0.6, ...} fractions of work_ms reported by profile()
+- SPEEDBENCH_SYNTHETIC_FACTOR (environment variable, not a setting): multiplies work_ms; a test
+               gives it to one side of an interleaved A/B run to stand for a slower environment
+- drift_per_s  a slow drift of the whole machine: work_ms x (1 + drift_per_s x (t - drift_t0)),
+               t the wall clock (s since the epoch) when a run starts, drift_t0 a given
+               start time (default: when the worker loaded); see drift_factor
 """
 from __future__ import annotations
 
@@ -40,7 +45,7 @@ DEFAULT_STAGES = {"preprocess": 0.1, "backbone": 0.5, "head": 0.3, "postprocess"
 
 
 KEYS = ("work_ms", "delay_ms", "mode", "jitter", "process_cov", "seed", "alloc_mib", "load_mib", "limit_mib",
-        "fail", "fail_at", "fail_after", "fail_invocation", "stages")
+        "fail", "fail_at", "fail_after", "fail_invocation", "stages", "drift_per_s", "drift_t0")
 
 
 def settings(point) -> dict:
@@ -64,6 +69,16 @@ def settings(point) -> dict:
     return opts
 
 
+def drift_factor(opts: dict, t: float) -> float:
+    """How much slower the simulated machine is at wall-clock time t (1 = not at all).
+
+    Linear in time from drift_t0, floored at 0.1 so that a long negative drift stays a
+    machine getting faster, not one taking no time at all.
+    """
+    rate = float(opts.get("drift_per_s", 0.0) or 0.0)
+    if not rate:
+        return 1.0
+    return max(0.1, 1.0 + rate * (t - float(opts.get("drift_t0", t))))
 def process_offset(opts: dict, rng: np.random.Generator) -> float:
     """The relative offset one worker process runs at (0 without process_cov)."""
     cov = float(opts.get("process_cov", 0.0))
@@ -122,13 +137,14 @@ class Runner:
 
     def __init__(self, point):
         self.opts = settings(point)
-        self.work_ms = float(self.opts["work_ms"])
+        self.work_ms = float(self.opts["work_ms"]) * float(os.environ.get("SPEEDBENCH_SYNTHETIC_FACTOR") or 1.0)
         self.mode = self.opts.get("mode", "busy")
         self.jitter = float(self.opts.get("jitter", 0.0))
         self.alloc = int(float(self.opts.get("alloc_mib", 0)) * 2**20)
         self.rng = np.random.default_rng(int(self.opts.get("seed", 0)))
         self.offset = process_offset(self.opts, np.random.default_rng())   # fresh entropy per process
         self.runs = 0
+        self.opts.setdefault("drift_t0", time.time())
         if "fail_invocation" in self.opts:
             if os.environ.get("SPEEDBENCH_INVOCATION") != str(int(self.opts["fail_invocation"])):
                 self.opts.pop("fail", None)        # not this process's turn
@@ -151,9 +167,10 @@ class Runner:
         return np.asarray(image)
 
     def _ms(self) -> float:
+        drift = drift_factor(self.opts, time.time())
         if self.jitter or self.offset:
-            return float(run_ms(self.opts, self.offset, self.rng)[0])
-        return self.work_ms
+            return float(run_ms(self.opts, self.offset, self.rng)[0]) * drift
+        return self.work_ms * drift
 
     def __call__(self, x):
         self.runs += 1
