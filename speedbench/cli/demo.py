@@ -10,7 +10,7 @@ def add_parser(subparsers):
         description="Generate held-out yard scenes if absent, run profiles/demo.toml with the trained demo "
                     "zoo, measure throughput (K = 1 and 2 workers) of the frontier configurations, then print "
                     "the frontier, a pick for an example latency budget and what to buy for an example camera "
-                    "fleet, and write the frontier plot and the review report. Offline; about 10 minutes on 2 "
+                    "fleet, and write the frontier plot and the review report. Offline; about 15 minutes on 2 "
                     "cores. Run it again to resume an interrupted demo. --check shows the regression gate.")
     p.add_argument("-o", "--output", metavar="RUN_DIR", type=output_dir, help="run directory (default: runs/demo)")
     p.add_argument("--budget-ms", type=float_in(0, 1e6, open_lo=True), default=None,
