@@ -74,6 +74,29 @@ def test_throughput_of_frontier_points_then_the_fleet_answer(synthetic_run, monk
     assert sizing.measure_throughput(run, after, quiet=True)["measured"] == 0
 
 
+def test_throughput_keeps_the_invocations_of_the_single_stream_rows(tmp_path, monkeypatch):
+    # The K = 1 load figures are merged into the stored row: its samples must keep their
+    # invocation index, or the row's R processes would look like one to `compare` (which
+    # resamples invocations, Kalibera and Jones, ISMM 2013) and the point would not be gated.
+    from speedbench.analyse import compare
+    from speedbench.sweep import load_samples
+
+    monkeypatch.setattr(sizing, "LOAD_SECONDS", 0.3)
+    prof = tmp_path / "syn.toml"
+    prof.write_text(PROFILE.replace("stages = false", "stages = false\ninvocations = 3"))
+    run = run_sweep(prof, out_dir=tmp_path / "run", quiet=True, stream=open(os.devnull, "w"))
+    before = load_samples(run).sort_values(["point_id", "i"]).reset_index(drop=True)
+    assert (before.groupby("point_id")["invocation"].nunique() == 3).all()
+    sizing.measure_throughput(run, load_run(run), quiet=True)
+    after = load_samples(run)
+    after = after[after["point_id"].isin(before["point_id"])].sort_values(["point_id", "i"]).reset_index(drop=True)
+    assert after[["point_id", "ms", "invocation"]].equals(before[["point_id", "ms", "invocation"]])
+    table = compare(run, run).points
+    single = table[table["point_id"].isin(before["point_id"])]
+    assert (single["invocations_base"] == 3).all() and single["gated"].all()
+    assert (single["method"] == "hierarchical bootstrap").all()
+
+
 def test_two_thread_points_get_only_the_ks_that_fit(monkeypatch):
     import pandas as pd
 

@@ -42,8 +42,11 @@ def load_into_run(run_dir, ks, seconds=5.0, pin=False, utilisations=(), report=N
             # recomputed id: the stored row keeps the id its sweep gave it.
             if int(row["concurrency"]) == 1 and int(row["affinity"] or 0) == int(source.get("affinity") or 0):
                 if row["status"] == "ok":      # add the load columns, keep its latency samples
-                    kept = samples.loc[samples["point_id"] == source["point_id"], "ms"].tolist()
-                    rd.write_point({**source, **{c: row.get(c) for c in schema.LOAD_COLUMNS}}, kept)
+                    # ... with their invocation index: the row's interval and compare's resampling of
+                    # invocations rest on it (all 0 would make R processes look like one).
+                    kept = samples[samples["point_id"] == source["point_id"]]
+                    rd.write_point({**source, **{c: row.get(c) for c in schema.LOAD_COLUMNS}},
+                                   kept["ms"].tolist(), kept["invocation"].tolist())
                 return  # a failed K = 1 load must not overwrite the measured single-stream row
             rd.write_point(row, got_samples)
 
