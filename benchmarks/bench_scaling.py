@@ -2,7 +2,7 @@
 
     python benchmarks/bench_scaling.py [--size 224] [--seconds 8] [--model ssdlite320_mobilenet_v3_large]
 
-Measures, with speedbench.measure.load (fresh worker processes, synchronised start):
+Measures, with speedbench.measure.concurrent_launch (fresh worker processes, synchronised start):
   K=1 x T=1, K=2 x T=1 (two single-thread workers), and K=1 x T=2 (one two-thread worker),
 so the two ways of spending two cores are compared on the same graph in the same run, plus
 K=2 with paced arrivals at 50 % and 80 % of its capacity (p99 including queueing).
@@ -82,7 +82,7 @@ def main() -> int:
     args = ap.parse_args()
 
     from speedbench.measure import Point, Policy
-    from speedbench.measure.load import host_cores, measure_load, measure_scaling
+    from speedbench.measure.concurrent_launch import host_cores, measure_load, measure_scaling
 
     cores = host_cores()
     if cores < 2:

@@ -80,7 +80,7 @@ LATENCY_COLUMNS = (
     "invocations", "between_cov", "between_dominates", "ci_scope",   # see RESULT_COLUMNS
 )
 MEMORY_COLUMNS = ("rss_imports_mib", "rss_loaded_mib", "rss_peak_mib", "model_file_mib")
-# Columns a throughput point (K concurrent workers, speedbench.measure.load) adds to its row;
+# Columns a throughput point (K concurrent workers, speedbench.measure.concurrent_result) adds to its row;
 # speedbench/analyse/sizing.py reads them:
 #   tput_fps            aggregate frames/s of the K workers over the common window
 #   tput_p50/p90/p99_ms per-request latency under load (paced: from arrival, queueing included)

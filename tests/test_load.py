@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 
 from speedbench.errors import UserError
-from speedbench.measure.load import LOAD_COLUMNS, host_cores, measure_load, measure_scaling, summarise
+from speedbench.measure.concurrent_launch import LOAD_COLUMNS, host_cores, measure_load, measure_scaling, summarise
 from speedbench.measure.point import Point, Policy
 
 MS = 1_000_000  # ns per ms
@@ -90,7 +90,7 @@ def test_summarise_paced_arrivals_with_a_queue():
 
 
 def test_paced_curve_on_real_workers():
-    from speedbench.measure.load import curve_entry, measure_curve
+    from speedbench.measure.concurrent_launch import curve_entry, measure_curve
 
     paced = measure_curve(synthetic(work_ms=4.0), IMAGES, k=1, utilisations=(0.5,), policy=FAST, seconds=0.8,
                           timeout_s=60)
@@ -123,7 +123,7 @@ def scaling():
 
 def test_scaling_k1_k2_structure(scaling):
     # Checked against the raw per-request timestamps and the synthetic backend's known work,
-    # not against the formulas of measure/load.py.
+    # not against the formulas of measure/concurrent_result.py.
     r1, r2 = scaling
     assert r1.ok and r2.ok, (r1.reason, r2.reason)
     for r, k in ((r1, 1), (r2, 2)):
@@ -226,7 +226,7 @@ def test_hung_worker_times_out():
 def test_workers_exit_when_the_parent_is_killed(children_outlive_launcher):
     script = ("import numpy as np\n"
               "from speedbench.measure.point import Point\n"
-              "from speedbench.measure.load import measure_load\n"
+              "from speedbench.measure.concurrent_launch import measure_load\n"
               "p = Point(model='synthetic', backend='synthetic', intra_threads=1,"
               " options={'fail': 'hang', 'fail_at': 'load'})\n"
               "measure_load(p, [np.zeros((8, 8, 3), np.uint8)], k=1, seconds=0.2, timeout_s=120)\n")

@@ -1,6 +1,6 @@
 """Server sizing: how many servers of which shape carry S streams at F frames/s.
 
-The inputs are throughput rows written by ``speedbench load`` (speedbench.measure.load):
+The inputs are throughput rows written by ``speedbench load`` (speedbench.measure.concurrent_launch):
 for a configuration measured with K concurrent workers of T threads each, ``tput_fps`` is
 the aggregate frames/s on ``cores_used = K x T`` cores and ``tput_p99_ms`` the per-request
 p99 under that load.
@@ -17,7 +17,7 @@ The model, stated so that nobody mistakes it for a measurement:
 - a server of C cores runs floor(C / T) workers; servers = ceil(required / (capacity per
   server x headroom)), which is ceil(cores_needed / C) when T divides C.
 - expected p99 = the p99 measured at the utilisation nearest to the deployed one. Preferred:
-  the paced-arrival curve of the largest K (``load_curve``, speedbench.measure.load.measure_curve):
+  the paced-arrival curve of the largest K (``load_curve``, speedbench.measure.concurrent_launch.measure_curve):
   frames arrive on a clock at a fraction of capacity, latency counted from arrival, so queueing
   is included; its utilisation is the offered load / closed-loop capacity, the same definition
   as the deployed required / capacity. Without a curve: the

@@ -147,6 +147,6 @@ def other_measurements() -> int:
     busy = 0
     for proc in psutil.process_iter(["pid", "cmdline"]):
         cmd = proc.info["cmdline"] or []
-        if any(m in cmd for m in ("speedbench.measure.worker", "speedbench.measure.load")):
+        if any(m in cmd for m in ("speedbench.measure.worker", "speedbench.measure.concurrent_worker")):
             busy += 1
     return busy

@@ -8,7 +8,8 @@ Public face:
 - PointResult - status/reason, measurement, stages (ms), profiling overhead, memory; .to_row()
 - measure_point(point, images, policy=Policy(), timeout_s=600) -> PointResult
 - measure_load(point, images, k, ...) / measure_scaling / measure_curve - throughput of K
-  concurrent workers, latency under load (speedbench.measure.load)
+  concurrent workers, latency under load (speedbench.measure.concurrent_launch; results and their maths in
+  concurrent_result, the worker loop in concurrent_worker)
 - attribute_profile / Attributor - ORT profile node times -> stages (speedbench.measure.stages)
 
 Backends: "ort" (ONNX Runtime CPU), "eager" (PyTorch) and "synthetic" (a harness
@@ -24,9 +25,9 @@ _LAZY = {
     "measure_point": "speedbench.measure.launch",
     "Attributor": "speedbench.measure.stages",
     "attribute_profile": "speedbench.measure.stages",
-    "measure_load": "speedbench.measure.load",
-    "measure_scaling": "speedbench.measure.load",
-    "measure_curve": "speedbench.measure.load",
+    "measure_load": "speedbench.measure.concurrent_launch",
+    "measure_scaling": "speedbench.measure.concurrent_launch",
+    "measure_curve": "speedbench.measure.concurrent_launch",
 }
 
 __all__ = [*_LAZY]

@@ -304,7 +304,7 @@ def _worker_point(planned: PlannedPoint, profile, graph: PreparedGraph):
 
 def _measure(job: PointJob, context: PointContext, graph: PreparedGraph):
     from speedbench.measure import measure_load, measure_point
-    from speedbench.measure.load import add_curve
+    from speedbench.measure.concurrent_launch import add_curve
 
     c, profile = job.planned.config, context.profile
     point = _worker_point(job.planned, profile, graph)
