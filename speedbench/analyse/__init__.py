@@ -17,6 +17,7 @@ Public face (all take pandas DataFrames of points, which may carry a `host` colu
   core_hour_cost=None, use_frontier=True, prices=None, host_cores=None) -> DataFrame:
   servers per (configuration, host, server shape) from throughput rows, per-host frontiers
 - scaling_summary(df) -> (configs, excluded): per-configuration (and host) scaling basis of size
+  (speedbench.analyse.scaling; the model is analyse.sizing, fleet prices analyse.prices)
 - label(row): "model @ size / proposals / threads"
 """
 from speedbench.analyse.common import label
@@ -27,7 +28,8 @@ from speedbench.analyse.hosts import Combined, combine, load_runs
 from speedbench.analyse.pick import Pick, pick
 from speedbench.analyse.prices import add_costs, load_prices
 from speedbench.analyse.runs import Run, as_run
-from speedbench.analyse.sizing import scaling_summary, size
+from speedbench.analyse.scaling import scaling_summary
+from speedbench.analyse.sizing import size
 
 __all__ = ["frontier", "pick", "Pick", "compare", "Comparison", "bootstrap_ratio", "env_diff",
            "compare_invocations", "paired_ratio",

@@ -129,3 +129,41 @@ def _col(df: pd.DataFrame, col: str) -> np.ndarray:
     if col not in df.columns:
         return np.full(len(df), np.nan)
     return pd.to_numeric(df[col], errors="coerce").to_numpy(dtype=float)
+
+
+# --------------------------------------------------------------------------- prices of a sized fleet
+def sizing_prices(configs: pd.DataFrame, hosts: list[str], prices, host_cores) -> tuple[dict, list[str]]:
+    """{host: (usd_per_hour, N cores it buys)} for every host of a scaling table that can be priced,
+    and notes for the rest (speedbench.analyse.sizing)."""
+    if not prices:
+        return {}, []
+    out, notes = {}, []
+    for h in hosts or [None]:
+        if h is None or h not in prices:
+            notes.append(f"host {h or '(unnamed)'} has no price in the price table: no usd_per_mframe for it")
+            continue
+        n = _number((host_cores or {}).get(h))
+        if not n > 0:   # no fingerprint: the cores the load test could use on that host
+            n = _number(configs.loc[configs["host"] == h, "recorded_host_cores"].max())
+        if not n > 0:
+            notes.append(f"host {h}: its logical core count is unknown (no env.cores_logical, no host_cores "
+                         "in its load rows), so its host price cannot be split per core: no usd_per_mframe")
+            continue
+        out[h] = (float(prices[h]), n)
+    return out, notes
+
+
+def fleet_cost(host_price, servers: int, shape: int, required: float) -> dict:
+    """usd_per_mframe of a sized fleet from a whole-host price: a C-core server costs usd_per_hour x C / N
+    per hour (price linear in cores), servers x that per frame delivered."""
+    if host_price is None:
+        return dict(usd_per_hour=np.nan, priced_host_cores=np.nan, usd_per_server_hour=np.nan, usd_per_mframe=np.nan)
+    usd_per_hour, n = host_price
+    per_server = usd_per_hour * shape / n
+    return dict(usd_per_hour=usd_per_hour, priced_host_cores=n, usd_per_server_hour=per_server,
+                usd_per_mframe=servers * per_server / (required * 3600.0) * 1e6)
+
+
+def _number(v) -> float:
+    v = pd.to_numeric(pd.Series([v]), errors="coerce").iloc[0]
+    return float(v) if v == v else math.nan

@@ -3,7 +3,10 @@
 The inputs are throughput rows written by ``speedbench load`` (speedbench.measure.concurrent_launch):
 for a configuration measured with K concurrent workers of T threads each, ``tput_fps`` is
 the aggregate frames/s on ``cores_used = K x T`` cores and ``tput_p99_ms`` the per-request
-p99 under that load.
+p99 under that load. The per-configuration basis read from them (per-core fps at the largest
+measured K x T, X(1), the p99 curves) is the scaling table, speedbench.analyse.scaling; the
+USD prices of a sized fleet are worked out in speedbench.analyse.prices (``sizing_prices``,
+``fleet_cost``). This module is the model itself.
 
 The model, stated so that nobody mistakes it for a measurement:
 
@@ -54,17 +57,14 @@ import numpy as np
 import pandas as pd
 
 from speedbench.analyse.frontier import frontier
+from speedbench.analyse.prices import fleet_cost, sizing_prices
+from speedbench.analyse.scaling import hosts_of, scaling_summary  # noqa: F401 (scaling_summary: also importable here)
 from speedbench.errors import UserError
-from speedbench.measure.point import ORT_ONLY_KNOBS, uses_ort_knobs
-from speedbench.schema import CONFIG_COLUMNS, ID_DEFAULTS
 
 # Rule of thumb (ours): workers that got less than this share of their cores' CPU time were
 # competing with other work on the host (or idling threads), so the throughput understates a
 # dedicated server and the sizing errs on the side of more servers.
 CONTENDED_CPU_UTIL = 0.8
-
-# A configuration is everything that identifies a point except how many copies run at once.
-CONFIG_KEY = tuple(c for c in CONFIG_COLUMNS if c != "concurrency")
 
 SIZE_COLUMNS = [
     "label", "host", "model", "size", "proposals", "backend", "intra_threads", "map", "frontier_status",
@@ -103,12 +103,12 @@ def size(df, streams, fps, p99_ms=None, server_cores=(8, 16, 32, 64), headroom=0
         streams, fps, p99_ms, server_cores, headroom, core_hour_cost)
     required = streams * fps
     configs, excluded = scaling_summary(df)
-    hosts = _hosts(configs)
+    hosts = hosts_of(configs)
     if use_frontier:
         configs = _frontier(configs, by_host=len(hosts) > 1)
     if configs.empty:
         raise UserError("size: the frontier is empty (no configuration with throughput data survived)")
-    price_of, price_notes = _host_prices(configs, prices, host_cores)
+    price_of, price_notes = sizing_prices(configs, hosts_of(configs), prices, host_cores)
     rows = []
     for cfg in configs.to_dict("records"):
         for shape in shapes:
@@ -131,151 +131,6 @@ def size(df, streams, fps, p99_ms=None, server_cores=(8, 16, 32, 64), headroom=0
         out.attrs["caution"] = ("Estimates from one host's measurements; figures beyond the measured core count "
                                 "rest on the stated assumption. A safety-relevant deployment needs its own "
                                 "validation at the planned load.")
-    return out
-
-
-def _hosts(configs: pd.DataFrame) -> list[str]:
-    if "host" not in configs.columns:
-        return []
-    return [str(h) for h in pd.unique(configs["host"].dropna()) if str(h)]
-
-
-def _host_prices(configs: pd.DataFrame, prices, host_cores) -> tuple[dict, list[str]]:
-    """{host: (usd_per_hour, N cores it buys)} for every host that can be priced, and notes for the rest."""
-    if not prices:
-        return {}, []
-    out, notes = {}, []
-    for h in _hosts(configs) or [None]:
-        if h is None or h not in prices:
-            notes.append(f"host {h or '(unnamed)'} has no price in the price table: no usd_per_mframe for it")
-            continue
-        n = _number((host_cores or {}).get(h))
-        if not n > 0:   # no fingerprint: the cores the load test could use on that host
-            n = _number(configs.loc[configs["host"] == h, "recorded_host_cores"].max())
-        if not n > 0:
-            notes.append(f"host {h}: its logical core count is unknown (no env.cores_logical, no host_cores "
-                         "in its load rows), so its host price cannot be split per core: no usd_per_mframe")
-            continue
-        out[h] = (float(prices[h]), n)
-    return out, notes
-
-
-def _number(v) -> float:
-    v = pd.to_numeric(pd.Series([v]), errors="coerce").iloc[0]
-    return float(v) if v == v else math.nan
-
-
-def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """One row per configuration with throughput data at K = 1: (configs, excluded).
-
-    configs carry the basis of the sizing model (per_core_fps, measured_cores, scaling_eff
-    recomputed here as X(K) / (K X(1)) from the rows themselves) plus ``curve``: a list of
-    (utilisation on the measuring host, p99 ms, mean ms) per measured K, for the p99 lookup.
-    """
-    if df is None or len(df) == 0:
-        raise UserError("size: the run has no points")
-    if "tput_fps" not in df.columns or pd.to_numeric(df["tput_fps"], errors="coerce").notna().sum() == 0:
-        raise UserError("size: the run has no throughput data (tput_fps); "
-                        "measure it first with `speedbench load RUN -k 1,2`")
-    df = df.copy()
-    for col in CONFIG_KEY:
-        if col not in df.columns:
-            df[col] = ID_DEFAULTS[col] if col in ID_DEFAULTS else (
-                "" if col in ("model", "weights", "backend", "exec_mode", "opt_level") else 0)
-    if "status" in df.columns:
-        df = df[df["status"].fillna("ok").astype(str) == "ok"]
-    for col in ("tput_fps", "tput_p99_ms", "tput_mean_ms", "cores_used", "concurrency",
-                "intra_threads", "host_cores", "lat_mean_ms", "lat_p99_ms"):
-        df[col] = pd.to_numeric(df[col], errors="coerce") if col in df.columns else np.nan
-    df["concurrency"] = df["concurrency"].fillna(1)
-    # ORT-only knobs mean nothing for other backends; rows of old runs may record them either way.
-    df.loc[~df["backend"].astype(str).map(uses_ort_knobs), list(ORT_ONLY_KNOBS)] = ""
-    # cores_used = K x T; rebuild it for rows that lack it.
-    df["cores_used"] = df["cores_used"].fillna(df["concurrency"] * df["intra_threads"].fillna(1).clip(lower=1))
-    key = list(CONFIG_KEY) + (["host"] if "host" in df.columns else [])
-    configs, excluded = [], []
-    for _, group in df.groupby(key, dropna=False, sort=False):
-        measured = group[group["tput_fps"].notna() & (group["tput_fps"] > 0)]
-        first = group.iloc[0]
-        if measured.empty:
-            continue  # a latency-only point; nothing to size
-        base = measured[measured["concurrency"] == 1]
-        k1_source = "load"
-        if base.empty:
-            # One closed-loop stream: X(1) = 1 / W (Little's law with L = 1), so a single-stream
-            # latency row of the same configuration gives the K = 1 throughput.
-            single = group[(group["concurrency"] == 1) & (group["lat_mean_ms"] > 0)]
-            if single.empty:
-                excluded.append({**_ident(first), "reason": "no throughput or latency measured at K=1"})
-                continue
-            base = single.iloc[[0]].assign(tput_fps=1000.0 / single["lat_mean_ms"].iloc[0],
-                                           tput_p99_ms=single["lat_p99_ms"].iloc[0],
-                                           tput_mean_ms=single["lat_mean_ms"].iloc[0])
-            measured = pd.concat([base, measured])
-            k1_source = "single-stream latency (X(1) = 1 / mean latency)"
-        x1 = float(base["tput_fps"].iloc[0])
-        measured = measured.sort_values(["cores_used", "concurrency"], kind="stable")
-        host_cores = recorded = measured["host_cores"].max()
-        if not np.isfinite(host_cores) or host_cores <= 0:
-            host_cores = measured["cores_used"].max()  # unknown host: assume the largest load filled it
-        curve = [(float(r.cores_used) / host_cores, float(r.tput_p99_ms), float(r.tput_mean_ms),
-                  int(r.concurrency)) for r in measured.itertuples()]
-        top = measured.iloc[-1]
-        k_top = int(top["concurrency"])
-        maps = pd.to_numeric(group["map"], errors="coerce") if "map" in group.columns else None
-        acc_src = group[maps.notna()].iloc[0] if maps is not None and maps.notna().any() else base.iloc[0]
-        configs.append({
-            **_ident(base.iloc[0]),
-            **{c: acc_src.get(c, np.nan) for c in ("map", "map_ci_lo", "map_ci_hi")},
-            "point_id": _config_id(base.iloc[0]),
-            "per_core_fps": float(top["tput_fps"]) / float(top["cores_used"]),
-            "measured_cores": int(top["cores_used"]),
-            "measured_k": k_top,
-            "scaling_eff": float(top["tput_fps"]) / (k_top * x1),
-            "x1_fps": x1,
-            "host_cores": float(host_cores),
-            "recorded_host_cores": float(recorded),
-            "curve": curve,
-            "k1_source": k1_source,
-            "measured_cpu_util": float(pd.to_numeric(top.get("tput_cpu_util", np.nan), errors="coerce")),
-            "paced": _paced_curve(top.get("load_curve")),
-            "untrained": bool(acc_src.get("untrained", False) is True or str(acc_src.get("weights")) == "none"),
-        })
-    cols = [*_IDENT, "host", "map", "map_ci_lo", "map_ci_hi", "point_id", "per_core_fps", "measured_cores",
-            "measured_k", "scaling_eff", "x1_fps", "host_cores", "recorded_host_cores", "curve", "k1_source",
-            "measured_cpu_util", "paced", "untrained"]
-    configs = pd.DataFrame(configs, columns=cols)
-    excluded = pd.DataFrame(excluded, columns=[*_IDENT, "host", "reason"])
-    if configs["host"].dropna().astype(str).replace("", np.nan).nunique() > 1:
-        # One configuration measured on two hosts stays two rows: labels name the host, ids are unique.
-        for t in (configs, excluded):
-            named = t["host"].notna() & (t["host"].astype(str) != "")
-            t.loc[named, "label"] = t.loc[named, "label"] + " [" + t.loc[named, "host"].astype(str) + "]"
-        configs["point_id"] = [pid if str(pid).endswith(f"@{h}") else f"{pid}@{h}"
-                               for pid, h in zip(configs["point_id"], configs["host"])]
-    return configs, excluded
-
-
-_IDENT = ("label", *CONFIG_KEY)
-
-
-def _config_id(row) -> str:
-    """The K = 1 point id of a configuration (computed when the table carries none)."""
-    pid = row.get("point_id")
-    if isinstance(pid, str) and pid:
-        return pid
-    from speedbench.schema import point_id
-
-    return point_id({**{c: row.get(c) for c in CONFIG_KEY}, "concurrency": 1})
-
-
-def _ident(row) -> dict:
-    from speedbench.analyse.common import label
-
-    out = {c: row.get(c) for c in CONFIG_KEY}
-    if "host" in row.index:
-        out["host"] = row.get("host")
-    out["label"] = label({**out, "concurrency": 1})
     return out
 
 
@@ -329,45 +184,13 @@ def _size_one(cfg: dict, shape: int, required: float, p99_ms, headroom: float, c
         expected_p99_ms=p99, p99_at_util=at_util, p99_beyond_measured=beyond,
         meets_p99=None if p99_ms is None else bool(p99 <= p99_ms),
         cost_per_mframe=np.nan if cost is None else cost * provisioned / (required * 3600.0) * 1e6,
-        **_host_cost(host_price, servers, shape, required),
+        **fleet_cost(host_price, servers, shape, required),
         assumption=_assumption(cfg, shape),
         p99_note=((f"paced-arrival p99 at utilisation {at_util:.2f} (queueing included)" if paced else
                    f"closed-loop p99 at utilisation {at_util:.2f} (no queueing)")
                   + ("; deployed utilisation is beyond the highest measured" if beyond else "")),
     )
     return row
-
-
-def _host_cost(host_price, servers: int, shape: int, required: float) -> dict:
-    """usd_per_mframe from a whole-host price: a C-core server costs usd_per_hour x C / N per hour."""
-    if host_price is None:
-        return dict(usd_per_hour=np.nan, priced_host_cores=np.nan, usd_per_server_hour=np.nan, usd_per_mframe=np.nan)
-    usd_per_hour, n = host_price
-    per_server = usd_per_hour * shape / n
-    return dict(usd_per_hour=usd_per_hour, priced_host_cores=n, usd_per_server_hour=per_server,
-                usd_per_mframe=servers * per_server / (required * 3600.0) * 1e6)
-
-
-def _paced_curve(value) -> list:
-    """The load_curve column (JSON text or a list) -> [(utilisation, p99, mean, K)] of ok points."""
-    import json
-
-    if isinstance(value, str) and value.strip():
-        try:
-            value = json.loads(value)
-        except json.JSONDecodeError:
-            return []
-    if not isinstance(value, list):
-        return []
-    out = []
-    for e in value:
-        # "load" = offered / closed-loop capacity, the same definition as the deployed utilisation
-        # (required / capacity); older curves only carry the busy fraction "util".
-        u = e.get("load", e.get("util")) if isinstance(e, dict) else None
-        if isinstance(e, dict) and e.get("status") == "ok" and isinstance(u, (int, float)) and all(
-                isinstance(e.get(k), (int, float)) for k in ("p99_ms", "mean_ms")):
-            out.append((float(u), float(e["p99_ms"]), float(e["mean_ms"]), 0))
-    return out
 
 
 def _p99_at(curve, util: float):

@@ -16,7 +16,8 @@ speedbench.measure.concurrent_worker), over the common window [start, end] (``su
 - scaling efficiency X(K) / (K X(1)) when the K = 1 throughput is known (set by the parent,
   speedbench.measure.concurrent_launch).
 
-Public: ``LoadResult``, ``summarise``, ``completed_latencies_ms``, ``curve_entry``, ``LOAD_COLUMNS``.
+Public: ``LoadResult``, ``summarise``, ``completed_latencies_ms``, ``curve_entry``, ``single_stream_fps``
+(the one X(1) of a K = 1 row: sweep, fleet, `speedbench load` and sizing), ``LOAD_COLUMNS``.
 """
 from __future__ import annotations
 
@@ -28,7 +29,8 @@ import numpy as np
 from speedbench.measure.stats import Measurement
 from speedbench.schema import LATENCY_PERCENTILES, LOAD_COLUMNS
 
-__all__ = ["LoadResult", "summarise", "completed_latencies_ms", "curve_entry", "LOAD_COLUMNS", "NAN"]
+__all__ = ["LoadResult", "summarise", "completed_latencies_ms", "curve_entry", "single_stream_fps", "LOAD_COLUMNS",
+           "NAN"]
 
 NAN = float("nan")
 
@@ -163,3 +165,21 @@ def curve_entry(r: "LoadResult") -> dict:
     out["status"] = r.status if r.ok else f"failed: {r.reason}"
     return out
 
+
+def single_stream_fps(row: dict):
+    """X(1) of an ok K = 1 row, the one baseline of scaling_eff = X(K) / (K X(1)) everywhere.
+
+    The row's measured throughput (tput_fps) when it was measured under load, else
+    1000 / mean latency: one closed-loop stream (L = 1) serves 1 / W frames a second by
+    Little's law. Not the row's `fps` (1000 / p50): on a noisy host mean and median differ a lot.
+    """
+    if row.get("status") != "ok" or int(row.get("concurrency") or 1) != 1:
+        return None
+    for value in (row.get("tput_fps"), 1000.0 / row["lat_mean_ms"] if _positive(row.get("lat_mean_ms")) else None):
+        if _positive(value):
+            return float(value)
+    return None
+
+
+def _positive(value) -> bool:
+    return isinstance(value, (int, float)) and math.isfinite(value) and value > 0

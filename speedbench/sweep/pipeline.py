@@ -11,7 +11,6 @@ Every failure of a step becomes data (a failed row, a note), never an exception.
 from __future__ import annotations
 
 import dataclasses
-import math
 import os
 import shutil
 import time
@@ -22,6 +21,7 @@ from speedbench import schema
 from speedbench.errors import UserError, one_line
 from speedbench.measure.launch import SETTLE_S
 from speedbench.measure.backends import get_backend
+from speedbench.measure.concurrent_result import single_stream_fps  # re-exported: the sweep's one X(1)
 from speedbench.measure.peak import ensure_peaks, peak_for
 from speedbench.sweep import external, quantised, steps
 from speedbench.sweep.plan import GraphKey, PlannedPoint
@@ -443,21 +443,6 @@ def stream_key(config: dict) -> tuple:
     return tuple(config.get(c, schema.ID_DEFAULTS.get(c)) for c in schema.CONFIG_COLUMNS if c != "concurrency")
 
 
-def single_stream_fps(row: dict):
-    """X(1) of an ok K = 1 row, the one baseline of scaling_eff = X(K) / (K X(1)) everywhere.
-
-    The row's measured throughput (tput_fps) when it was measured under load, else
-    1000 / mean latency: one closed-loop stream (L = 1) serves 1 / W frames a second by
-    Little's law. Not the row's `fps` (1000 / p50): on a noisy host mean and median differ a lot.
-    """
-    if row.get("status") != "ok" or int(row.get("concurrency") or 1) != 1:
-        return None
-    for value in (row.get("tput_fps"), 1000.0 / row["lat_mean_ms"] if _positive(row.get("lat_mean_ms")) else None):
-        if _positive(value):
-            return float(value)
-    return None
-
-
 def baselines(rows) -> dict:
     """{stream_key: X(1)} of the ok K = 1 rows among `rows`."""
     out = {}
@@ -466,7 +451,3 @@ def baselines(rows) -> dict:
         if fps is not None:
             out[stream_key(r)] = fps
     return out
-
-
-def _positive(value) -> bool:
-    return isinstance(value, (int, float)) and math.isfinite(value) and value > 0
