@@ -164,7 +164,7 @@ def test_caveat_for_sizes_outside_the_weights_training_sizes(monkeypatch):
     # today's manifest: re-rendering an old run after retraining must not change its caveats.
     import speedbench.zoo.weights as weights
     from speedbench.analyse.runs import Run
-    from speedbench.report.document import _outside_training
+    from speedbench.report.caveats import _outside_training
     from speedbench.sweep.pipeline import run_facts
     from speedbench.sweep.plan import PlannedPoint
 

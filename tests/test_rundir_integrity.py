@@ -228,7 +228,7 @@ def test_write_failing_late_in_a_read_only_place_is_one_line(tmp_path, monkeypat
     def refuse(*a, **k):
         raise OSError(errno.EROFS, "Read-only file system", str(tmp_path / "r.html"))
 
-    monkeypatch.setattr(report, "render_html", refuse)
+    monkeypatch.setattr(report, "render_reports", refuse)  # what `speedbench report` writes with
     assert cli(["report", str(run), "-o", str(tmp_path / "r.html")]) == 2
     assert one_line_error(capsys) == f"speedbench: error: {tmp_path / 'r.html'}: cannot write (read-only file system)"
 

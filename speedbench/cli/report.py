@@ -30,14 +30,13 @@ def run(args) -> int:
 
     os.environ.setdefault("MPLBACKEND", "Agg")
     from speedbench.analyse import load_prices, load_runs
-    from speedbench.report import render_html, render_markdown
+    from speedbench.report import render_reports
 
     prices = load_prices(args.price_table) if args.price_table else None
     runs = load_runs(args.run_dirs)
-    out = render_html(runs, args.output, budget_ms=args.budget_ms, latency=args.latency, prices=prices)
-    print(f"report written to {out}")
+    outs = render_reports(runs, args.output, Path(args.output).with_suffix(".md") if args.markdown else None,
+                          budget_ms=args.budget_ms, latency=args.latency, prices=prices)
+    print(f"report written to {outs[0]}")
     if args.markdown:
-        md = render_markdown(runs, Path(args.output).with_suffix(".md"), budget_ms=args.budget_ms,
-                             latency=args.latency, prices=prices)
-        print(f"markdown written to {md}")
+        print(f"markdown written to {outs[1]}")
     return 0

@@ -92,11 +92,11 @@ def family_table(df):
 
 def render(out: Path, df, budget_ms: float | None = None) -> dict:
     """Frontier plot + HTML and Markdown reports of a finished run directory."""
-    from speedbench.report import plot_frontier, render_html, render_markdown
+    from speedbench.report import plot_frontier, render_reports
 
     paths = {"frontier": out / "frontier.png"}
     fig = plot_frontier(df, path=paths["frontier"], title="Demo: accuracy vs latency on this CPU")
     del fig
-    paths["report_html"] = render_html([out], out / "report.html", budget_ms=budget_ms)
-    paths["report_md"] = render_markdown([out], out / "report.md", budget_ms=budget_ms)
+    paths["report_html"], paths["report_md"] = render_reports([out], out / "report.html", out / "report.md",
+                                                              budget_ms=budget_ms)
     return paths

@@ -10,11 +10,13 @@ Public face:
 - render_html(run_paths_or_frames, out_path, budget_ms=None, latency="p50", prices=None) -> Path
   (several runs: per-host sections, keyed by host; prices {host: usd_per_hour} add costs)
 - render_markdown(run_paths_or_frames, out_path, ...) -> Path
+- render_reports(run_paths_or_frames, html_path, markdown_path=None, ...) -> [Path]: both from one build
 Inputs: a run directory path, an analyse.Run, a points DataFrame, or a list of these.
 """
 from speedbench.report.plots import (plot_accuracy_vs, plot_frontier, plot_host_frontiers,
                                      plot_latency_distributions, plot_memory, plot_stages)
-from speedbench.report.render import render_html, render_markdown
+from speedbench.report.render import render_html, render_markdown, render_reports
 
 __all__ = ["plot_frontier", "plot_host_frontiers", "plot_stages", "plot_latency_distributions", "plot_accuracy_vs",
-           "plot_memory", "render_html", "render_markdown"]
+           "plot_memory", "render_html", "render_markdown",
+           "render_reports"]
