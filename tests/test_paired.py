@@ -119,7 +119,7 @@ def _rows(tmp_path, with_files=True):
 
 def test_frontier_pick_and_compare_use_the_paired_difference(tmp_path):
     from speedbench.analyse import frontier, pick
-    from speedbench.analyse.compare import _accuracy_delta
+    from speedbench.analyse.regression import accuracy_delta
 
     # b is slower and worse on every image, but its own mAP interval overlaps a's
     unpaired = frontier(_rows(tmp_path, with_files=False)).set_index("model")
@@ -136,9 +136,9 @@ def test_frontier_pick_and_compare_use_the_paired_difference(tmp_path):
     assert "paired CI" in p.to_text()
 
     base, new = df.iloc[0].to_dict(), df.iloc[1].to_dict()
-    d = _accuracy_delta(base, new)
+    d = accuracy_delta(base, new)
     assert d["accuracy"] == "lower" and d["map_delta_method"].startswith("paired") and d["map_delta_ci_hi"] < 0
     base["per_image_file"] = new["per_image_file"] = ""
-    wide = _accuracy_delta(base, new)     # without per-image results: the unpaired fallback
+    wide = accuracy_delta(base, new)     # without per-image results: the unpaired fallback
     assert wide["map_delta_method"].startswith("unpaired")
     assert wide["map_delta_ci_hi"] - wide["map_delta_ci_lo"] > 3 * (d["map_delta_ci_hi"] - d["map_delta_ci_lo"])

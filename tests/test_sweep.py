@@ -175,7 +175,7 @@ stages = false
 def test_ort_sweep_exports_and_evaluates_once_then_reuses_the_cache(tmp_path, monkeypatch):
     import torch
 
-    from speedbench.sweep import RunDir, steps
+    from speedbench.sweep import RunDir, run_setup
     from speedbench.sweep.pipeline import GraphStore
     from speedbench.zoo import build_model
 
@@ -220,7 +220,7 @@ def test_ort_sweep_exports_and_evaluates_once_then_reuses_the_cache(tmp_path, mo
     profile = load_profile(prof)
     planned = expand_plan(profile).points[0]
     rd = RunDir.create(tmp_path / "run2", profile.text, {"env": {}})
-    info = GraphStore(profile, steps.prepare_dataset(profile, cache), rd.exports).prepare(planned)
+    info = GraphStore(profile, run_setup.prepare_dataset(profile, cache), rd.exports).prepare(planned)
     rd.close()
     assert info.ok and info.accuracy["map"] == row["map"] and info.facts["params"] == row["params"]
     assert planned.point_id == row["point_id"]   # same configuration, same id in every run
@@ -354,7 +354,7 @@ def test_cli_cluster_without_the_engine_and_hosts_without_cluster(monkeypatch, t
 
 
 def test_detection_digest_ignores_float_noise_and_order_but_not_a_moved_box():
-    from speedbench.sweep.steps import detections_digest
+    from speedbench.sweep.run_setup import detections_digest
 
     a = [{"image_id": 1, "category_id": 2, "bbox": [10.0, 20.0, 30.0, 40.0], "score": 0.9},
          {"image_id": 1, "category_id": 3, "bbox": [0.0, 0.0, 5.0, 5.0], "score": 0.5}]

@@ -21,7 +21,7 @@ Public face (all take pandas DataFrames of points, which may carry a `host` colu
 - label(row): "model @ size / proposals / threads"
 """
 from speedbench.analyse.common import label
-from speedbench.analyse.compare import Comparison, bootstrap_ratio, compare, env_diff
+from speedbench.analyse.regression import Comparison, bootstrap_ratio, compare, env_diff
 from speedbench.analyse.frontier import frontier
 from speedbench.analyse.interleaved import compare_invocations, paired_ratio
 from speedbench.analyse.hosts import Combined, combine, load_runs

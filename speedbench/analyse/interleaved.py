@@ -25,9 +25,9 @@ import numpy as np
 import pandas as pd
 
 from speedbench.analyse.common import label
-from speedbench.analyse.compare import _accuracy_delta
-from speedbench.analyse.comparison import Comparison
-from speedbench.analyse.rundiff import env_diff
+from speedbench.analyse.regression import accuracy_delta
+from speedbench.analyse.regression_result import Comparison
+from speedbench.analyse.run_changes import env_diff
 from speedbench.analyse.hostspeed import verdict as threshold_verdict
 from speedbench.errors import UserError
 from speedbench.schema import point_id
@@ -232,7 +232,7 @@ def _add_accuracy(c: Comparison, points: pd.DataFrame) -> None:
         a, b = rows.get((p["point_id"], "A")), rows.get((p["point_id"], "B"))
         if a is None or b is None or str(p["verdict"]).startswith("failed"):
             continue
-        for k, v in _accuracy_delta(a, b).items():
+        for k, v in accuracy_delta(a, b).items():
             c.points.at[i, k] = v
         if c.points.at[i, "accuracy"] == "lower":
             c.points.at[i, "regression"] = True

@@ -17,7 +17,7 @@ from pathlib import Path
 
 import speedbench
 from speedbench.errors import UserError
-from speedbench.sweep import steps
+from speedbench.sweep import run_setup
 from speedbench.sweep.env import environment_fingerprint
 from speedbench.sweep.pipeline import PointJob, PreparedGraph, build_row, make_context, run_point, single_stream_fps
 from speedbench.sweep.plan import expand_plan
@@ -63,7 +63,7 @@ def _needs_data(plan) -> bool:
 def _dataset(profile):
     key = (profile.dataset_path, profile.scenes_count, profile.scenes_seed, profile.cache)
     if key not in _DATASETS:
-        _DATASETS[key] = steps.prepare_dataset(profile, Path(profile.cache))
+        _DATASETS[key] = run_setup.prepare_dataset(profile, Path(profile.cache))
     return _DATASETS[key]
 
 

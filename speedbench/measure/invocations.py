@@ -81,7 +81,7 @@ def expanded_alpha(confidence: float, units: int, df: int | None = None) -> floa
     """Tail probability (each side) of Hesterberg's expanded percentile interval for `units` top-level units.
 
     df: degrees of freedom of the t quantile, units - 1 by default. For a ratio of two
-    independent estimates (analyse.compare) we pass the pooled two-sample df, R1 + R2 - 2,
+    independent estimates (analyse.regression) we pass the pooled two-sample df, R1 + R2 - 2,
     and the smaller R as units: our adaptation of the one-sample expansion, checked by the
     A/A and coverage tests rather than taken from the paper.
     """

@@ -190,7 +190,7 @@ class Attributor:
         return None
 
 
-def load_profile(path) -> list[dict]:
+def read_ort_profile(path) -> list[dict]:
     with open(path) as f:
         return json.load(f)
 

@@ -1,6 +1,6 @@
 """Environment fingerprint: what machine and software a run was measured on.
 
-Two runs are only comparable when this matches closely enough; analyse/compare
+Two runs are only comparable when this matches closely enough; analyse/regression
 uses it to warn. Everything is read best-effort: a field that cannot be read
 is None (never a guess).
 """

@@ -13,7 +13,7 @@ import json
 import sys
 from pathlib import Path
 
-from speedbench.sweep import steps
+from speedbench.sweep import run_setup
 from speedbench.sweep.pipeline import GraphStore, PreparedGraph
 from speedbench.sweep.plan import GraphKey, expand_plan
 from speedbench.sweep.profile import parse_profile
@@ -22,7 +22,7 @@ from speedbench.sweep.profile import parse_profile
 def prepare(spec: dict) -> dict:
     profile = parse_profile(spec["profile_text"], spec["profile_source"])
     wanted = [GraphKey(*k) for k in spec["keys"]]
-    dataset = steps.prepare_dataset(profile, Path(profile.cache))
+    dataset = run_setup.prepare_dataset(profile, Path(profile.cache))
     store = GraphStore(profile, dataset, spec["exports_dir"], spec.get("per_image_dir"),
                        status=lambda text: print(f"  {text}", file=sys.stderr, flush=True))
     given = {GraphKey(*json.loads(k)): v for k, v in (spec.get("given") or {}).items()}

@@ -33,7 +33,7 @@ from pathlib import Path
 from speedbench.errors import UserError
 from speedbench.measure.result import NAN
 from speedbench.measure.invocations import Replicated
-from speedbench.sweep import steps
+from speedbench.sweep import run_setup
 from speedbench.sweep.env import environment_fingerprint
 from speedbench.sweep.interleave import schedule
 from speedbench.sweep.interpreters import Interpreter, inspect_pair
@@ -121,11 +121,12 @@ def _run(rd: RunDir, profile, points, order, envs, same_graph, notes, quiet, str
         rd.finish()
         return
     needs_data = any(p.config["backend"] != "synthetic" for p in points)
-    dataset = steps.prepare_dataset(profile, Path(profile.cache)) if needs_data else None
+    dataset = run_setup.prepare_dataset(profile, Path(profile.cache)) if needs_data else None
     progress = Progress(len(todo), quiet=quiet, stream=stream)
     try:
         graphs = _prepare_graphs(rd, profile, points, envs, same_graph, progress, quiet) if needs_data else {}
-        images, policy = steps.timing_images(dataset, profile.timing_images), steps.make_policy(profile.repetitions)
+        images = run_setup.timing_images(dataset, profile.timing_images)
+        policy = run_setup.make_policy(profile.repetitions)
         contexts = {s: PointContext(profile=profile, graphs=GraphStore.prepared(profile, graphs.get(s, {})),
                                     images=images, policy=policy, host=profile.host, python=envs[s].python)
                     for s in SIDES}

@@ -19,11 +19,12 @@ from pathlib import Path
 
 from speedbench import schema
 from speedbench.errors import UserError, one_line
-from speedbench.measure.launch import SETTLE_S
+from speedbench.measure.launch import SETTLE_S, measure_point
 from speedbench.measure.backends import get_backend
+from speedbench.measure.concurrent_launch import add_curve, measure_load
 from speedbench.measure.concurrent_result import single_stream_fps  # re-exported: the sweep's one X(1)
 from speedbench.measure.peak import ensure_peaks, peak_for
-from speedbench.sweep import external, quantised, steps
+from speedbench.sweep import external, quantised, run_setup
 from speedbench.sweep.plan import GraphKey, PlannedPoint
 from speedbench.zoo import trained_sizes
 
@@ -119,7 +120,7 @@ class GraphStore:
             try:
                 graph.accuracy.update(quantised.change_vs_fp32(
                     fp32.path, record.path, self._accuracy(fp32.path, key, []), graph.accuracy, self.dataset,
-                    self.profile, self.cache / "accuracy", steps.detections_dir(self.cache)))
+                    self.profile, self.cache / "accuracy", run_setup.detections_dir(self.cache)))
             except UserError as exc:
                 graph.notes.append(f"change vs fp32 not measured: {exc}")
         return graph
@@ -134,7 +135,7 @@ class GraphStore:
         return graph
 
     def _accuracy(self, path, key: GraphKey, notes: list) -> dict:
-        acc = steps.accuracy(Path(path), key.model, self.profile, self.dataset, self.cache, notes)
+        acc = run_setup.accuracy(Path(path), key.model, self.profile, self.dataset, self.cache, notes)
         if acc.get("per_image_key") and self.per_image_dir is not None:
             link_into(self.cache / "accuracy" / f"{acc['per_image_key']}.npz", self.per_image_dir)
         return acc
@@ -145,7 +146,7 @@ class GraphStore:
         try:
             src = Path(entry.onnx)
             # named by content: a file replaced under the same name is a new graph, never a stale link
-            linked = link_into(src, self.exports_dir, f"{src.stem}-{steps._file_digest(src)}{src.suffix}")
+            linked = link_into(src, self.exports_dir, f"{src.stem}-{run_setup.file_digest(src)}{src.suffix}")
             graph = PreparedGraph(path=str(linked), facts=external.graph_facts(entry),
                                   notes=external.graph_notes(entry))
         except UserError as exc:
@@ -153,7 +154,7 @@ class GraphStore:
         if not self.profile.accuracy or self.dataset is None:
             return graph
         self.status(f"accuracy {key.model} {key.size}px")
-        graph.accuracy = steps.accuracy(src, key.model, self.profile, self.dataset, self.cache, graph.notes,
+        graph.accuracy = run_setup.accuracy(src, key.model, self.profile, self.dataset, self.cache, graph.notes,
                                         external.evaluation_args(entry, key.size, key.proposals))
         if graph.accuracy.get("per_image_key") and self.per_image_dir is not None:
             link_into(self.cache / "accuracy" / f"{graph.accuracy['per_image_key']}.npz", self.per_image_dir)
@@ -200,7 +201,7 @@ def link_into(path: Path, directory: Path, name: str | None = None) -> Path:
 
 # ----------------------------------------------------------------- running one point
 @dataclass(frozen=True)
-class LoadSettings:
+class ThroughputSettings:
     """`speedbench load`: every K (K = 1 too) measured as a throughput point with these settings."""
     seconds: float = 5.0
     pin: bool = False
@@ -214,7 +215,7 @@ class PointContext:
     images: list                     # timing images, decoded once
     policy: object                   # measure.Policy
     host: str
-    load: LoadSettings | None = None
+    throughput: ThroughputSettings | None = None   # `speedbench load`: every K measured under load
     # this host's fp32 matmul peak (measure.peak), filled in for each thread count a point needs
     peaks: dict | None = None
     python: str | None = None        # the workers' interpreter (default: this one; see sweep/interleaved.py)
@@ -237,11 +238,11 @@ class PointOutcome:
 
 
 def make_context(profile, dataset, exports_dir, host: str, per_image_dir=None, status=None, on_prepared=None,
-                 load: LoadSettings | None = None) -> PointContext:
+                 throughput: ThroughputSettings | None = None) -> PointContext:
     return PointContext(profile=profile, graphs=GraphStore(profile, dataset, exports_dir, per_image_dir, status,
                                                            on_prepared),
-                        images=steps.timing_images(dataset, profile.timing_images),
-                        policy=steps.make_policy(profile.repetitions), host=host, load=load)
+                        images=run_setup.timing_images(dataset, profile.timing_images),
+                        policy=run_setup.make_policy(profile.repetitions), host=host, throughput=throughput)
 
 
 def run_point(job: PointJob, context: PointContext) -> PointOutcome:
@@ -252,7 +253,7 @@ def run_point(job: PointJob, context: PointContext) -> PointOutcome:
     (the local sweep interleaves them over all points instead: run_invocation + finish_point).
     """
     planned = job.planned
-    if planned.config["concurrency"] == 1 and context.load is None:
+    if planned.config["concurrency"] == 1 and context.throughput is None:
         outcome = []
         for i in range(max(1, int(getattr(context.profile, "invocations", 1)))):
             if i:
@@ -303,15 +304,13 @@ def _worker_point(planned: PlannedPoint, profile, graph: PreparedGraph):
 
 
 def _measure(job: PointJob, context: PointContext, graph: PreparedGraph):
-    from speedbench.measure import measure_load, measure_point
-    from speedbench.measure.concurrent_launch import add_curve
-
     c, profile = job.planned.config, context.profile
     point = _worker_point(job.planned, profile, graph)
-    if c["concurrency"] == 1 and context.load is None:
+    if c["concurrency"] == 1 and context.throughput is None:
         return measure_point(point, context.images, context.policy, profile.timeout_s, python=context.python)
-    load = context.load or LoadSettings(seconds=None)
-    kwargs = {"policy": context.policy, "timeout_s": profile.timeout_s, "seconds": load.seconds, "pin": load.pin}
+    settings = context.throughput or ThroughputSettings(seconds=None)
+    kwargs = {"policy": context.policy, "timeout_s": profile.timeout_s, "seconds": settings.seconds,
+              "pin": settings.pin}
     result = measure_load(point, context.images, k=c["concurrency"], baseline_fps=job.baseline_fps, **kwargs)
     if job.curve:
         add_curve(result, point, context.images, job.curve, **kwargs)
@@ -322,8 +321,6 @@ def run_invocation(job: PointJob, context: PointContext, index: int):
     """One worker process (invocation `index`) of a one-stream point: its PointResult, or a str
     saying why no worker could run (the graph failed; a harness error). Only invocation 0 runs
     the stage profile: the others time only."""
-    from speedbench.measure import measure_point
-
     planned, profile = job.planned, context.profile
     try:
         graph = context.graphs.prepare(planned)

@@ -11,7 +11,7 @@ import sys
 from pathlib import Path
 
 from speedbench.errors import UserError
-from speedbench.sweep import steps
+from speedbench.sweep import run_setup
 from speedbench.sweep.env import environment_fingerprint
 from speedbench.measure.launch import SETTLE_S
 from speedbench.sweep.pipeline import (PointJob, baselines, finish_point, make_context, record_run_facts,
@@ -38,7 +38,7 @@ def run_sweep(profile_path, out_dir=None, resume: bool = False, quiet: bool = Fa
             raise UserError(f"{profile.source}: models[{i}].weights: {entry.weights[5:]}: checkpoint file not found")
     # Check the dataset before a run directory exists, so a bad path leaves nothing behind.
     needs_data = any(p.config["backend"] != "synthetic" for p in plan.points)
-    dataset = steps.prepare_dataset(profile, Path(profile.cache)) if needs_data else None
+    dataset = run_setup.prepare_dataset(profile, Path(profile.cache)) if needs_data else None
     rd = _open_run(profile, out, resume)
     try:
         run_plan(rd, profile, plan, quiet=quiet, stream=stream, dataset=dataset, retry_failed=retry_failed)
@@ -105,7 +105,7 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
         return counts
 
     if dataset is None and any(p.config["backend"] != "synthetic" for p in todo):
-        dataset = steps.prepare_dataset(profile, Path(profile.cache))
+        dataset = run_setup.prepare_dataset(profile, Path(profile.cache))
     reps = profile.invocations
     one_stream = [p for p in plan.points if p.config["concurrency"] == 1]
     throughput = [p for p in todo if p.config["concurrency"] != 1]
@@ -118,7 +118,7 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
         for pid in rd.failed_ids():
             rd.clear_invocations(pid)
     # the host's matmul peak at every thread count of the plan, once per run, recorded in meta.json
-    context.peaks = steps.host_peak(rd, todo, None if quiet else stream)
+    context.peaks = run_setup.host_peak(rd, todo, None if quiet else stream)
     try:
         # Exports and accuracy first: nothing heavy runs in this process while a worker measures.
         for planned in todo:

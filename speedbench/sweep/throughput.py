@@ -12,9 +12,9 @@ from pathlib import Path
 
 from speedbench import schema
 from speedbench.errors import UserError
-from speedbench.sweep import steps
+from speedbench.sweep import run_setup
 from speedbench.sweep.env import environment_fingerprint
-from speedbench.sweep.pipeline import (LoadSettings, PointJob, make_context, record_run_facts, run_point,
+from speedbench.sweep.pipeline import (ThroughputSettings, PointJob, make_context, record_run_facts, run_point,
                                       single_stream_fps)
 from speedbench.sweep.plan import PlannedPoint, expand_plan
 from speedbench.sweep.profile import load_profile, parse_profile
@@ -52,7 +52,7 @@ def load_into_run(run_dir, ks, seconds=5.0, pin=False, utilisations=(), report=N
 
         host = rd.meta().get("host") or profile.host
         todo = [(PlannedPoint.from_row(r), r) for r in rows]
-        return _measure_all(todo, profile, rd, host, ks, LoadSettings(seconds, pin), utilisations, store, report)
+        return _measure_all(todo, profile, rd, host, ks, ThroughputSettings(seconds, pin), utilisations, store, report)
     finally:
         rd.close()
 
@@ -68,7 +68,7 @@ def load_from_profile(profile_path, ks, out_dir=None, seconds=5.0, pin=False, ut
             "env": environment_fingerprint(), "load": {"ks": ks, "seconds": seconds, "pin": pin}}
     rd = RunDir.create(out, profile.text, meta)
     try:
-        _measure_all([(p, None) for p in planned], profile, rd, profile.host, ks, LoadSettings(seconds, pin),
+        _measure_all([(p, None) for p in planned], profile, rd, profile.host, ks, ThroughputSettings(seconds, pin),
                      utilisations, lambda row, got_samples, source: rd.write_point(row, got_samples), report)
         rd.finish()
     finally:
@@ -76,12 +76,13 @@ def load_from_profile(profile_path, ks, out_dir=None, seconds=5.0, pin=False, ut
     return out
 
 
-def _measure_all(todo, profile, rd, host, ks, load, utilisations, store, report) -> dict:
+def _measure_all(todo, profile, rd, host, ks, settings, utilisations, store, report) -> dict:
     report = report or (lambda label, row, reason: None)
     ks = sorted({int(k) for k in ks})
-    dataset = steps.prepare_dataset(profile, Path(profile.cache)) \
+    dataset = run_setup.prepare_dataset(profile, Path(profile.cache)) \
         if any(p.config["backend"] != "synthetic" for p, _ in todo) else None
-    context = make_context(profile, dataset, rd.exports, host=host, per_image_dir=rd.path / PER_IMAGE_DIR, load=load)
+    context = make_context(profile, dataset, rd.exports, host=host, per_image_dir=rd.path / PER_IMAGE_DIR,
+                           throughput=settings)
     record_run_facts(rd, [p for p, _ in todo])
     counts = {"ok": 0, "failed": 0}
     for planned, source in todo:

@@ -79,7 +79,7 @@ class Runner:
                     pre.append((t1 - t0) * 1e3)
                     post.append((t3 - t2) * 1e3)
                     runs.append((t3 - t0) * 1e3)
-            events = st.load_profile(sess.end_profiling())
+            events = st.read_ort_profile(sess.end_profiling())
             opt_files = glob.glob(os.path.join(tmp, "optimized.onnx"))
             optimized = onnx.load(opt_files[0], load_external_data=False) if opt_files else None
         out = st.attribute(events, st.Attributor(original, optimized), stage_lookup(original), last_runs=reps,

@@ -80,7 +80,7 @@ class Runner:
             for i in range(warmup + reps):
                 sess.run(None, inputs[i % len(inputs)])
             path = sess.end_profiling()
-            events = st.load_profile(path)
+            events = st.read_ort_profile(path)
             optimized = None
             opt_files = glob.glob(os.path.join(tmp, "optimized.onnx"))
             if opt_files:

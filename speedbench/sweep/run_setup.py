@@ -97,7 +97,7 @@ def host_peak(rd, points, stream=None) -> dict | None:
 
 
 # ----------------------------------------------------------------- accuracy
-def _file_digest(path: Path) -> str:
+def file_digest(path: Path) -> str:
     h = hashlib.sha256()
     with open(path, "rb") as fh:
         for block in iter(lambda: fh.read(1 << 20), b""):
@@ -114,7 +114,7 @@ def accuracy(graph: Path, model: str, profile, dataset, cache: Path, notes: list
     adapter (with its candidate count) and the size join the key.
     """
     ort = _ort_version()
-    parts = [_file_digest(graph), dataset_fingerprint(dataset), profile.limit, ort]
+    parts = [file_digest(graph), dataset_fingerprint(dataset), profile.limit, ort]
     if adapted:
         parts += [adapted["adapter"].digest(), adapted["size"]]
     key = hashlib.sha256(json.dumps(parts).encode()).hexdigest()[:20]

@@ -19,9 +19,9 @@ import pandas as pd
 from speedbench.analyse.common import as_float as _f
 from speedbench.analyse.common import require_columns, with_ids
 from speedbench.analyse.paired import paired_diff
-from speedbench.analyse.comparison import Comparison
+from speedbench.analyse.regression_result import Comparison
 from speedbench.analyse.hostspeed import adjust, host_status, probe_values
-from speedbench.analyse.rundiff import env_diff, load_notes, thread_change_notes
+from speedbench.analyse.run_changes import busy_machine_notes, env_diff, thread_change_notes
 from speedbench.analyse.runs import Run, as_run
 from speedbench.errors import UserError
 from speedbench.measure.invocations import bootstrap_distribution, expanded_alpha, mixture_percentiles
@@ -144,7 +144,7 @@ def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: 
                      f"moves (measure with [repetitions] invocations >= 2, or pass --gate-single-process)")
     if len(points) and (points["drift"] == "not recorded").all():
         notes.append("detection drift not recorded in these runs")
-    notes += [x for x in load_notes(b, n, np_, bp) if x not in notes]
+    notes += [x for x in busy_machine_notes(b, n, np_, bp) if x not in notes]
     return Comparison(points=points, env_diff=env_diff(b.meta, n.meta), unmatched=unmatched,
                       threshold=threshold, confidence=confidence, base_name=b.name, new_name=n.name,
                       fail_on_drift=fail_on_drift, notes=notes, host=host)
@@ -221,7 +221,7 @@ def _compare_point(pid, rb, rn, sb, sn, threshold, confidence, seed, n_boot, fai
         verdict = "unchanged"
     row["verdict"] = verdict
     row["mem_delta_mib"] = _f(rn.get("rss_peak_mib")) - _f(rb.get("rss_peak_mib"))
-    row.update(_accuracy_delta(rb, rn))
+    row.update(accuracy_delta(rb, rn))
     row["drift"] = _drift(rb, rn)
     row.update(_stages(rb, rn))
     row["regression"] = ((verdict == "slower" and row["gated"]) or row["accuracy"] == "lower"
@@ -239,7 +239,7 @@ def _ratio_from_recorded(rb, rn):
     return n / b, nlo / bhi, nhi / blo
 
 
-def _accuracy_delta(rb, rn) -> dict:
+def accuracy_delta(rb, rn) -> dict:
     mb, mn = _f(rb.get("map")), _f(rn.get("map"))
     if not (np.isfinite(mb) and np.isfinite(mn)):
         return {"map_delta": math.nan, "map_delta_ci_lo": math.nan, "map_delta_ci_hi": math.nan,

@@ -1,4 +1,4 @@
-"""What changed between two runs besides the measurements: environment, thread settings, load."""
+"""What changed between two runs besides the measurements: environment, thread settings, a busy machine."""
 from __future__ import annotations
 
 import pandas as pd
@@ -28,7 +28,7 @@ def thread_change_notes(bi: pd.DataFrame, ni: pd.DataFrame, unmatched: pd.DataFr
             "listed as unmatched, not compared (verdicts compare equal configurations only)"]
 
 
-def load_notes(b: Run, n: Run, new_pts, base_pts) -> list[str]:
+def busy_machine_notes(b: Run, n: Run, new_pts, base_pts) -> list[str]:
     """Say when a run was measured on a busy machine or has noisy points: wide intervals follow."""
     out = []
     pairs = ((b, base_pts), (n, new_pts)) if b.path != n.path or not b.path else ((b, base_pts),)
