@@ -35,45 +35,17 @@ import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "tests"))   # the tests' profile writer (tests/helpers.py)
 
-SLOWDOWN_PROFILE = """
-[run]
-name = "rerun-synthetic"
-timeout_s = 60
+from helpers import synthetic_profile  # noqa: E402
 
-[dataset]
-scenes = {{count = 1}}
-accuracy = false
 
-[sweep]
-sizes = [160, 224, 320]
-proposals = [50]
-backends = ["synthetic"]
-
-[[models]]
-id = "synthetic"
-
-[[threads]]
-intra = 1
-
-[[threads]]
-intra = 2
-
-[repetitions]
-invocations = 5
-warmup_min = 2
-warmup_max = 5
-min_reps = 30
-max_reps = 30
-max_seconds = 2.0
-stages = false
-
-[synthetic]
-work_ms = {work_ms}
-mode = "sleep"
-jitter = 0.05
-process_cov = 0.02
-"""
+def slowdown_profile(work_ms: float) -> str:
+    """The synthetic A/A and 15 %-slower sweeps: 3 sizes x 2 thread settings, 5 invocations each."""
+    return synthetic_profile("rerun-synthetic", sizes=(160, 224, 320), proposals=(50,), threads=(1, 2), timeout_s=60,
+                             repetitions={"invocations": 5, "warmup_min": 2, "warmup_max": 5, "min_reps": 30,
+                                          "max_reps": 30, "max_seconds": 2.0},
+                             synthetic={"work_ms": work_ms, "jitter": 0.05, "process_cov": 0.02})
 
 
 def _env() -> dict:
@@ -150,8 +122,8 @@ def pairs(profile: Path, n: int, work: Path) -> list[dict]:
 
 def slowdown(work: Path) -> dict:
     base, slow = work / "syn-base.toml", work / "syn-slow.toml"
-    base.write_text(SLOWDOWN_PROFILE.format(work_ms=4.0))
-    slow.write_text(SLOWDOWN_PROFILE.format(work_ms=4.0 * 1.15))
+    base.write_text(slowdown_profile(4.0))
+    slow.write_text(slowdown_profile(4.0 * 1.15))
     a, b, c = work / "syn-a", work / "syn-b", work / "syn-slow"
     sweep(base, a, work)
     sweep(base, b, work)

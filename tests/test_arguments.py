@@ -2,9 +2,8 @@
 suffix of every output file are checked before any work starts: one line, exit status 2."""
 import pytest
 
-from helpers import cli
 from speedbench.errors import UserError
-from test_sweep import write_profile
+from helpers import cli, write_profile
 
 
 def refused(capsys, args, *words):

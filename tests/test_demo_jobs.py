@@ -8,39 +8,9 @@ import pytest
 from speedbench.cli import main
 from speedbench.demo import check, sizing
 from speedbench.sweep import load_run, run_sweep
+from helpers import synthetic_profile
 
-PROFILE = """
-[run]
-name = "syn"
-timeout_s = 60
-
-[dataset]
-scenes = {count = 1}
-accuracy = false
-
-[sweep]
-sizes = [64, 96]
-proposals = [10]
-backends = ["synthetic"]
-
-[[models]]
-id = "synthetic"
-
-[[threads]]
-intra = 1
-
-[repetitions]
-warmup_min = 1
-warmup_max = 2
-min_reps = 3
-max_reps = 5
-max_seconds = 0.3
-stages = false
-
-[synthetic]
-work_ms = 2.0
-mode = "sleep"
-"""
+PROFILE = synthetic_profile(timeout_s=60)
 
 
 @pytest.fixture
@@ -83,7 +53,7 @@ def test_throughput_keeps_the_invocations_of_the_single_stream_rows(tmp_path, mo
 
     monkeypatch.setattr(sizing, "LOAD_SECONDS", 0.3)
     prof = tmp_path / "syn.toml"
-    prof.write_text(PROFILE.replace("stages = false", "stages = false\ninvocations = 3"))
+    prof.write_text(synthetic_profile(timeout_s=60, repetitions={"invocations": 3}))
     run = run_sweep(prof, out_dir=tmp_path / "run", quiet=True, stream=open(os.devnull, "w"))
     before = load_samples(run).sort_values(["point_id", "i"]).reset_index(drop=True)
     assert (before.groupby("point_id")["invocation"].nunique() == 3).all()

@@ -24,47 +24,11 @@ from speedbench.sweep import expand_plan, load_meta, load_profile, load_run
 from speedbench.schema import CONFIG_COLUMNS
 
 import psutil
-from helpers import stored_points
+from helpers import stored_points, write_synthetic_profile
 
-PROFILE = """
-[run]
-name = "fleet-syn"
-timeout_s = 30
-cache = "{cache}"
-
-[dataset]
-scenes = {{count = 1}}
-accuracy = false
-
-[sweep]
-sizes = {sizes}
-proposals = {proposals}
-backends = ["synthetic"]
-
-[[models]]
-id = "synthetic"
-
-[[threads]]
-intra = 1
-
-[repetitions]
-warmup_min = 1
-warmup_max = 2
-min_reps = 3
-max_reps = 5
-max_seconds = 0.3
-stages = false
-
-[synthetic]
-work_ms = 60.0
-mode = "sleep"
-"""
-
-
-def write_profile(tmp_path, sizes="[64, 96]", proposals="[10, 20]"):
-    path = tmp_path / "fleet.toml"
-    path.write_text(PROFILE.format(cache=tmp_path / "cache", sizes=sizes, proposals=proposals))
-    return path
+def write_profile(tmp_path, sizes=(64, 96), proposals=(10, 20), **kwargs):
+    return write_synthetic_profile(tmp_path / "fleet.toml", name="fleet-syn", cache=tmp_path / "cache", sizes=sizes,
+                                   proposals=proposals, synthetic={"work_ms": 60.0}, **kwargs)
 
 
 @pytest.fixture(scope="module")
@@ -224,7 +188,7 @@ def _wait_label(client, label, present=True, timeout=60):
 
 def test_lost_host_records_its_point_in_flight_and_resume_completes_it(cluster, tmp_path):
     cl, client = cluster
-    prof = write_profile(tmp_path, sizes="[64, 96, 128]", proposals="[10]")
+    prof = write_profile(tmp_path, sizes=(64, 96, 128), proposals=(10,))
     out = tmp_path / "fleet"
     addr = cl.scheduler_address
     worker = _start_cli_worker(addr, "c")
@@ -319,7 +283,7 @@ def test_a_point_that_keeps_killing_its_worker_is_recorded_failed(cluster, tmp_p
         old, dask_scheduler.allowed_failures = dask_scheduler.allowed_failures, n
         return old
 
-    prof = write_profile(tmp_path, sizes="[64]", proposals="[10, 20, 30]")
+    prof = write_profile(tmp_path, sizes=(64,), proposals=(10, 20, 30))
     out = tmp_path / "fleet"
     from speedbench.fleet import run_fleet_sweep
 
@@ -379,7 +343,7 @@ def test_without_the_engine_cluster_says_what_to_install(monkeypatch, tmp_path, 
 
 def test_killed_client_keeps_what_it_stored_and_resume_finishes_without_duplicates(cluster, tmp_path):
     cl, _ = cluster
-    prof = write_profile(tmp_path, sizes="[64, 96, 128]", proposals="[10]")
+    prof = write_profile(tmp_path, sizes=(64, 96, 128), proposals=(10,))
     out = tmp_path / "fleet"
     cmd = [sys.executable, "-m", "speedbench.fleet", str(prof), "--cluster", cl.scheduler_address,
            "-o", str(out), "--hosts", "a", "-q"]
@@ -413,10 +377,7 @@ def test_scaling_efficiency_has_one_definition_locally_and_on_the_fleet(cluster,
     from speedbench.sweep import run_sweep
 
     _, client = cluster
-    path = tmp_path / "fleet.toml"
-    path.write_text(PROFILE.format(cache=tmp_path / "cache", sizes="[64]", proposals="[10]")
-                    .replace('backends = ["synthetic"]', 'backends = ["synthetic"]\nconcurrency = [1, 2]')
-                    )
+    path = write_profile(tmp_path, sizes=(64,), proposals=(10,), concurrency=(1, 2))
     local = load_run(run_sweep(path, out_dir=tmp_path / "local", quiet=True, stream=open(os.devnull, "w")))
     runs = run_fleet_sweep(path, client, out_dir=tmp_path / "fleet", hosts="a", quiet=True,
                            stream=open(os.devnull, "w"))

@@ -12,39 +12,10 @@ from speedbench.cli import main
 from speedbench.errors import UserError
 from speedbench.sweep import load_run
 from speedbench.sweep.interleaved import run_interleaved
+from helpers import synthetic_profile
 
-PROFILE = """
-[run]
-name = "ab"
-timeout_s = 60
-
-[dataset]
-scenes = {count = 1}
-accuracy = false
-
-[sweep]
-sizes = [64, 96]
-proposals = [10]
-backends = ["synthetic"]
-
-[[models]]
-id = "synthetic"
-
-[[threads]]
-intra = 1
-
-[repetitions]
-warmup_min = 1
-warmup_max = 2
-min_reps = 10
-max_reps = 20
-max_seconds = 0.5
-stages = false
-
-[synthetic]
-work_ms = 10.0
-mode = "sleep"
-"""
+PROFILE = synthetic_profile("ab", timeout_s=60, repetitions={"min_reps": 10, "max_reps": 20, "max_seconds": 0.5},
+                            synthetic={"work_ms": 10.0})
 
 
 def _script(path, body):

@@ -16,6 +16,7 @@ import pytest
 from speedbench.errors import UserError
 from speedbench.measure.concurrent_launch import LOAD_COLUMNS, host_cores, measure_load, measure_scaling, summarise
 from speedbench.measure.point import Point, Policy
+from helpers import synthetic_profile
 
 MS = 1_000_000  # ns per ms
 FAST = Policy(warmup_min=2, warmup_max=6, warmup_window=2, max_seconds=1.0)
@@ -256,36 +257,10 @@ def test_bad_points_and_images():
 
 
 # ------------------------------------------------------------------ the `speedbench load` command
-LOAD_PROFILE = """
-[run]
-name = "load-test"
-timeout_s = 60
-
-[dataset]
-scenes = {count = 1}
-accuracy = false
-
-[sweep]
-sizes = [64]
-proposals = [10]
-backends = ["synthetic"]
-
-[[models]]
-id = "synthetic"
-
-[[threads]]
-intra = 1
-
-[repetitions]
-warmup_min = 1
-warmup_max = 3
-min_reps = 3
-max_reps = 20
-max_seconds = 0.3
-
-[synthetic]
-work_ms = 3.0
-"""
+LOAD_SETTINGS = dict(name="load-test", sizes=(64,), timeout_s=60,
+                     repetitions={"warmup_max": 3, "max_reps": 20, "stages": None},
+                     synthetic={"work_ms": 3.0, "mode": None})
+LOAD_PROFILE = synthetic_profile(**LOAD_SETTINGS)
 
 
 @pytest.fixture()
@@ -372,7 +347,7 @@ def test_concurrency_as_a_sweep_axis_then_size(tmp_path):
     if host_cores() < 2:
         pytest.skip("needs 2 cores for K=2")
     prof = tmp_path / "axis.toml"
-    prof.write_text(LOAD_PROFILE.replace('backends = ["synthetic"]', 'backends = ["synthetic"]\nconcurrency = [1, 2]'))
+    prof.write_text(synthetic_profile(**LOAD_SETTINGS, concurrency=(1, 2)))
     run = run_sweep(prof, out_dir=tmp_path / "run", quiet=True, stream=open(os.devnull, "w"))
     df = load_run(run).set_index("concurrency")
     assert set(df.index) == {1, 2} and (df["status"] == "ok").all()

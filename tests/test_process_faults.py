@@ -11,7 +11,7 @@ import time
 
 import psutil
 
-from test_sweep import write_profile
+from helpers import write_profile
 
 WRITER = r"""
 import hashlib, json, sys

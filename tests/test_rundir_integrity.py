@@ -18,11 +18,10 @@ import time
 
 import pytest
 
-from helpers import cli
 from speedbench.errors import UserError
 from speedbench.sweep import rundir
 from speedbench.sweep.rundir import RunDir
-from test_sweep import write_profile
+from helpers import cli, write_profile
 
 
 def committed(run) -> dict:

@@ -1,59 +1,17 @@
 """Sweeps end to end on the measure package's synthetic harness backend (no model is run):
 rows written as points finish, failures kept as rows, resume after SIGKILL of the parent."""
 import os
-import signal
 import sqlite3
 import subprocess
 import sys
-import time
 
 import pytest
 
 from speedbench.sweep import expand_plan, load_profile, load_run, load_samples, run_sweep
-from helpers import stored_points
-
-PROFILE = """
-[run]
-name = "syn"
-timeout_s = 30
-
-[dataset]
-scenes = {{count = 1}}
-accuracy = false
-
-[sweep]
-sizes = {sizes}
-proposals = [10, 20]
-backends = ["synthetic"]
-
-[[models]]
-id = "synthetic"
-{extra_model}
-[[threads]]
-intra = 1
-
-[repetitions]
-warmup_min = 1
-warmup_max = 2
-min_reps = 3
-max_reps = 5
-max_seconds = 0.5
-stages = false
-
-[synthetic]
-work_ms = {work_ms}
-mode = "sleep"
-"""
-
-
-def write_profile(tmp_path, sizes="[64, 96]", extra_model="", work_ms=1.0):
-    path = tmp_path / "syn.toml"
-    path.write_text(PROFILE.format(sizes=sizes, extra_model=extra_model, work_ms=work_ms))
-    return path
-
+from helpers import kill_sweep_once_stored, write_profile
 
 def test_sweep_writes_rows_and_keeps_failures(tmp_path):
-    prof = write_profile(tmp_path, extra_model='[[models]]\nid = "synthetic:fail=raise"\nsizes = [64]\n')
+    prof = write_profile(tmp_path, models=("synthetic", {"id": "synthetic:fail=raise", "sizes": [64]}))
     out = run_sweep(prof, out_dir=tmp_path / "run", quiet=True, stream=open(os.devnull, "w"))
     df = load_run(out)
     assert len(df) == 2 * 2 + 2 and df["point_id"].is_unique
@@ -113,15 +71,7 @@ def test_resume_after_sigkill_of_parent_gives_full_set_without_duplicates(tmp_pa
     run = tmp_path / "run"
     plan_ids = {p.point_id for p in expand_plan(load_profile(prof)).points}
     assert len(plan_ids) == 8
-    cmd = [sys.executable, "-m", "speedbench", "sweep", str(prof), "-o", str(run), "--quiet"]
-    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
-    deadline = time.monotonic() + 120
-    while stored_points(run / "points.sqlite") < 2:
-        assert proc.poll() is None, proc.stderr.read().decode()
-        assert time.monotonic() < deadline, "sweep made no progress"
-        time.sleep(0.05)
-    proc.send_signal(signal.SIGKILL)   # the parent only; its worker (own session) may still finish
-    proc.wait()
+    cmd = kill_sweep_once_stored(prof, run, 2)   # the parent only; its worker (own session) may still finish
     partial = load_run(run)
     assert 2 <= len(partial) < 8, "kill came too late to test resume"
     assert set(partial.point_id) <= plan_ids
@@ -246,12 +196,7 @@ def test_failed_export_becomes_failed_rows_and_the_sweep_goes_on(tmp_path, monke
         raise RuntimeError("exporter exploded\nwith a second line")
 
     monkeypatch.setattr(export, "export_onnx", broken)
-    prof = tmp_path / "p.toml"
-    prof.write_text(PROFILE.format(sizes="[64]", extra_model="", work_ms=1.0).replace(
-        'backends = ["synthetic"]', 'backends = ["ort", "synthetic"]'))
-    text = prof.read_text().replace('[[models]]\nid = "synthetic"',
-                                    '[[models]]\nid = "synthetic"\n[[models]]\nid = "demo_fcos"')
-    prof.write_text(text)
+    prof = write_profile(tmp_path, sizes="[64]", backends=("ort", "synthetic"), models=("synthetic", "demo_fcos"))
     df = load_run(run_sweep(prof, out_dir=tmp_path / "run", quiet=True, stream=open(os.devnull, "w")))
     # proposals [10, 20] x {ort, synthetic} for each model; the synthetic model runs on synthetic only
     fcos_ort = df[(df.model == "demo_fcos") & (df.backend == "ort")]
@@ -314,10 +259,7 @@ def test_missing_checkpoint_or_dataset_fails_before_any_run_directory(tmp_path, 
 
 def test_concurrency_axis_measures_throughput_points(tmp_path):
     # K=2 workers x 1 thread fits 2 cores; K=4 would not and is skipped with a note by the plan.
-    prof = write_profile(tmp_path, sizes="[64]", work_ms=2.0)
-    prof.write_text(prof.read_text().replace('backends = ["synthetic"]',
-                                             'backends = ["synthetic"]\nconcurrency = [1, 2]')
-                    .replace("proposals = [10, 20]", "proposals = [10]"))
+    prof = write_profile(tmp_path, sizes="[64]", work_ms=2.0, proposals=(10,), concurrency=(1, 2))
     plan = expand_plan(load_profile(prof), cores=2)
     assert [p.config["concurrency"] for p in plan.points] == [1, 2]
     df = load_run(run_sweep(prof, out_dir=tmp_path / "run", quiet=True, stream=open(os.devnull, "w")))

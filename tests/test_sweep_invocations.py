@@ -3,66 +3,17 @@ interleaved round-robin in a recorded seeded order, every sample with its invoca
 invocation recorded with its reason, resume per invocation after the parent is killed."""
 import json
 import os
-import signal
 import sqlite3
 import subprocess
-import sys
-import time
 
 from speedbench.sweep import expand_plan, load_profile, load_run, load_samples, run_sweep
+from helpers import kill_sweep_once_stored, write_synthetic_profile
 
-PROFILE = """
-[run]
-name = "syn-inv"
-timeout_s = 30
-
-[dataset]
-scenes = {{count = 1}}
-accuracy = false
-
-[sweep]
-sizes = {sizes}
-proposals = [10, 20]
-backends = ["synthetic"]
-
-[[models]]
-id = "synthetic"
-
-[[threads]]
-intra = 1
-
-[repetitions]
-invocations = {r}
-warmup_min = 1
-warmup_max = 2
-min_reps = {reps}
-max_reps = {reps}
-max_seconds = 5.0
-stages = false
-
-[synthetic]
-work_ms = {work_ms}
-mode = "sleep"
-process_cov = 0.2
-{extra}
-"""
-
-
-def _profile(tmp_path, sizes="[64, 96]", r=3, reps=5, work_ms=1.0, extra=""):
-    path = tmp_path / "syn.toml"
-    path.write_text(PROFILE.format(sizes=sizes, r=r, reps=reps, work_ms=work_ms, extra=extra))
-    return path
-
-
-def _invocations_stored(db) -> int:
-    try:
-        con = sqlite3.connect(db, timeout=5)
-        try:
-            return con.execute("SELECT COUNT(*) FROM invocations").fetchone()[0]
-        finally:
-            con.close()
-    except sqlite3.OperationalError:
-        return 0
+def _profile(tmp_path, sizes=(64, 96), r=3, reps=5, work_ms=1.0, synthetic=None):
+    return write_synthetic_profile(tmp_path / "syn.toml", name="syn-inv", sizes=sizes, proposals=(10, 20),
+                                   repetitions={"invocations": r, "min_reps": reps, "max_reps": reps,
+                                                "max_seconds": 5.0},
+                                   synthetic={"work_ms": work_ms, "process_cov": 0.2, **(synthetic or {})})
 
 
 def test_invocations_interleaved_recorded_and_aggregated(tmp_path):
@@ -83,7 +34,7 @@ def test_invocations_interleaved_recorded_and_aggregated(tmp_path):
 
 
 def test_a_failed_invocation_is_recorded_and_the_point_keeps_the_others(tmp_path):
-    prof = _profile(tmp_path, sizes="[64]", extra="fail_invocation = 1")
+    prof = _profile(tmp_path, sizes=(64,), synthetic={"fail_invocation": 1})
     out = run_sweep(prof, out_dir=tmp_path / "run", quiet=True, stream=open(os.devnull, "w"))
     df = load_run(out)
     assert (df.status == "ok").all() and (df.invocations == 2).all() and (df.invocations_failed == 1).all()
@@ -93,18 +44,10 @@ def test_a_failed_invocation_is_recorded_and_the_point_keeps_the_others(tmp_path
 
 def test_resume_per_invocation_after_sigkill_of_parent(tmp_path):
     # ~1 s of timed work per invocation: the parent is killed once two invocations are stored.
-    prof = _profile(tmp_path, sizes="[64, 96]", r=3, reps=10, work_ms=100.0)
+    prof = _profile(tmp_path, sizes=(64, 96), r=3, reps=10, work_ms=100.0)
     run = tmp_path / "run"
     plan_ids = {p.point_id for p in expand_plan(load_profile(prof)).points}
-    cmd = [sys.executable, "-m", "speedbench", "sweep", str(prof), "-o", str(run), "--quiet"]
-    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
-    deadline = time.monotonic() + 120
-    while _invocations_stored(run / "points.sqlite") < 2:
-        assert proc.poll() is None, proc.stderr.read().decode()
-        assert time.monotonic() < deadline, "sweep made no progress"
-        time.sleep(0.05)
-    proc.send_signal(signal.SIGKILL)
-    proc.wait()
+    cmd = kill_sweep_once_stored(prof, run, 2, table="invocations")
     con = sqlite3.connect(run / "points.sqlite")
     before = {(p, k): r for p, k, r in con.execute("SELECT point_id, invocation, result FROM invocations")}
     con.close()

@@ -226,11 +226,9 @@ def _run_workers(point, k, specs, tmp: Path, window: float, min_requests: int, t
             for i, (spec, _) in enumerate(specs):
                 if ready[i] is None and os.path.exists(spec["ready"]):
                     ready[i] = read_json(spec["ready"])
-            failed = _first_failure(procs, specs, tmp)
-            if failed:
-                return LoadResult(point, k, "failed", failed)
-            if time.monotonic() > deadline:
-                return LoadResult(point, k, "failed", f"timed out after {timeout_s:g} s (workers not ready)")
+            stop = _stop_reason(procs, specs, tmp, deadline, f"timed out after {timeout_s:g} s (workers not ready)")
+            if stop:
+                return LoadResult(point, k, "failed", stop)
             time.sleep(0.01)
         # Stretch the window so the slowest worker completes about min_requests requests.
         slowest_ms = max(r.get("warmup_p50_ms", 0.0) for r in ready)
@@ -242,11 +240,9 @@ def _run_workers(point, k, specs, tmp: Path, window: float, min_requests: int, t
         end_ns = start_ns + int(window * 1e9)
         write_json(Path(specs[0][0]["go"]), {"start_ns": start_ns, "end_ns": end_ns})
         while any(p.poll() is None for p in procs):
-            failed = _first_failure(procs, specs, tmp)
-            if failed:
-                return LoadResult(point, k, "failed", failed)
-            if time.monotonic() > deadline:
-                return LoadResult(point, k, "failed", f"timed out after {timeout_s:g} s")
+            stop = _stop_reason(procs, specs, tmp, deadline, f"timed out after {timeout_s:g} s")
+            if stop:
+                return LoadResult(point, k, "failed", stop)
             time.sleep(0.02)
         failed = _first_failure(procs, specs, tmp)
         if failed:
@@ -268,6 +264,14 @@ def _run_workers(point, k, specs, tmp: Path, window: float, min_requests: int, t
         return LoadResult(point, k, "failed", "no request completed inside the measurement window",
                           summary=summary, workers=workers)
     return LoadResult(point, k, "ok", "", summary=summary, latencies_ms=lat, workers=workers)
+
+
+def _stop_reason(procs, specs, tmp: Path, deadline: float, timed_out: str) -> str:
+    """Why the point must stop now: a worker failed, or the deadline passed (``timed_out``); '' to go on."""
+    failed = _first_failure(procs, specs, tmp)
+    if failed:
+        return failed
+    return timed_out if time.monotonic() > deadline else ""
 
 
 def _first_failure(procs, specs, tmp: Path) -> str:

@@ -13,9 +13,7 @@ Everything is plain text here; the renderers escape it.
 from __future__ import annotations
 
 from speedbench.report import caveats, sections
-from speedbench.report.caveats import TIMED, _outside_training  # noqa: F401 (importable here as before)
 from speedbench.report.report_data import ReportData, prepare
-from speedbench.report.sections import SAFETY, SAFETY_HOSTS  # noqa: F401 (importable here as before)
 
 # The order of the report.
 SECTIONS = (sections.question, sections.hosts, sections.environment, caveats.method, sections.frontier_section,
