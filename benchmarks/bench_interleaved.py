@@ -118,11 +118,11 @@ def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--repeats", type=int, default=5, help="A/A interleaved runs (default 5)")
     ap.add_argument("--pairs", type=int, default=None,
-                    help="A/B pairs per point = the profile's invocations (default: the profile's, 6)")
+                    help="A/B pairs per point = the profile's invocations (default: the profile's)")
     ap.add_argument("--seconds", type=float, default=None,
-                    help="max_seconds of timing per worker process (default: the profile's, 3.0)")
+                    help="max_seconds of timing per worker process (default: the profile's)")
     ap.add_argument("--min-reps", type=int, default=None,
-                    help="timed runs at least per worker process (default: the profile's, 40)")
+                    help="timed runs at least per worker process (default: the profile's)")
     ap.add_argument("--other", help="interpreter of a second environment (e.g. another onnxruntime)")
     ap.add_argument("--out", default=str(Path(tempfile.gettempdir()) / "bench-interleaved"))
     ap.add_argument("--parts", default="aa,seq,other",
