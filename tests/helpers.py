@@ -14,8 +14,9 @@ REPETITIONS = {"warmup_min": 1, "warmup_max": 2, "min_reps": 3, "max_reps": 5, "
 SYNTHETIC = {"work_ms": 2.0, "mode": "sleep"}
 
 
-def synthetic_profile(name="syn", *, sizes=(64, 96), proposals=(10,), backends=("synthetic",), models=("synthetic",),
-                      threads=(1,), concurrency=None, timeout_s=30, cache=None, repetitions=None, synthetic=None) -> str:
+def synthetic_profile(name="syn", *, sizes=(64, 96), proposals=(10,), backends=("synthetic",),
+                      models=("synthetic",), threads=(1,), concurrency=None, timeout_s=30, cache=None,
+                      repetitions=None, synthetic=None) -> str:
     """A sweep profile (TOML text) on the synthetic harness backend.
 
     models: model ids, or dicts of a [[models]] table (e.g. {"id": "synthetic:fail=raise", "sizes": [64]}).
