@@ -29,7 +29,7 @@ import numpy as np
 
 from speedbench.evaluate.cocoeval import EPS, IOU_THRS, MAX_DETS, REC_THRS, Matching
 
-_BLOCK_ELEMENTS = 1 << 19  # resamples x detections per block: a few MiB, cache-sized
+_BLOCK_ELEMENTS = 1 << 20  # resamples x detections per block: a few MiB, cache-sized
 _PRODUCT_RATIO = 200  # images x marks per detection below which the BLAS product is used
 
 
@@ -134,7 +134,9 @@ class _Class:
 
     def seen_by_running_sum(self, w):
         """The same by a running sum over every detection (any number of images)."""
-        return np.cumsum(w[:, self.img], axis=1, dtype=np.int32)[:, self.marks]
+        running = np.take(w, self.img, axis=1)
+        np.cumsum(running, axis=1, out=running)
+        return np.take(running, self.marks, axis=1)
 
     def mean_precision(self, w, npos, seen=None):
         """Mean interpolated precision over thresholds and recall points, per row of w.
