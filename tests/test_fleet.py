@@ -427,3 +427,16 @@ def test_scaling_efficiency_has_one_definition_locally_and_on_the_fleet(cluster,
         assert two["scaling_eff"] == pytest.approx(two["tput_fps"] / (2 * 1000.0 / one["lat_mean_ms"]), rel=1e-9)
         # the p50 baseline is another number, so the check above can tell the two apart
         assert two["scaling_eff"] != pytest.approx(two["tput_fps"] / (2 * one["fps"]), rel=1e-9)
+
+
+def test_fleet_module_argument_errors_are_one_line(capsys):
+    # `python -m speedbench.fleet` refuses bad arguments like every speedbench command: one line, exit 2.
+    from speedbench.fleet.__main__ import main
+
+    for argv, said in ((["p.toml"], "the following arguments are required: --cluster"),
+                       (["p.toml", "--cluster", "tcp://s:8786", "--lost-after", "-3"], "argument --lost-after")):
+        with pytest.raises(SystemExit) as stop:
+            main(argv)
+        err = capsys.readouterr().err
+        assert stop.value.code == 2 and err.count("\n") == 1 and said in err
+        assert err.startswith("speedbench: error: ") and "(see python -m speedbench.fleet --help)" in err
