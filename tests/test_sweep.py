@@ -315,36 +315,36 @@ def test_cached_scenes_are_decoded_once_and_a_changed_file_is_still_refused(tmp_
 
     from speedbench.data.datasets import Dataset
     from speedbench.errors import UserError
-    from speedbench.sweep import steps
+    from speedbench.sweep import run_setup
 
     profile = SimpleNamespace(dataset_path=None, scenes_count=3, scenes_seed=5, max_pixels=40_000_000)
-    first = steps.prepare_dataset(profile, tmp_path)
-    stamp = tmp_path / "scenes" / "heldout-n3-s5" / steps.CHECKED_FILE
+    first = run_setup.prepare_dataset(profile, tmp_path)
+    stamp = tmp_path / "scenes" / "heldout-n3-s5" / run_setup.CHECKED_FILE
     assert stamp.is_file()
 
     decoded = []
     original = Dataset.check_images
     monkeypatch.setattr(Dataset, "check_images", lambda self: decoded.append(1) or original(self))
-    again = steps.prepare_dataset(profile, tmp_path)
+    again = run_setup.prepare_dataset(profile, tmp_path)
     assert decoded == [] and again.digest == first.digest  # same bytes: no decoding
 
     image = first.images[1].path
     data = image.read_bytes()
     image.write_bytes(data[: len(data) // 2])  # truncated: a corrupt file
     with pytest.raises(UserError, match=rf"image {first.images[1].id}"):
-        steps.prepare_dataset(profile, tmp_path)
+        run_setup.prepare_dataset(profile, tmp_path)
     assert decoded == [1]
 
     Image.new("RGB", (17, 9)).save(image)  # a readable image of the wrong size
     with pytest.raises(UserError, match="17x9 but the annotations say"):
-        steps.prepare_dataset(profile, tmp_path)
+        run_setup.prepare_dataset(profile, tmp_path)
 
     image.write_bytes(data)  # restored: passes the (full) check, then is trusted again
-    steps.prepare_dataset(profile, tmp_path)
+    run_setup.prepare_dataset(profile, tmp_path)
     count = len(decoded)
-    steps.prepare_dataset(profile, tmp_path)
+    run_setup.prepare_dataset(profile, tmp_path)
     assert len(decoded) == count
 
     profile.max_pixels = 100  # a tighter pixel limit is a different check: decoded again
     with pytest.raises(UserError, match="pixels"):
-        steps.prepare_dataset(profile, tmp_path)
+        run_setup.prepare_dataset(profile, tmp_path)
