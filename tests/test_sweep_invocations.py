@@ -120,3 +120,44 @@ def test_resume_per_invocation_after_sigkill_of_parent(tmp_path):
     assert len(after) == 12 and all(after[key] == value for key, value in before.items())   # kept, not redone
     s = load_samples(run)
     assert not s.duplicated(["point_id", "i"]).any() and (s.groupby("point_id").invocation.nunique() == 3).all()
+
+
+# ----------------------------------------------------------------- throughput points (K > 1)
+def _tput_profile(tmp_path, r, name="syn.toml", process_cov=0.2):
+    text = PROFILE.format(sizes="[64]", r=r, reps=5, work_ms=10.0, extra="").replace(
+        'proposals = [10, 20]', 'proposals = [10]\nconcurrency = [1, 2]').replace(
+        "process_cov = 0.2", f"process_cov = {process_cov}\njitter = 0.05")
+    path = tmp_path / name
+    path.write_text(text)
+    return path
+
+
+def test_throughput_point_measured_in_r_invocations_with_a_wider_interval(tmp_path):
+    # A K = 2 point with R = 3: three launches of its two workers, each request tagged with its
+    # launch; its intervals come from the hierarchical bootstrap. Every worker process draws its
+    # own offset (process_cov), an effect one launch's requests cannot show: the R = 1 interval
+    # (one launch, its requests resampled) must be narrower than the R = 3 one.
+    out3 = run_sweep(_tput_profile(tmp_path, 3), out_dir=tmp_path / "r3", quiet=True, stream=open(os.devnull, "w"))
+    df = load_run(out3)
+    k2 = df[df.concurrency == 2].iloc[0]
+    assert k2.status == "ok" and k2.invocations == 3 and k2.ci_scope.startswith("3 processes")
+    s = load_samples(out3)
+    assert sorted(s[s.point_id == k2.point_id].invocation.unique()) == [0, 1, 2]
+    assert k2.tput_fps_ci_lo < k2.tput_fps < k2.tput_fps_ci_hi
+    assert k2.tput_p99_ci_lo <= k2.tput_p99_ms <= k2.tput_p99_ci_hi
+    assert json.loads(k2.probe_raw) and k2.probe_start_ms > 0     # every load worker timed the probe
+    sched = json.loads((out3 / "schedule.json").read_text())
+    assert sched["throughput"]["order"] == [[k2.point_id, i] for i in range(3)]
+
+    out1 = run_sweep(_tput_profile(tmp_path, 1, "one.toml"), out_dir=tmp_path / "r1", quiet=True,
+                     stream=open(os.devnull, "w"))
+    one = load_run(out1)
+    one = one[one.concurrency == 2].iloc[0]
+    assert one.invocations == 1 and one.ci_scope.startswith("one process")
+
+    def width(row, lo, hi, est):
+        return (row[hi] - row[lo]) / row[est]
+    assert width(k2, "tput_fps_ci_lo", "tput_fps_ci_hi", "tput_fps") > width(one, "tput_fps_ci_lo", "tput_fps_ci_hi",
+                                                                             "tput_fps")
+    assert width(k2, "tput_p99_ci_lo", "tput_p99_ci_hi", "tput_p99_ms") > width(
+        one, "tput_p99_ci_lo", "tput_p99_ci_hi", "tput_p99_ms")

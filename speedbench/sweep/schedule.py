@@ -41,10 +41,15 @@ def invocation_order(point_ids, invocations, seed: int, done=None) -> list[tuple
     return order
 
 
+SECTIONS = ("throughput",)     # schedule.json keys of later passes (the top level is the K = 1 pass)
+
+
 def run_interleaved(rd, points, invocations: int, measure, finish, settle_s: float, complete=(),
-                    on_start=None, on_invocation=None, on_point=None) -> dict:
-    """Run the invocations of `points` (the plan's K = 1 points) round-robin; `complete`: ids of
-    points whose rows are stored and stay (resume), so nothing of theirs runs.
+                    on_start=None, on_invocation=None, on_point=None, section: str | None = None) -> dict:
+    """Run the invocations of `points` round-robin; `complete`: ids of points whose rows are
+    stored and stay (resume), so nothing of theirs runs. section: None for the plan's K = 1
+    points (recorded at the top level of schedule.json), "throughput" for its K > 1 points
+    (run after them, recorded under that key); each pass keeps its own seed.
 
     measure(planned, index) -> PointResult of one worker process, or a str: the point cannot
     be measured at all (its graph failed); it then gets its failed row at once.
@@ -55,23 +60,33 @@ def run_interleaved(rd, points, invocations: int, measure, finish, settle_s: flo
     and the order are recorded in the run directory (schedule.json).
     Returns counts {"ok": n, "failed": n} of the points written.
     """
+    from speedbench.measure.load import LoadResult
     from speedbench.measure.result import PointResult
 
     ids = [p.point_id for p in points]
     by_id = {p.point_id: p for p in points}
     complete = set(complete)
     stored = {pid: got for pid, got in rd.invocation_results().items() if pid in by_id and pid not in complete}
-    previous = rd.schedule() or {}
+    whole = rd.schedule() or {}
+    previous = (whole.get(section) or {}) if section else whole
     seed = int(previous.get("seed", new_seed()))
     done = {pid: set(got) for pid, got in stored.items()}
     done.update({pid: set(range(invocations)) for pid in complete})
     order = invocation_order(ids, invocations, seed, done)
     if previous.get("seed") == seed and previous.get("invocations") == invocations:
-        rd.write_schedule({**previous, "resumed": int(previous.get("resumed", 0)) + 1})
+        mine = {**previous, "resumed": int(previous.get("resumed", 0)) + 1}
     else:
-        rd.write_schedule({"seed": seed, "invocations": invocations, "settle_s": settle_s,
-                           "order": [list(x) for x in invocation_order(ids, invocations, seed)]})
-    results = {pid: [PointResult.from_dict(d) for _, d in sorted(got.items())] for pid, got in stored.items()}
+        mine = {"seed": seed, "invocations": invocations, "settle_s": settle_s,
+                "order": [list(x) for x in invocation_order(ids, invocations, seed)]}
+    if section:
+        rd.write_schedule({**whole, section: mine})
+    else:
+        rd.write_schedule({**{k: whole[k] for k in SECTIONS if k in whole}, **mine})
+
+    def revive(d: dict):
+        return LoadResult.from_dict(d) if d.get("kind") == "load" else PointResult.from_dict(d)
+
+    results = {pid: [revive(d) for _, d in sorted(got.items())] for pid, got in stored.items()}
     closed: set = set()
     counts = {"ok": 0, "failed": 0}
 
