@@ -161,3 +161,28 @@ def test_throughput_point_measured_in_r_invocations_with_a_wider_interval(tmp_pa
                                                                              "tput_fps")
     assert width(k2, "tput_p99_ci_lo", "tput_p99_ci_hi", "tput_p99_ms") > width(
         one, "tput_p99_ci_lo", "tput_p99_ci_hi", "tput_p99_ms")
+
+
+def test_throughput_point_resumes_per_invocation(tmp_path):
+    # A run interrupted after invocation 0 of its K = 2 point: resume measures invocation 1
+    # only and keeps the stored one as it was (its JSON byte for byte).
+    prof = _tput_profile(tmp_path, 2)
+    run = run_sweep(prof, out_dir=tmp_path / "run", quiet=True, stream=open(os.devnull, "w"))
+    k2 = load_run(run).query("concurrency == 2").point_id.iloc[0]
+    con = sqlite3.connect(run / "points.sqlite")
+    kept = con.execute("SELECT result FROM invocations WHERE point_id = ? AND invocation = 0", (k2,)).fetchone()[0]
+    assert json.loads(kept)["kind"] == "load"
+    for sql in ("DELETE FROM points WHERE point_id = ?", "DELETE FROM samples WHERE point_id = ?",
+                "DELETE FROM invocations WHERE point_id = ? AND invocation = 1"):
+        con.execute(sql, (k2,))
+    con.commit()
+    con.close()
+    run_sweep(prof, out_dir=run, resume=True, quiet=True, stream=open(os.devnull, "w"))
+    row = load_run(run).query("concurrency == 2").iloc[0]
+    assert row.status == "ok" and row.invocations == 2
+    con = sqlite3.connect(run / "points.sqlite")
+    got = dict(con.execute("SELECT invocation, result FROM invocations WHERE point_id = ?", (k2,)).fetchall())
+    con.close()
+    assert sorted(got) == [0, 1] and got[0] == kept
+    s = load_samples(run)
+    assert sorted(s[s.point_id == k2].invocation.unique()) == [0, 1]
