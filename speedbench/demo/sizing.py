@@ -99,7 +99,7 @@ def fleet_text(table) -> str:
             f"{table.attrs['required_fps']:g} frames/s, p99 <= {f['p99_ms']:g} ms, servers planned at "
             f"<= {HEADROOM:.0%} busy:")
     extra = table["extrapolated"].fillna(False).astype(bool)
-    lines = [head, *answer_lines(table, with_p99=True)]
+    lines = [head, *answer_lines(table, with_p99=True), f"  ({table.attrs['judged']})"]
     if extra.any():
         lines.append("  (servers larger than this machine's measured cores are extrapolated: throughput assumed "
                      "linear in cores; `speedbench size` prints the assumption and the full table)")
