@@ -354,6 +354,9 @@ def finish_point(job: PointJob, context: PointContext, outcome) -> PointOutcome:
     if is_throughput(job.planned, context):
         result = combine_loads(list(outcome))
         index = list(result.invocation)
+        k = int(job.planned.config["concurrency"])
+        if result.ok and job.baseline_fps and k > 1:   # X(1) known now (a fleet host may learn it late)
+            result.summary["scaling_eff"] = result.tput_fps / (k * job.baseline_fps)
     else:
         result = combine_invocations(list(outcome))
         index = None if result.measurement is None else result.measurement.invocation.tolist()
