@@ -2,7 +2,7 @@
 
     python benchmarks/bench_rerun.py                              # demo pair + 5 upgrade-check pairs + slowdown
     python benchmarks/bench_rerun.py --profile profiles/demo.toml --pairs 1
-    python benchmarks/bench_rerun.py --profile profiles/upgrade-check.toml --pairs 5
+    python benchmarks/bench_rerun.py --profile profiles/upgrade-check.toml --pairs 5 [--chained]
     python benchmarks/bench_rerun.py --slowdown-only              # the synthetic 15 % slowdown check
     python benchmarks/bench_rerun.py --cold-demo                  # `speedbench demo` from an empty cache, timed
 
@@ -130,12 +130,20 @@ def compare_figures(run1: Path, run2: Path, cwd: Path) -> dict:
     return {"exit": code, "counts": doc.get("counts", {})}
 
 
-def pairs(profile: Path, n: int, work: Path) -> list[dict]:
+def pairs(profile: Path, n: int, work: Path, chained: bool = False) -> list[dict]:
+    """n A/A pairs: 2n independent runs, or with `chained` n + 1 runs, pair k = (run k, run k + 1)
+    (each pair is still two independent runs with nothing changed; neighbouring pairs share a run)."""
     out = []
+    walls: dict = {}
+
+    def run(k: int) -> tuple[Path, float]:
+        path = work / f"{profile.stem}-{k}"
+        if k not in walls:
+            walls[k] = sweep(profile, path, work)
+        return path, walls[k]
+
     for k in range(n):
-        r1, r2 = work / f"{profile.stem}-{k}a", work / f"{profile.stem}-{k}b"
-        w1 = sweep(profile, r1, work)
-        w2 = sweep(profile, r2, work)
+        (r1, w1), (r2, w2) = (run(k), run(k + 1)) if chained else (run(2 * k), run(2 * k + 1))
         fig = {**rerun_figures(r1, r2), **compare_figures(r1, r2, work), "wall_s": (w1, w2),
                "load": os.getloadavg()[0]}
         out.append(fig)
@@ -174,6 +182,8 @@ def main(argv=None) -> int:
     ap.add_argument("--profile", action="append", help="profile to rerun (repeatable); default demo (1 pair) "
                                                        "and upgrade-check (--pairs pairs)")
     ap.add_argument("--pairs", type=int, default=5, help="A/A pairs of each profile given (default 5)")
+    ap.add_argument("--chained", action="store_true",
+                    help="n pairs from n + 1 runs (pair k = runs k and k + 1) instead of 2n runs")
     ap.add_argument("--work", default=None, help="working directory (default: a new temporary one)")
     ap.add_argument("--slowdown-only", action="store_true")
     ap.add_argument("--no-slowdown", action="store_true")
@@ -189,7 +199,7 @@ def main(argv=None) -> int:
             [(ROOT / "profiles" / "demo.toml", 1), (ROOT / "profiles" / "upgrade-check.toml", args.pairs)]
         for profile, n in todo:
             print(f"{profile.name}: {n} pair(s) of independent runs", flush=True)
-            figs = pairs(profile.resolve(), n, work)
+            figs = pairs(profile.resolve(), n, work, args.chained)
             ok = sum(f["exit"] == 0 for f in figs)
             print(f"  summary {profile.name}: (a) {np.mean([f['holds_1_in_2'] for f in figs]):.0%} mean coverage, "
                   f"(c) {np.median([f['median_halfwidth'] for f in figs]):.1%} median half-width, "
