@@ -442,7 +442,7 @@ def test_a_host_interleaves_invocations_in_the_local_sweeps_seeded_order(cluster
     path = tmp_path / "fleet.toml"
     path.write_text(PROFILE.format(cache=tmp_path / "cache", sizes="[64, 96]", proposals="[10]")
                     .replace('backends = ["synthetic"]', 'backends = ["synthetic"]\nconcurrency = [1, 2]')
-                    .replace("stages = false", "stages = false\ninvocations = 2").replace("[64, 96]", "[64, 96]"))
+                    .replace("stages = false", "stages = false\ninvocations = 2"))
     runs = run_fleet_sweep(path, client, out_dir=tmp_path / "fleet", hosts="a", quiet=True,
                            stream=open(os.devnull, "w"))
     run = runs["a"]
@@ -460,3 +460,16 @@ def test_a_host_interleaves_invocations_in_the_local_sweeps_seeded_order(cluster
     two = df[df.concurrency == 2].iloc[0]
     one = df[(df.concurrency == 1) & (df["size"] == two["size"])].iloc[0]
     assert two["scaling_eff"] == pytest.approx(two["tput_fps"] / (2 * 1000.0 / one["lat_mean_ms"]), rel=1e-9)
+
+
+def test_fleet_module_argument_errors_are_one_line(capsys):
+    # `python -m speedbench.fleet` refuses bad arguments like every speedbench command: one line, exit 2.
+    from speedbench.fleet.__main__ import main
+
+    for argv, said in ((["p.toml"], "the following arguments are required: --cluster"),
+                       (["p.toml", "--cluster", "tcp://s:8786", "--lost-after", "-3"], "argument --lost-after")):
+        with pytest.raises(SystemExit) as stop:
+            main(argv)
+        err = capsys.readouterr().err
+        assert stop.value.code == 2 and err.count("\n") == 1 and said in err
+        assert err.startswith("speedbench: error: ") and "(see python -m speedbench.fleet --help)" in err

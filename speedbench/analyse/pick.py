@@ -52,7 +52,7 @@ class Pick:
             b = self.best
             what = "Cheapest" if self.priced else "Best"
             lines.append(f"{what} within {stat} <= {self.budget_ms:g} ms: {_where(b, self.per_host)}")
-            ci = f" (CI {b['_lo']:.2f}-{b['_hi']:.2f})" if b["_hi"] > b["_lo"] else " (no CI recorded)"
+            ci = f" (CI {b['_lo']:.2f} to {b['_hi']:.2f})" if b["_hi"] > b["_lo"] else " (no CI recorded)"
             lines.append(f"  {stat} {b[self.latency]:.2f} ms{ci}, margin {self.margin_ms:.2f} ms{_acc(b)}")
             if self.priced:
                 lines.append(f"  {_cost(b)}")
@@ -107,7 +107,7 @@ def _acc(r) -> str:
     if m is None or pd.isna(m):
         return ", mAP unavailable"
     lo, hi = r.get("map_ci_lo"), r.get("map_ci_hi")
-    ci = f" (CI {lo:.3f}-{hi:.3f})" if lo is not None and pd.notna(lo) and pd.notna(hi) else ""
+    ci = f" (CI {lo:.3f} to {hi:.3f})" if lo is not None and pd.notna(lo) and pd.notna(hi) else ""
     return f", mAP {m:.3f}{ci}"
 
 

@@ -14,18 +14,11 @@ import signal
 import sqlite3
 import sys
 
+from speedbench.cli.args import Parser
 from speedbench.errors import UserError, storage_error
 
 # OSErrors that are the machine's state, not a bug: a one-line error, not a traceback.
 PLACE_ERRNOS = {errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EACCES, errno.EPERM, errno.ENAMETOOLONG}
-
-
-class Parser(argparse.ArgumentParser):
-    """argparse with one-line errors: `speedbench: error: argument --min-map: ... (see speedbench pick --help)`,
-    exit status 2 (main() returns it, like every other user mistake)."""
-
-    def error(self, message):
-        self.exit(2, f"speedbench: error: {' '.join(message.split())} (see {self.prog} --help)\n")
 
 
 class Terminated(KeyboardInterrupt):

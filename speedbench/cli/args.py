@@ -13,6 +13,14 @@ from pathlib import Path
 MAX_NAME_BYTES = 255   # one path component, on every common Linux / macOS file system
 
 
+class Parser(argparse.ArgumentParser):
+    """argparse with one-line errors: `speedbench: error: argument --min-map: ... (see speedbench pick --help)`,
+    exit status 2 (main() returns it, like every other user mistake)."""
+
+    def error(self, message):
+        self.exit(2, f"speedbench: error: {' '.join(message.split())} (see {self.prog} --help)\n")
+
+
 def _number(text, kind):
     try:
         value = kind(str(text).strip())

@@ -27,14 +27,19 @@ KS = (1, 2)
 
 
 def frontier_points(df) -> dict[int, list[str]]:
-    """Point ids of the single-stream frontier configurations, by intra-op threads."""
+    """Point ids of the single-stream frontier configurations, by intra-op threads.
+
+    Only points on the frontier itself: on a noisy host nearly every point can be "tied" with
+    one (a demo run at load 6 had all 24), and measuring them all under load tripled the
+    demo's throughput step. `speedbench load RUN` measures every point.
+    """
     from speedbench.analyse import frontier
 
     single = df[(df["status"] == "ok") & (df["concurrency"].fillna(1).astype(int) == 1)]
     if not len(single):
         return {}
     marked = frontier(single)
-    on = marked[marked["frontier_status"].isin(["frontier", "tied"])]
+    on = marked[marked["frontier_status"] == "frontier"]
     out: dict[int, list[str]] = {}
     for pid, threads in zip(on["point_id"], on["intra_threads"]):
         out.setdefault(max(int(threads or 1), 1), []).append(str(pid))

@@ -7,11 +7,12 @@ from __future__ import annotations
 import argparse
 import sys
 
+from speedbench.cli.args import Parser, float_in
 from speedbench.errors import UserError
 
 
 def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(
+    p = Parser(
         prog="python -m speedbench.fleet",
         description="Run a sweep profile on every host of a Dask cluster: each point on a worker of its host "
                     "label, one point at a time per host, one run directory per host.")
@@ -22,7 +23,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--retry-failed", action="store_true",
                    help="with --resume: measure the points stored as failed again as well")
     p.add_argument("--hosts", metavar="A,B", help="only these host labels (default: every label the cluster advertises)")
-    p.add_argument("--lost-after", type=float, default=120.0, metavar="SECONDS",
+    p.add_argument("--lost-after", type=float_in(0, 86400, open_lo=True), default=120.0, metavar="SECONDS",
                    help="a host with no worker for this long is given up on (default 120)")
     p.add_argument("-q", "--quiet", action="store_true", help="one plain line per point instead of a progress bar")
     return p
@@ -31,8 +32,6 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     try:
-        if not args.lost_after > 0:
-            raise UserError(f"--lost-after: must be > 0 s, got {args.lost_after:g}")
         from speedbench.fleet import run_fleet_sweep
 
         outs = run_fleet_sweep(args.profile, args.cluster, out_dir=args.output, resume=args.resume,
