@@ -441,6 +441,7 @@ def _combined_curve(ok, runs) -> list:
     for u, group in sorted(entries.items()):
         e = {k: (float(np.mean([g[k] for g in group])) if all(isinstance(g.get(k), (int, float)) for g in group)
                  else group[0].get(k)) for k in group[0]}
+        e["load"] = group[0]["load"]    # the offered fraction itself, not a float mean of equal values
         lat = [(i, x) for uu, i, xs in runs if round(float(uu), 6) == u for x in xs]
         if lat:
             m = Replicated([x for _, x in lat], [i for i, _ in lat])
