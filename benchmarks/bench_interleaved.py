@@ -1,136 +1,200 @@
-"""Interleaved upgrade check on this machine: A/A repeats, a real runtime change, and the wall time.
+"""Interleaved upgrade check on this machine: A/A repeats, a second environment, and the wall time.
 
-    python benchmarks/bench_interleaved.py [--repeats 3] [--pairs 4] [--seconds 1.5]
-                                           [--other /path/to/other-venv/bin/python] [--out DIR]
-                                           [--parts aa,seq,other,other-same]
+The figures for the closing note (a quiet machine; about an hour with these settings). Run
+from the repository root, with speedbench on the path of both interpreters:
 
-Uses the upgrade-check profile's points (profiles/upgrade-check.toml) with shorter timing per
-worker invocation (--seconds; an interleaved run spreads its samples over 2 x pairs invocations).
+    PYTHONPATH=$PWD python benchmarks/bench_interleaved.py --repeats 5 \\
+        --other OTHER_VENV/bin/python --out /tmp/bench-interleaved
+
+OTHER_VENV: a second virtual environment with the same speedbench (through PYTHONPATH) and
+another stack, e.g. `python -m venv OTHER_VENV && OTHER_VENV/bin/pip install onnxruntime==1.20.1`
+plus speedbench's other dependencies. A check that the script works (minutes, not the figures):
+
+    PYTHONPATH=$PWD python benchmarks/bench_interleaved.py --repeats 1 --pairs 2 --seconds 0.3 \\
+        --min-reps 10 --other OTHER_VENV/bin/python --out /tmp/bench-interleaved-check
+
+What it runs, on the upgrade-check profile's points (profiles/upgrade-check.toml; --pairs sets
+its `invocations` too, so the interleaved and the sequential runs start the same number of
+worker processes per side and point):
 1. A/A: `speedbench compare --envs PY PY PROFILE` with this interpreter given twice, --repeats
-   times (different order seeds): the exit status of each (goal: 0 every time) and its ratios.
-2. Wall time of one interleaved A/A run vs two sequential `speedbench sweep` runs of the same
-   points (one worker per point each), and what `speedbench compare` of those two says,
-   with the host speed probe's reading.
-3. With --other (for example a venv holding another onnxruntime, with the same speedbench on
-   its path): the interleaved run old = this interpreter, new = --other: ratio per point and
-   the verdict; also with --same-graph (the runtime alone).
-The machine may be shared: the 1-minute load average is printed with every figure.
+   times (order seeds 0, 1, ...): per repeat the exit status, the verdict counts, the range of
+   the ratios and the wall time; then "k of N exit 0" (goal: every one).
+2. Two sequential `speedbench sweep` runs of the same profile: the wall time of each and of both,
+   against the mean wall time of one interleaved run; and what `speedbench compare` says of them.
+3. With --other: `speedbench compare --envs PY OTHER PROFILE` (old = this interpreter, new =
+   OTHER), each environment exporting its own graph, then with --same-graph (the runtime alone):
+   ratio per point, verdicts, the packages that differ, the exit status and wall time.
+A cache warm-up sweep (shortest timing) runs first so that no measured run pays for exports.
+The 1-minute load average is printed with every figure: figures from a loaded machine say so.
 """
 from __future__ import annotations
 
 import argparse
 import json
+import math
 import os
 import re
+import shutil
 import subprocess
 import sys
+import tempfile
 import time
+from collections import Counter
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parent.parent
 
 
-def profile_text(seconds: float) -> str:
+def set_key(text: str, key: str, value) -> str:
+    """Set `key = value` in the profile's [repetitions] table (the key exists there)."""
+    new, n = re.subn(rf"(?m)^{key} *=.*$", f"{key} = {value}", text)
+    if not n:
+        raise SystemExit(f"profiles/upgrade-check.toml has no '{key}' line")
+    return new
+
+
+def profile_text(pairs=None, seconds=None, min_reps=None, warm=False) -> str:
     text = (ROOT / "profiles" / "upgrade-check.toml").read_text()
-    text = re.sub(r"(?m)^max_seconds = .*$", f"max_seconds = {seconds}", text)
-    text = re.sub(r"(?m)^min_reps = .*$", "min_reps = 20", text)
-    return re.sub(r"(?m)^warmup_min = .*$", "warmup_min = 5", text)
+    if warm:   # exports and accuracy only: the shortest timing
+        pairs, seconds, min_reps = 1, 0.1, 1
+    if pairs is not None:
+        text = set_key(text, "invocations", pairs)
+    if seconds is not None:
+        text = set_key(text, "max_seconds", seconds)
+    if min_reps is not None:
+        text = set_key(set_key(text, "min_reps", min_reps), "warmup_min", min(min_reps, 10))
+    return text
 
 
-def sb(*args, out_json=True) -> tuple[int, dict | str, float]:
+def sb(*args, json_out=True) -> tuple[int, dict | str, float]:
+    """Run `python -m speedbench ARGS`; (exit status, parsed JSON or stdout, wall seconds)."""
     t0 = time.monotonic()
-    cmd = [sys.executable, "-m", "speedbench", *args] + (["--format", "json"] if out_json else [])
+    cmd = [sys.executable, "-m", "speedbench", *args] + (["--format", "json"] if json_out else [])
     proc = subprocess.run(cmd, capture_output=True, text=True, cwd=ROOT)
     wall = time.monotonic() - t0
     if proc.returncode == 2 or (proc.returncode != 0 and not proc.stdout.strip()):
-        print(proc.stderr[-2000:], file=sys.stderr)
-    out = proc.stdout
-    if out_json and "{" in out:
+        print("  " + (proc.stderr.strip().splitlines() or ["(no message)"])[-1], file=sys.stderr)
+    if json_out and proc.stdout.strip().startswith("{"):
         try:
-            return proc.returncode, json.loads(out[out.index("{"):]), wall
+            return proc.returncode, json.loads(proc.stdout), wall
         except json.JSONDecodeError:
             pass
-    return proc.returncode, out, wall
+    return proc.returncode, proc.stdout, wall
 
 
 def load() -> str:
     return f"load {os.getloadavg()[0]:.2f} on {os.cpu_count()} cores"
 
 
-def ratios(doc) -> str:
+def summary(doc) -> str:
+    """Verdict counts and the range of the ratios of a compare JSON document."""
     if not isinstance(doc, dict):
-        return "?"
-    pts = sorted(doc["points"], key=lambda p: p["label"])
-    return "; ".join(f"{p['label']}: {p['ratio']:.3f} [{p['ci_lo']:.3f}, {p['ci_hi']:.3f}] {p['verdict']}"
-                     if p.get("ci_lo") is not None else f"{p['label']}: {p['verdict']}" for p in pts)
+        return "no result"
+    counts = Counter(p["verdict"] for p in doc["points"])
+    ratios = [p["ratio"] for p in doc["points"] if isinstance(p.get("ratio"), (int, float)) and math.isfinite(p["ratio"])]
+    span = f"ratios {min(ratios):.3f}-{max(ratios):.3f}" if ratios else "no ratio"
+    return ", ".join(f"{n} {v}" for v, n in counts.most_common()) + f"; {span}"
+
+
+def per_point(doc) -> str:
+    if not isinstance(doc, dict):
+        return ""
+    lines = []
+    for p in sorted(doc["points"], key=lambda p: p["label"]):
+        ci = (f" [{p['ci_lo']:.3f}, {p['ci_hi']:.3f}]" if isinstance(p.get("ci_lo"), (int, float))
+              and math.isfinite(p["ci_lo"]) else "")
+        ratio = f"{p['ratio']:.3f}" if isinstance(p.get("ratio"), (int, float)) else "n/a"
+        lines.append(f"    {p['label']}: {ratio}{ci} {p['verdict']} ({p.get('pairs', '?')} pairs)")
+    return "\n".join(lines)
+
+
+def fresh(path: Path) -> Path:
+    """This script's own output directory of one run, emptied (runs refuse a non-empty one)."""
+    shutil.rmtree(path, ignore_errors=True)
+    return path
 
 
 def main() -> int:
-    ap = argparse.ArgumentParser()
-    ap.add_argument("--repeats", type=int, default=3)
-    ap.add_argument("--pairs", type=int, default=4)
-    ap.add_argument("--seconds", type=float, default=1.5)
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--repeats", type=int, default=5, help="A/A interleaved runs (default 5)")
+    ap.add_argument("--pairs", type=int, default=None,
+                    help="A/B pairs per point = the profile's invocations (default: the profile's)")
+    ap.add_argument("--seconds", type=float, default=None,
+                    help="max_seconds of timing per worker process (default: the profile's)")
+    ap.add_argument("--min-reps", type=int, default=None,
+                    help="timed runs at least per worker process (default: the profile's)")
     ap.add_argument("--other", help="interpreter of a second environment (e.g. another onnxruntime)")
-    ap.add_argument("--out", default="/tmp/bench-interleaved")
-    ap.add_argument("--parts", default="aa,seq,other,other-same",
-                    help="which parts to run, in this order (a loaded machine may not leave time for all)")
+    ap.add_argument("--out", default=str(Path(tempfile.gettempdir()) / "bench-interleaved"))
+    ap.add_argument("--parts", default="aa,seq,other",
+                    help="which parts to run, in this order: aa, seq, other (default: all)")
     args = ap.parse_args()
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
-    prof = out / "upgrade-check-short.toml"
-    prof.write_text(profile_text(args.seconds))
+    prof, warm = out / "upgrade-check-bench.toml", out / "upgrade-check-warm.toml"
+    prof.write_text(profile_text(args.pairs, args.seconds, args.min_reps))
+    warm.write_text(profile_text(warm=True))
+    pairs = int(re.search(r"(?m)^invocations = (\d+)", prof.read_text()).group(1))
     py = sys.executable
-    print(f"profile: upgrade-check points, max_seconds {args.seconds} per invocation, {args.pairs} pairs; {load()}",
-          flush=True)
-
-    # warm the export and accuracy caches so that no run below pays for them
-    if not (out / "warm" / "meta.json").exists():
-        code, _, wall = sb("sweep", str(prof), "-o", str(out / "warm"), "-q", out_json=False)
-        print(f"cache warm-up sweep: exit {code}, {wall:.0f} s; {load()}", flush=True)
+    print(f"profile: upgrade-check points, {pairs} A/B pairs (= invocations) per point, max_seconds "
+          f"{args.seconds or 'as profiled'}, min_reps {args.min_reps or 'as profiled'}; {load()}", flush=True)
+    code, _, wall = sb("sweep", str(warm), "-o", str(fresh(out / "warm")), "-q", json_out=False)
+    print(f"cache warm-up sweep: exit {code}, {wall:.0f} s", flush=True)
+    walls = {}
     for part in args.parts.split(","):
         if part == "aa":
-            aa(args, out, prof, py)
+            walls["aa"] = aa(args, out, prof, py)
         elif part == "seq":
-            sequential(out, prof)
-        elif part in ("other", "other-same") and args.other:
-            other(args, out, prof, py, part == "other-same")
+            walls["seq"] = sequential(out, prof)
+        elif part == "other" and args.other:
+            for same in (False, True):
+                other(args, out, prof, py, same)
+        elif part == "other":
+            print("other environment: skipped (no --other)")
+    if walls.get("aa") and walls.get("seq"):
+        print(f"wall time: one interleaved A/A run {walls['aa']:.0f} s (mean of {args.repeats}) vs two sequential "
+              f"sweeps {walls['seq']:.0f} s: {walls['aa'] / walls['seq']:.2f}x, the same worker processes per side",
+              flush=True)
     return 0
 
 
-def aa(args, out, prof, py):
-    exits = []
+def aa(args, out, prof, py) -> float:
+    exits, walls = [], []
     for r in range(args.repeats):
-        run = out / f"aa{r}"
-        code, doc, wall = sb("compare", "--envs", py, py, str(prof), "-o", str(run), "--pairs", str(args.pairs),
+        code, doc, wall = sb("compare", "--envs", py, py, str(prof), "-o", str(fresh(out / f"aa{r}")),
                              "--seed", str(r), "-q")
         exits.append(code)
-        print(f"A/A interleaved repeat {r}: exit {code}, {wall:.0f} s ({2 * args.pairs} invocations per point); "
-              f"{load()}\n  {ratios(doc)}", flush=True)
+        walls.append(wall)
+        print(f"A/A interleaved repeat {r + 1}/{args.repeats} (seed {r}): exit {code}; {summary(doc)}; "
+              f"{wall:.0f} s; {load()}", flush=True)
     print(f"A/A interleaved: {exits.count(0)} of {len(exits)} exit 0", flush=True)
+    return sum(walls) / len(walls) if walls else 0.0
 
 
-def sequential(out, prof):
-    seq = []
+def sequential(out, prof) -> float:
+    total = 0.0
     for name in ("seq_before", "seq_after"):
-        code, _, wall = sb("sweep", str(prof), "-o", str(out / name), "-q", out_json=False)
-        seq.append(wall)
-        print(f"sequential sweep {name}: exit {code}, {wall:.0f} s (1 invocation per point); {load()}", flush=True)
+        code, _, wall = sb("sweep", str(prof), "-o", str(fresh(out / name)), "-q", json_out=False)
+        total += wall
+        print(f"sequential sweep {name}: exit {code}, {wall:.0f} s; {load()}", flush=True)
     code, doc, _ = sb("compare", str(out / "seq_before"), str(out / "seq_after"))
-    host = doc.get("host_speed") if isinstance(doc, dict) else None
-    print(f"sequential A/A compare: exit {code}; host probe {host}\n  {ratios(doc)}", flush=True)
+    h = (doc.get("host_speed") or {}) if isinstance(doc, dict) else {}
+    host = (f"; host probe after/before {h['ratio']:.3f} [{h['ci_lo']:.3f}, {h['ci_hi']:.3f}]"
+            if all(isinstance(h.get(k), (int, float)) for k in ("ratio", "ci_lo", "ci_hi")) else "")
+    print(f"two sequential sweeps: {total:.0f} s; their compare (A/A): exit {code}; {summary(doc)}{host}",
+          flush=True)
+    return total
 
 
-def other(args, out, prof, py, same):
+def other(args, out, prof, py, same: bool) -> None:
     extra = ["--same-graph"] if same else []
-    run = out / ("other-same" if same else "other")
-    code, doc, wall = sb("compare", "--envs", py, args.other, str(prof), "-o", str(run),
-                         "--pairs", str(args.pairs), "-q", *extra)
-    print(f"old {py} vs new {args.other} {' '.join(extra)}: exit {code}, {wall:.0f} s; {load()}\n"
-          f"  {ratios(doc)}", flush=True)
+    code, doc, wall = sb("compare", "--envs", py, args.other, str(prof),
+                         "-o", str(fresh(out / ("other-same" if same else "other"))), "-q", *extra)
+    mode = "one graph (--same-graph)" if same else "own graphs"
+    print(f"old {py} vs new {args.other}, {mode}: exit {code}; {summary(doc)}; {wall:.0f} s; {load()}", flush=True)
     if isinstance(doc, dict):
-        print("  env diff: " + "; ".join(f"{d['key']}: {d['base']} -> {d['new']}" for d in doc["env_diff"]
-                                         if d["key"].startswith("packages")))
-        print("  notes: " + " | ".join(doc["notes"]), flush=True)
+        print(per_point(doc))
+        print("    packages: " + ("; ".join(f"{d['key']}: {d['base']} -> {d['new']}" for d in doc["env_diff"]
+                                            if d["key"].startswith("packages")) or "no difference"), flush=True)
 
 
 if __name__ == "__main__":

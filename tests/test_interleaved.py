@@ -112,6 +112,28 @@ def test_compare_invocations_verdicts_failures_and_too_few_pairs():
     assert not ok.regressed
 
 
+def test_each_pair_of_an_abba_block_is_formed_from_its_own_two_invocations_and_counted_once():
+    # Two ABBA blocks of one point (the recorded order of schedule()): each side has two worker
+    # processes per block. Pair r is the A and the B invocation with pair index r, adjacent in
+    # time; its ratio is B / A of those two. The per-pair ratios are 1.1, 1.2, 1.3, 1.4 by
+    # construction, so the point's ratio is their geometric mean and its pair count 4 (a pairing
+    # by block, or of one side's processes with the other's neighbours, gives other values).
+    slots = schedule(["p"], 4, seed=2)
+    base = {0: 10.0, 1: 20.0, 2: 15.0, 3: 12.0}
+    ratio = {0: 1.1, 1: 1.2, 2: 1.3, 3: 1.4}
+    rec = [("p", "p", s.side, s.pair, "ok", base[s.pair] * (ratio[s.pair] if s.side == "B" else 1.0), "")
+           for s in slots]
+    for r in range(4):     # the recorded order: pair r's halves are adjacent
+        a, b = (next(s.seq for s in slots if s.pair == r and s.side == x) for x in "AB")
+        assert abs(a - b) == 1
+    row = compare_invocations(_table(rec)).points.iloc[0]
+    assert row["pairs"] == 4 and row["n_base"] == 4 and row["n_new"] == 4
+    assert row["ratio"] == pytest.approx(float(np.exp(np.mean(np.log(list(ratio.values()))))))
+    # a second invocation of one side for the same pair would count a pair twice: refused
+    with pytest.raises(UserError, match="2 invocations for pair 1"):
+        compare_invocations(_table(rec + [("p", "p", "A", 1, "ok", 20.0, "")]))
+
+
 # ----------------------------------------------------------------- drift simulation
 SIM_POINTS = {"p1": 8.0, "p2": 15.0, "p3": 30.0}   # true medians (ms) of three configurations
 PAIRS, INV_S, N_SAMPLES = 6, 3.0, 30

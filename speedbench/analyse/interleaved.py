@@ -30,6 +30,7 @@ from speedbench.analyse.comparison import Comparison
 from speedbench.analyse.rundiff import env_diff
 from speedbench.analyse.hostspeed import verdict as threshold_verdict
 from speedbench.errors import UserError
+from speedbench.measure.result import PointResult
 from speedbench.schema import point_id
 from speedbench.sweep.rundir import RunDir
 
@@ -85,6 +86,12 @@ def paired_ratio(base_ms, new_ms, confidence=0.95, n_boot=N_BOOT, rng=None, expa
 
 def complete_pairs(inv: pd.DataFrame) -> pd.DataFrame:
     """One row per pair whose two invocations both succeeded: columns pair, base_ms, new_ms."""
+    twice = inv[inv.duplicated(["point_id", "env", "pair"], keep=False)]
+    if len(twice):
+        # each side has one worker process per pair: a second one would be a pair counted twice
+        r = twice.iloc[0]
+        raise UserError(f"interleaved run: point {r['point_id']}: side {r['env']} has {len(twice)} invocations "
+                        f"for pair {r['pair']} (one per side and pair)")
     ok = inv[(inv["status"] == "ok") & np.isfinite(inv["lat_p50_ms"].astype(float))]
     side = {s: dict(zip(ok.loc[ok["env"] == s, "pair"], ok.loc[ok["env"] == s, "lat_p50_ms"])) for s in "AB"}
     both = sorted(set(side["A"]) & set(side["B"]))
@@ -179,16 +186,14 @@ def compare_run(path, threshold: float = 0.05, confidence: float = 0.95, seed: i
     """The verdicts of an interleaved run directory (made by `speedbench compare --envs`)."""
     if not Path(path).exists():
         raise UserError(f"{path}: run directory not found")
-    with RunDir.open(path) as rd:
-        meta, invs, points = rd.meta(), rd.env_invocations(), rd.points()
-    setup = meta.get("interleaved")
-    if not isinstance(setup, dict) or not isinstance(setup.get("envs"), dict):
-        raise UserError(f"{path}: not an interleaved run (one made by speedbench compare --envs)")
+    with RunDir.open(path, readonly=True) as rd:
+        meta, points = rd.meta(), rd.points()
+        setup = meta.get("interleaved")
+        if not isinstance(setup, dict) or not isinstance(setup.get("envs"), dict):
+            raise UserError(f"{path}: not an interleaved run (one made by speedbench compare --envs)")
+        legacy = rd.legacy_env_invocations()
+        recs = _legacy_records(legacy) if legacy is not None else _records(rd.invocation_results(), points)
     envs = setup["envs"]
-    recs = [{"point_id": r.get("config_id"), "label": label({**r, "env": ""}), "env": r.get("env"),
-             "pair": r.get("pair"), "status": r.get("status"), "lat_p50_ms": _num(r.get("lat_p50_ms")),
-             "rss_peak_mib": _num(r.get("rss_peak_mib")), "det_digest": r.get("det_digest"),
-             "reason": r.get("reason") or ""} for r in invs]
     inv = pd.DataFrame(recs, columns=[*INVOCATION_COLUMNS, "rss_peak_mib", "det_digest", "reason"])
     names = {s: f"{s} ({(envs.get(s) or {}).get('python', '?')})" for s in ("A", "B")}
     notes = [f"interleaved run: {setup.get('pairs')} A/B pair(s) per point in a seeded ABBA order "
@@ -209,6 +214,33 @@ def compare_run(path, threshold: float = 0.05, confidence: float = 0.95, seed: i
     elif drift.get("same"):
         c.notes.append("detections on the held-out images are the same in both environments")
     return c
+
+
+def _records(results: dict, points: pd.DataFrame) -> list[dict]:
+    """One record per stored worker process (the `invocations` table: {side point_id: {index:
+    PointResult dict}}); its pair is its invocation index. The graph's detection digest comes
+    from the side's points row (one graph per side and configuration)."""
+    digests = dict(zip(points["point_id"], points["det_digest"])) if "det_digest" in points.columns else {}
+    out = []
+    for side_id, got in results.items():
+        for k, d in sorted(got.items()):
+            r = PointResult.from_dict(d)
+            config = {**r.point.config(), "env": ""}
+            m = r.measurement
+            out.append({"point_id": point_id(config), "label": label(config), "env": r.point.env,
+                        "pair": int(r.extra.get("pair", k)), "status": r.status,
+                        "lat_p50_ms": m.percentile(50) if r.ok and m is not None else math.nan,
+                        "rss_peak_mib": _num(r.memory.get("rss_peak_mib")), "det_digest": digests.get(side_id),
+                        "reason": r.reason or ""})
+    return out
+
+
+def _legacy_records(rows: list[dict]) -> list[dict]:
+    """The same records from an interleaved run made before the one store (table env_invocations)."""
+    return [{"point_id": r.get("config_id"), "label": label({**r, "env": ""}), "env": r.get("env"),
+             "pair": r.get("pair"), "status": r.get("status"), "lat_p50_ms": _num(r.get("lat_p50_ms")),
+             "rss_peak_mib": _num(r.get("rss_peak_mib")), "det_digest": r.get("det_digest"),
+             "reason": r.get("reason") or ""} for r in rows]
 
 
 def complete_pairs_all(inv: pd.DataFrame) -> list:

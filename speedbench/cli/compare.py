@@ -51,7 +51,8 @@ def add_parser(subparsers):
                    help="the two environments' interpreters (e.g. two venvs' bin/python), each with the same "
                         "speedbench installed")
     g.add_argument("--pairs", type=int_in(1, 10**6), default=None,
-                   help="A/B pairs of worker invocations per point (default 6)")
+                   help="A/B pairs of worker invocations per point (default: the profile's invocations, "
+                        "i.e. as many worker processes per side as a sweep runs per point; 6 when that is 1)")
     g.add_argument("--same-graph", action="store_true",
                    help="measure one graph file (exported by OLD) in both environments, isolating the runtime; "
                         "default: each environment exports its own graph (the whole stack changes)")
@@ -113,10 +114,9 @@ def run(args) -> int:
 
 def _interleaved(args) -> int:
     from speedbench.analyse.interleaved import compare_run
-    from speedbench.sweep.interleaved import DEFAULT_PAIRS, run_interleaved
+    from speedbench.sweep.interleaved import run_interleaved
 
-    out = run_interleaved(args.base, args.envs[0], args.envs[1], out_dir=args.output,
-                          pairs=DEFAULT_PAIRS if args.pairs is None else args.pairs, seed=args.seed,
+    out = run_interleaved(args.base, args.envs[0], args.envs[1], out_dir=args.output, pairs=args.pairs, seed=args.seed,
                           same_graph=args.same_graph, resume=args.resume, quiet=args.quiet)
     result = compare_run(out, threshold=args.threshold, confidence=args.confidence, seed=args.seed,
                          fail_on_drift=args.fail_on_drift)

@@ -4,44 +4,48 @@
 worker invocations alternate between the two environments in a seeded, balanced ABBA order
 (sweep/interleave.py), each worker started with its environment's interpreter, so a drift
 of the machine hits both sides alike. This module is a scheduler on the one point path
-(sweep/pipeline.run_point): it decides the order and the interpreter, and stores each
-invocation the moment it finishes; run_point measures and builds the row.
+(sweep/pipeline.run_invocation, one worker process per call, and finish_point): it decides the
+order and the interpreter, and stores each invocation the moment it finishes.
 
 Graphs: by default each environment exports (and scores) its own graph, in a subprocess
 started with its own interpreter (sweep/env_graphs.py): an upgrade changes the whole stack,
 the exporter included. With same_graph, the old environment's graph file is measured in both
 (isolating the runtime); each environment still scores it, so changed detections show.
 
-Both sides write into one run directory: an `env_invocations` table (one row per worker run,
-with its samples) and one points row per configuration and environment (`env` "A" / "B", with
-`env_python` and `env_fingerprint`), pooled over that side's invocations with the hierarchical
-intervals of replicated invocations (measure.invocations); each pooled sample keeps its
-invocation index (the pair) in the samples table. (The sweep's own `invocations` table holds
-per-process results awaiting their point's row, a different shape; an interleaved run leaves it empty.)
+Both sides write into one run directory, in the sweep's store: each worker process is one
+run_invocation call whose result goes into the `invocations` table, keyed by its side's point_id
+(`env` "A" / "B" is part of the point's identity), with its pair index as invocation index; in
+the same transaction the side's points row is rebuilt by the sweep's own finishing step
+(pipeline.finish_point: the hierarchical bootstrap over that side's invocations) and written
+with every sample tagged with its invocation, plus `env_python` and `env_fingerprint`.
+
+Pairs: each side of a point gets `pairs` worker processes, one per pair (default: the profile's
+`invocations`, the processes per point a sweep of the profile would run; 6 when that is 1).
 """
 from __future__ import annotations
 
 import dataclasses
 import json
-import math
 import os
 import subprocess
 import sys
 import tempfile
+import time
 from pathlib import Path
 
 from speedbench.errors import UserError
-from speedbench.measure.result import NAN
-from speedbench.measure.invocations import Replicated
+from speedbench.measure.launch import SETTLE_S
+from speedbench.measure.result import PointResult
 from speedbench.sweep import steps
 from speedbench.sweep.env import environment_fingerprint
 from speedbench.sweep.interleave import schedule
 from speedbench.sweep.interpreters import Interpreter, inspect_pair
-from speedbench.sweep.pipeline import GraphStore, PointContext, PointJob, PreparedGraph, run_point
-from speedbench.sweep.plan import expand_plan
+from speedbench.sweep.pipeline import (GraphStore, PointContext, PointJob, PreparedGraph, finish_point,
+                                       record_run_facts, run_invocation)
+from speedbench.sweep.plan import GraphKey, expand_plan
 from speedbench.sweep.profile import load_profile, parse_profile
 from speedbench.sweep.progress import Progress
-from speedbench.sweep.rundir import PER_IMAGE_DIR, RunDir, now_iso
+from speedbench.sweep.rundir import DB_FILE, PER_IMAGE_DIR, RunDir, now_iso
 from speedbench.sweep.runner import same_study
 
 SIDES = ("A", "B")
@@ -50,15 +54,23 @@ GRAPH_MODES = {"own": "each environment exported and scored its own graph",
                "same": "one graph file (exported by A) measured and scored in both environments"}
 
 
-def run_interleaved(profile_path, old_python: str, new_python: str, out_dir=None, pairs: int = DEFAULT_PAIRS,
+def default_pairs(profile) -> int:
+    """A/B pairs per point when --pairs is not given: as many worker processes per side as a sweep
+    of the profile runs per point (its `invocations`), DEFAULT_PAIRS when that is 1."""
+    return profile.invocations if profile.invocations > 1 else DEFAULT_PAIRS
+
+
+def run_interleaved(profile_path, old_python: str, new_python: str, out_dir=None, pairs: int | None = None,
                     seed: int = 0, same_graph: bool = False, resume: bool = False, quiet: bool = False,
                     stream=None) -> Path:
-    """Measure the profile's points under both interpreters, interleaved; returns the run directory."""
+    """Measure the profile's points under both interpreters, interleaved; returns the run directory.
+    pairs: A/B pairs of worker processes per point (None: default_pairs of the profile)."""
     stream = stream or sys.stderr
-    if not isinstance(pairs, int) or pairs < 1:
+    if pairs is not None and (not isinstance(pairs, int) or pairs < 1):
         raise UserError(f"--pairs: expected an integer >= 1, got {pairs!r}")
     envs = dict(zip(SIDES, inspect_pair(old_python, new_python)))
     profile = load_profile(profile_path)
+    pairs = default_pairs(profile) if pairs is None else pairs
     plan = expand_plan(profile)
     points = [p for p in plan.points if p.config["concurrency"] == 1]
     notes = list(plan.notes)
@@ -94,6 +106,9 @@ def _open(out: Path, profile, setup: dict, resume: bool) -> RunDir:
                    "the run was started with a different profile" if not same_profile else
                    next((f"its {k} differ" for k in ("pairs", "seed", "graph_mode") if stored.get(k) != setup[k]),
                         None))
+        if problem is None and rd.legacy_env_invocations() is not None:
+            problem = (f"it was made by an earlier speedbench (worker runs in the env_invocations table of "
+                       f"{out / DB_FILE}); `speedbench compare {out}` still judges it")
         if problem is None:
             fp = {s: (stored.get("envs") or {}).get(s, {}).get("fingerprint") for s in SIDES}
             if fp != {s: setup["envs"][s]["fingerprint"] for s in SIDES}:
@@ -112,9 +127,12 @@ def _open(out: Path, profile, setup: dict, resume: bool) -> RunDir:
 
 def _run(rd: RunDir, profile, points, order, envs, same_graph, notes, quiet, stream) -> None:
     by_id = {p.point_id: p for p in points}
-    done = _done_pairs(rd)
+    sides = {(pid, s): _side(planned, s) for pid, planned in by_id.items() for s in SIDES}
+    stored = _stored(rd, sides)
+    done = {(pid, k) for pid in by_id for k in stored[(pid, "A")] if k in stored[(pid, "B")]}
     todo = [s for s in order if (s.point_id, s.pair) not in done]
     rd.update_meta(plan_points=len(points), plan_notes=notes)
+    record_run_facts(rd, points)
     for note in notes:
         print(f"note: {note}", file=stream)
     if not todo:
@@ -126,76 +144,45 @@ def _run(rd: RunDir, profile, points, order, envs, same_graph, notes, quiet, str
     try:
         graphs = _prepare_graphs(rd, profile, points, envs, same_graph, progress, quiet) if needs_data else {}
         images, policy = steps.timing_images(dataset, profile.timing_images), steps.make_policy(profile.repetitions)
+        # the host's matmul peak once per run (meta.json), shared by both sides' rows
+        peaks = steps.host_peak(rd, points, None if quiet else stream)
         contexts = {s: PointContext(profile=profile, graphs=GraphStore.prepared(profile, graphs.get(s, {})),
-                                    images=images, policy=policy, host=profile.host, python=envs[s].python)
+                                    images=images, policy=policy, host=profile.host, peaks=peaks,
+                                    python=envs[s].python)
                     for s in SIDES}
-        for slot in todo:
-            planned = by_id[slot.point_id]
-            side = dataclasses.replace(planned, point=dataclasses.replace(planned.point, env=slot.side))
-            label = f"{planned.label} [{slot.side}] pair {slot.pair + 1}"
+        for n, slot in enumerate(todo):
+            if n and SETTLE_S > 0:
+                time.sleep(SETTLE_S)    # the pause a sweep leaves between worker processes
+            planned, context = sides[(slot.point_id, slot.side)], contexts[slot.side]
+            label = f"{by_id[slot.point_id].label} [{slot.side}] pair {slot.pair + 1}"
             progress.start(label)
-            got = run_point(PointJob(side), contexts[slot.side])
-            inv = _tag(got.row, envs[slot.side], slot)
-            others = rd.env_invocations(point_id=inv["point_id"])
-            others = [x for x in others if x["invocation"] != inv["invocation"]]
-            pooled, index = _pooled_samples(others, inv, got.samples)
-            rd.write_env_invocation(_pooled_row(others, inv, pooled, index), pooled, index, inv, got.samples)
-            progress.done(label, got.row)
+            got = run_invocation(PointJob(planned), context, slot.pair)     # one worker process
+            if isinstance(got, str):     # no worker could run (the graph failed): the pair stays incomplete
+                got = PointResult(point=planned.point, status="failed", reason=got)
+            got.extra.update(invocation=slot.pair, pair=slot.pair, slot=slot.seq, env=slot.side)
+            mine = stored[(slot.point_id, slot.side)]
+            mine[slot.pair] = got
+            out = finish_point(PointJob(planned), context, [mine[k] for k in sorted(mine)])
+            row = {**out.row, "env_python": envs[slot.side].python, "env_fingerprint": envs[slot.side].fingerprint}
+            rd.write_point(row, out.samples, out.invocations, invocation_result=(slot.pair, got.to_dict()))
+            progress.done(label, row)
     finally:
         progress.close()
     rd.finish()
 
 
-def _done_pairs(rd: RunDir) -> set:
-    """(config id, pair) whose two halves are stored; a half-done pair is measured again whole,
-    so its two invocations stay adjacent in time."""
-    halves: dict = {}
-    for inv in rd.env_invocations():
-        halves.setdefault((inv.get("config_id"), inv.get("pair")), set()).add(inv.get("env"))
-    return {k for k, v in halves.items() if set(SIDES) <= v}
+def _side(planned, side: str):
+    """The planned point as measured in environment `side` (its own point_id: env is part of it)."""
+    return dataclasses.replace(planned, point=dataclasses.replace(planned.point, env=side))
 
 
-def _tag(row: dict, env: Interpreter, slot) -> dict:
-    return {**row, "env": slot.side, "env_python": env.python, "env_fingerprint": env.fingerprint,
-            "invocation": slot.pair, "pair": slot.pair, "slot": slot.seq, "config_id": slot.point_id}
-
-
-def _pooled_samples(others: list[dict], inv: dict, samples) -> tuple[list, list]:
-    """All samples of this side's ok invocations (the points row's samples), in invocation order,
-    and each sample's invocation index (the samples table's `invocation` column).
-    others: the side's other stored invocations of this point."""
-    runs = [(x["invocation"], x["samples_ms"]) for x in others if x.get("status") == "ok"]
-    if inv.get("status") == "ok":
-        runs.append((inv["invocation"], list(samples)))
-    runs.sort(key=lambda t: t[0])
-    return [ms for _, run in runs for ms in run], [int(k) for k, run in runs for _ in run]
-
-
-def _pooled_row(others: list[dict], inv: dict, pooled: list, index: list) -> dict:
-    """The side's points row: this invocation's row, with latency pooled over its ok invocations.
-
-    invocations: how many succeeded; between_cov: CoV of their medians (the spread between
-    worker processes, which pooled samples hide); probe_raw: every invocation's probe record.
-    """
-    own = ("invocation", "pair", "slot", "samples_ms", "seq")
-    ok = [x for x in others if x.get("status") == "ok"] + ([inv] if inv.get("status") == "ok" else [])
-    row = {k: v for k, v in (inv if inv.get("status") == "ok" or not ok else ok[-1]).items() if k not in own}
-    row["invocations"] = len(ok)
-    if not ok:
-        return row
-    # the same hierarchical intervals over invocations as a replicated sweep row (issue 16)
-    row.update(Replicated(pooled, index).summary())
-    row["fps"] = 1000.0 / row["lat_p50_ms"] if row["lat_p50_ms"] > 0 else NAN
-    probes = [json.loads(x["probe_raw"]) for x in ok if isinstance(x.get("probe_raw"), str) and x["probe_raw"]]
-    row["probe_raw"] = json.dumps(probes) if probes else ""
-    for phase in ("start", "end"):
-        vals = sorted(v for v in (x.get(f"probe_{phase}_ms") for x in ok)
-                      if isinstance(v, (int, float)) and math.isfinite(v))
-        row[f"probe_{phase}_ms"] = vals[len(vals) // 2] if vals else NAN
-    failed = [x for x in others + [inv] if x.get("status") != "ok"]
-    row["status"] = "ok"
-    row["reason"] = (f"{len(failed)} invocation(s) failed, the last: {failed[-1].get('reason')}" if failed else "")
-    return row
+def _stored(rd: RunDir, sides: dict) -> dict:
+    """{(config point_id, side): {pair: PointResult}} of the worker processes already stored (resume).
+    A pair with both halves stored is done; a half-done pair is measured again whole (its stored
+    half replaced), so its two invocations stay adjacent in time."""
+    got = rd.invocation_results()
+    return {key: {k: PointResult.from_dict(d) for k, d in got.get(planned.point_id, {}).items()}
+            for key, planned in sides.items()}
 
 
 # ----------------------------------------------------------------- graphs, prepared in each environment
@@ -217,8 +204,6 @@ def _prepare_graphs(rd: RunDir, profile, points, envs, same_graph, progress, qui
 
 
 def _graphs_in(env: Interpreter, rd: RunDir, profile, keys, side: str, given, quiet) -> dict:
-    from speedbench.sweep.plan import GraphKey
-
     with tempfile.TemporaryDirectory(prefix="speedbench-graphs-") as tmp:
         spec = {"profile_text": profile.text, "profile_source": profile.source,
                 "keys": [list(k) for k in keys], "exports_dir": str(rd.exports / side),

@@ -8,8 +8,9 @@ Layout of a run directory::
                      samples(point_id, i, ms, invocation), and invocations(point_id,
                      invocation, status, result JSON): each worker process's result the
                      moment it finishes, before its point's row exists (resume per invocation);
-                     in an interleaved A/B run also env_invocations(point_id, invocation, seq,
-                     row JSON, samples JSON): each side's worker runs, stored with its pooled row
+                     an interleaved A/B run uses the same table, keyed by each side's point_id
+                     (`env` is part of the id). Interleaved runs made before that kept their
+                     worker runs in a table env_invocations, still read (legacy_env_invocations)
     schedule.json    the seeded shuffled order the invocations were run in
     points.csv       the points table, regenerated as points arrive (temp file + os.replace)
     points.parquet   the same, when pyarrow is installed
@@ -93,22 +94,6 @@ CREATE TABLE IF NOT EXISTS invocations (
     result TEXT NOT NULL,
     PRIMARY KEY (point_id, invocation)
 );
-"""
-
-
-# Worker invocations of an interleaved A/B run (speedbench compare --envs), each stored with its
-# side's pooled points row; created on first use, so runs without it read as having none.
-# samples: that invocation's raw samples, JSON list (ms). Separate from `invocations` above
-# (a sweep's per-process results awaiting their point's row), which has another shape.
-_ENV_INVOCATIONS_SQL = """
-CREATE TABLE IF NOT EXISTS env_invocations (
-    point_id TEXT NOT NULL,
-    invocation INTEGER NOT NULL,
-    seq INTEGER NOT NULL,
-    row TEXT NOT NULL,
-    samples TEXT NOT NULL,
-    PRIMARY KEY (point_id, invocation)
-)
 """
 
 
@@ -396,27 +381,19 @@ class RunDir:
         self.close()
 
     # ----------------------------------------------------------------- writing
-    def write_point(self, row: dict, samples_ms, invocations=None) -> None:
+    def write_point(self, row: dict, samples_ms, invocations=None, invocation_result=None) -> None:
         """Store one finished point and its raw samples in a single transaction.
 
         The row is keyed by row["point_id"]; writing the same point_id again
         replaces both the row and its samples. invocations: the invocation index of
-        each sample (all 0 when omitted). The CSV/Parquet copies are
-        regenerated afterwards (they are conveniences; SQLite is the truth).
+        each sample (all 0 when omitted). invocation_result: (index, PointResult.to_dict())
+        of the worker process just finished, stored in the `invocations` table in the same
+        transaction (an interleaved A/B run rewrites its side's row after every invocation).
+        The CSV/Parquet copies are regenerated afterwards (they are conveniences; SQLite is the truth).
         """
-        self._transaction(row, samples_ms, invocations)
+        self._transaction(row, samples_ms, invocations, invocation_result)
 
-    def write_env_invocation(self, row: dict, samples_ms, invocations, invocation: dict,
-                             invocation_samples_ms) -> None:
-        """Store one worker invocation of an interleaved A/B run together with its side's
-        updated points row and pooled samples (invocations: each sample's invocation index),
-        in one transaction.
-
-        invocation: that invocation's own row; its key is (row["point_id"], invocation["invocation"]).
-        """
-        self._transaction(row, samples_ms, invocations, (invocation, invocation_samples_ms))
-
-    def _transaction(self, row: dict, samples_ms, invocations=None, env_invocation=None) -> None:
+    def _transaction(self, row: dict, samples_ms, invocations=None, invocation_result=None) -> None:
         self._check_writable()
         pid = row.get("point_id")
         if not pid:
@@ -436,16 +413,14 @@ class RunDir:
             db.execute("INSERT OR REPLACE INTO points (point_id, seq, row) VALUES (?, ?, ?)", (pid, seq, blob))
             db.execute("DELETE FROM samples WHERE point_id = ?", (pid,))
             db.executemany("INSERT INTO samples (point_id, i, ms, invocation) VALUES (?, ?, ?, ?)", samples)
-            if env_invocation is not None:
-                inv, inv_samples = env_invocation
-                db.execute(_ENV_INVOCATIONS_SQL)
-                inv_seq = db.execute("SELECT COALESCE(MAX(seq), 0) + 1 FROM env_invocations").fetchone()[0]
-                db.execute("INSERT OR REPLACE INTO env_invocations (point_id, invocation, seq, row, samples) "
-                           "VALUES (?, ?, ?, ?, ?)",
-                           (pid, int(inv["invocation"]), inv_seq,
-                            json.dumps({k: _clean(v) for k, v in inv.items()}, default=_json_default),
-                            json.dumps([float(x) for x in inv_samples or []])))
+            if invocation_result is not None:
+                index, result = invocation_result
+                db.execute(_INVOCATIONS_SQL)    # IF NOT EXISTS; rolled back with the rest on failure
+                db.execute("INSERT OR REPLACE INTO invocations (point_id, invocation, status, result) "
+                           "VALUES (?, ?, ?, ?)", (pid, int(index), str(result.get("status", "")),
+                                                   json.dumps(result, default=_json_default)))
             db.execute("COMMIT")
+            self._has_invocations_table = self._has_invocations_table or invocation_result is not None
         except (sqlite3.Error, OSError) as exc:
             if db.in_transaction:
                 db.execute("ROLLBACK")
@@ -475,14 +450,17 @@ class RunDir:
         """Store one worker process's result (PointResult.to_dict()) the moment it finishes."""
         blob = json.dumps(result, default=_json_default)
         try:
-            if not self._has_invocations_table:
-                self._db.executescript(_INVOCATIONS_SQL)
-                self._has_invocations_table = True
+            self._ensure_invocations_table()
             self._db.execute("INSERT OR REPLACE INTO invocations (point_id, invocation, status, result) "
                              "VALUES (?, ?, ?, ?)", (point_id, int(invocation), str(result.get("status", "")), blob))
         except sqlite3.Error as exc:
             raise UserError(f"{self.path / DB_FILE}: cannot store invocation {invocation} of point {point_id} "
                             f"({exc}); results stored so far are kept") from None
+
+    def _ensure_invocations_table(self) -> None:
+        if not self._has_invocations_table:
+            self._db.execute(_INVOCATIONS_SQL)
+            self._has_invocations_table = True
 
     def invocation_results(self, point_id: str | None = None) -> dict:
         """{point_id: {invocation: result dict}} of the stored worker processes (of one point, or all)."""
@@ -605,28 +583,29 @@ class RunDir:
             df["per_image_file"] = [f if f and os.path.isfile(f) else "" for f in files]
         return df
 
-    def env_invocations(self, point_id: str | None = None) -> list[dict]:
-        """An interleaved A/B run's stored worker invocations' rows (with point_id, invocation, seq
-        and samples_ms), all or one point's."""
+    def legacy_env_invocations(self) -> list[dict] | None:
+        """The worker runs of an interleaved A/B run made before it used the `invocations` table
+        (table env_invocations: one row per invocation with its samples), or None when the run
+        has no such table. Read only: nothing writes that table any more."""
+        where = self.path / DB_FILE
         try:
             if not self._db.execute("SELECT 1 FROM sqlite_master WHERE type='table' "
                                     "AND name='env_invocations'").fetchone():
-                return []
-            sql = "SELECT point_id, invocation, seq, row, samples FROM env_invocations"
-            args = ()
-            if point_id is not None:
-                sql, args = sql + " WHERE point_id = ?", (point_id,)
-            got = self._db.execute(sql + " ORDER BY seq", args).fetchall()
+                return None
+            got = self._db.execute("SELECT point_id, invocation, seq, row, samples FROM env_invocations "
+                                   "ORDER BY seq").fetchall()
         except sqlite3.DatabaseError as exc:
-            raise UserError(f"{self.path / DB_FILE}: corrupt points database ({exc})") from None
+            raise UserError(f"{where}: cannot read the env_invocations table of an older interleaved run "
+                            f"({exc})") from None
         out = []
         for pid, inv, seq, blob, samples in got:
             try:
                 row, ms = json.loads(blob), json.loads(samples)
-            except json.JSONDecodeError:
-                raise UserError(f"{self.path / DB_FILE}: corrupt invocation {inv} of point {pid}") from None
+            except (TypeError, json.JSONDecodeError):
+                row = ms = None
             if not isinstance(row, dict) or not isinstance(ms, list):
-                raise UserError(f"{self.path / DB_FILE}: corrupt invocation {inv} of point {pid}")
+                raise UserError(f"{where}: cannot read the env_invocations table of an older interleaved run "
+                                f"(invocation {inv} of point {str(pid)[:40]} is damaged)")
             row.update(point_id=pid, invocation=inv, seq=seq, samples_ms=ms)
             out.append(row)
         return out
