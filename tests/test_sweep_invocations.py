@@ -135,8 +135,8 @@ def _tput_profile(tmp_path, r, name="syn.toml", process_cov=0.2):
 def test_throughput_point_measured_in_r_invocations_with_a_wider_interval(tmp_path):
     # A K = 2 point with R = 3: three launches of its two workers, each request tagged with its
     # launch; its intervals come from the hierarchical bootstrap. Every worker process draws its
-    # own offset (process_cov), an effect one launch's requests cannot show: the R = 1 interval
-    # (one launch, its requests resampled) must be narrower than the R = 3 one.
+    # own offset (process_cov), an effect one launch's requests cannot show: the R = 1 throughput
+    # interval (one launch, its requests resampled) must be narrower than the R = 3 one.
     out3 = run_sweep(_tput_profile(tmp_path, 3), out_dir=tmp_path / "r3", quiet=True, stream=open(os.devnull, "w"))
     df = load_run(out3)
     k2 = df[df.concurrency == 2].iloc[0]
@@ -157,10 +157,12 @@ def test_throughput_point_measured_in_r_invocations_with_a_wider_interval(tmp_pa
 
     def width(row, lo, hi, est):
         return (row[hi] - row[lo]) / row[est]
+    # Throughput: one launch's interval sees only its requests (5 % jitter); three launches see the
+    # launch-to-launch spread (each launch's two workers draw offsets with a 20 % CoV). The p99's
+    # widths are not compared: one launch's p99 interval is an order-statistic interval of the
+    # slower of two differently offset workers, already wide, so which is wider is a coin toss.
     assert width(k2, "tput_fps_ci_lo", "tput_fps_ci_hi", "tput_fps") > width(one, "tput_fps_ci_lo", "tput_fps_ci_hi",
                                                                              "tput_fps")
-    assert width(k2, "tput_p99_ci_lo", "tput_p99_ci_hi", "tput_p99_ms") > width(
-        one, "tput_p99_ci_lo", "tput_p99_ci_hi", "tput_p99_ms")
 
 
 def test_throughput_point_resumes_per_invocation(tmp_path):
