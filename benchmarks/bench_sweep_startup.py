@@ -5,9 +5,13 @@ Two cases, each a fresh `speedbench sweep` process, timed from launch:
 - nothing left to do: `speedbench sweep PROFILE -o RUN --resume` on a finished run (wall time
   of the whole command);
 - only measuring left: the same profile into a new run directory; timed until the first
-  point's measurement is about to start (the process ends there), so the figure is the
+  point's first worker is about to start (the process ends there), so the figure is the
   harness's own start-up: interpreter, imports, plan, dataset check, cached exports and
-  accuracy of the first graph.
+  accuracy of every graph, and the host's matmul peak (measured once per new run, in a
+  worker process: in the wall time, not in the harness CPU time).
+
+Both wall time and the harness's CPU time (user + sys of the sweep process itself, up to
+the first worker) are printed: on a loaded host the CPU time is the steadier figure.
 
 Run it from the directory that holds the profile's cache (for profiles/demo.toml:
 `.speedbench-cache` in the current directory), after one full sweep:
@@ -21,7 +25,9 @@ before cached exports stopped importing torch).
 from __future__ import annotations
 
 import argparse
+import json
 import os
+import resource
 import shutil
 import subprocess
 import sys
@@ -29,26 +35,43 @@ import tempfile
 import time
 from pathlib import Path
 
-# Ends the process when the first point is about to be measured.
+# Ends the process when the first point's first worker is about to start, and reports the
+# parent's own CPU time (user + sys) up to there, and its children's (the host's matmul peak
+# is measured in a worker process before the first point of a new run).
 _FIRST_POINT = """\
-import importlib, os, sys
+import importlib, json, os, resource, sys
 def _stop(*a, **k):
+    me, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    with open(os.environ["SPEEDBENCH_STARTUP_REPORT"], "w") as fh:
+        json.dump({"cpu_s": me.ru_utime + me.ru_stime, "children_cpu_s": kids.ru_utime + kids.ru_stime}, fh)
     sys.stderr.flush()
     os._exit(0)
-try:  # the one point path (sweep.pipeline), or an older checkout's sweep.steps.measure
+measure = importlib.import_module("speedbench.measure")
+measure.measure_point = measure.measure_load = _stop  # where a point's worker starts
+try:  # older checkouts started it elsewhere
     importlib.import_module("speedbench.sweep.pipeline")._measure = _stop
 except (ImportError, AttributeError):
-    importlib.import_module("speedbench.sweep.steps").measure = _stop
+    pass
 from speedbench.cli import main
 sys.exit(main(sys.argv[1:]))
 """
 
 
-def timed(argv, code_root: Path) -> float:
-    env = dict(os.environ, PYTHONPATH=str(code_root))
+def timed(argv, code_root: Path) -> tuple[float, float]:
+    """(wall s from launch, CPU s of the process) of one command; the CPU time is what the
+    process reports at the first point if it stops there, else its whole user + sys time."""
+    report = Path(tempfile.mkdtemp(prefix="sweep-startup-report-")) / "cpu.json"
+    env = dict(os.environ, PYTHONPATH=str(code_root), SPEEDBENCH_STARTUP_REPORT=str(report))
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
     t0 = time.perf_counter()
     subprocess.run(argv, env=env, check=True, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    return time.perf_counter() - t0
+    wall = time.perf_counter() - t0
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    cpu = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
+    if report.exists():
+        cpu = json.loads(report.read_text())["cpu_s"]
+    shutil.rmtree(report.parent, ignore_errors=True)
+    return wall, cpu
 
 
 def main() -> int:
@@ -74,8 +97,9 @@ def main() -> int:
     for root, cases in results.items():
         print(f"{root}:")
         for name, ts in cases.items():
-            print(f"  {name:13s}: best {min(ts):6.2f} s, median {sorted(ts)[len(ts) // 2]:6.2f} s "
-                  f"(of {len(ts)}, wall time from process launch)")
+            walls, cpus = sorted(t[0] for t in ts), sorted(t[1] for t in ts)
+            print(f"  {name:13s}: wall best {walls[0]:6.2f} s, median {walls[len(ts) // 2]:6.2f} s; "
+                  f"harness CPU (user+sys) best {cpus[0]:5.2f} s, median {cpus[len(ts) // 2]:5.2f} s (of {len(ts)})")
     print(f"host: {os.cpu_count()} logical cores, load average {os.getloadavg()[0]:.1f} at the end")
     return 0
 

@@ -204,14 +204,21 @@ def test_bootstrap_unit_weights_reproduce_map():
     assert maps[0] == pytest.approx(coco_evaluate(gt, dets, bootstrap=0)["map"], abs=1e-12)
 
 
-def test_bootstrap_draw_equals_reference_on_duplicated_images():
+@pytest.mark.parametrize("path", ["product", "running_sum"])
+@pytest.mark.parametrize("draw_seed", [5, 6, 7])
+def test_bootstrap_draw_equals_reference_on_duplicated_images(monkeypatch, path, draw_seed):
     # A resample drawn with counts w must score what pycocotools gives on a dataset where
     # image i really appears w[i] times (fresh image and annotation ids for the copies).
+    # Both ways of counting the detections so far (a BLAS product for few images, a running
+    # sum otherwise) are checked against it.
+    from speedbench.evaluate import bootstrap
+
+    monkeypatch.setattr(bootstrap, "_PRODUCT_RATIO", 10 ** 9 if path == "product" else 0)
     gt, dets = merged_case(range(30, 36))
     assert any(a["iscrowd"] for a in gt["annotations"])  # the ignored-detection path is used
     ground = GroundTruth(gt)
     m = Matching(ground, parse_detections(dets, ground))
-    rng = np.random.default_rng(5)
+    rng = np.random.default_rng(draw_seed)
     w = np.bincount(rng.integers(0, ground.n_images, ground.n_images), minlength=ground.n_images)
     sorted_ids = list(ground.image_ids)
     images, anns, dups = [], [], []
@@ -351,6 +358,11 @@ def test_bootstrap_blocks_and_threads_do_not_change_the_draws(monkeypatch):
     monkeypatch.setattr(bootstrap, "_BLOCK_ELEMENTS", 50)  # a few rows per block
     assert np.array_equal(resampled_maps(m, w, threads=2), whole)
     assert np.array_equal(resampled_maps(m, w), whole)
+    # The BLAS product and the running sum count the same whole numbers exactly.
+    monkeypatch.setattr(bootstrap, "_PRODUCT_RATIO", 0)
+    assert np.array_equal(resampled_maps(m, w), whole)
+    monkeypatch.setattr(bootstrap, "_PRODUCT_RATIO", 10 ** 9)
+    assert np.array_equal(resampled_maps(m, w, threads=2), whole)
     with pytest.raises(ValueError, match="whole numbers"):
         resampled_maps(m, w * 0.5 + 0.25)
 
@@ -395,3 +407,53 @@ def test_results_file_reads_the_same_with_and_without_orjson(tmp_path, monkeypat
         read_detections(nan, one_image([[0, 0, 10, 10]]))
     with pytest.raises(UserError, match="not a readable JSON file .*Expecting"):
         read_detections(write(tmp_path, "[{", "broken.json"), one_image([[0, 0, 10, 10]]))
+
+
+def test_small_scores_take_the_fast_parser(tmp_path, monkeypatch):
+    # json.dumps writes a score of 0.006 with 19 digits after the point; that is no risk to
+    # the fast parser (only an integer part of 19+ digits or a 3-digit exponent is), so such a
+    # file must not fall back to the standard library. Large integers still must.
+    from speedbench.data import jsonio
+
+    pytest.importorskip("orjson")
+    text = json.dumps([{"image_id": 1, "category_id": 1, "bbox": [0, 0, 5, 5], "score": 0.0061768287842781655}])
+    assert "0061768287842781655" in text
+    monkeypatch.setattr(jsonio.json, "loads", lambda *a, **k: pytest.fail("standard library used"))
+    assert jsonio.read_json(write(tmp_path, text))[0]["score"] == 0.0061768287842781655
+    monkeypatch.undo()
+    with pytest.raises(UserError, match="beyond 64 bits"):
+        jsonio.read_json(write(tmp_path, '[{"image_id": 9223372036854775808}]', "big.json"))
+    with pytest.raises(UserError, match="not finite"):
+        jsonio.read_json(write(tmp_path, '[1.5e999]', "inf.json"))
+
+
+@pytest.mark.parametrize("seed", range(5))
+def test_nesting_depth_counts_brackets_outside_strings(seed):
+    # Reference: the depth of the object Python's json module builds from the same text.
+    from speedbench.data.jsonio import nesting_depth
+
+    rng = np.random.default_rng(seed)
+    chars = ['"', "\\", "[", "]", "{", "}", "a", "é"]
+
+    def text():
+        return "".join(rng.choice(chars) for _ in range(int(rng.integers(0, 6))))
+
+    def build(d):
+        r = rng.random()
+        if d > 5 or r < 0.3:
+            return text()
+        if r < 0.65:
+            return [build(d + 1) for _ in range(int(rng.integers(0, 3)))]
+        return {text(): build(d + 1) for _ in range(int(rng.integers(0, 3)))}
+
+    def depth(o):
+        if isinstance(o, list):
+            return 1 + max(map(depth, o), default=0)
+        if isinstance(o, dict):
+            return 1 + max(map(depth, o.values()), default=0)
+        return 0
+
+    for _ in range(200):
+        obj = build(0)
+        s = json.dumps(obj, ensure_ascii=bool(rng.random() < 0.5))
+        assert nesting_depth(s) == nesting_depth(s.encode()) == depth(obj), s

@@ -362,3 +362,47 @@ def test_detection_digest_ignores_float_noise_and_order_but_not_a_moved_box():
     moved = [a[0], {**a[1], "bbox": [0.0, 0.0, 5.5, 5.0]}]
     assert detections_digest(a) == detections_digest(noisy)
     assert detections_digest(a) != detections_digest(moved)
+
+
+def test_cached_scenes_are_decoded_once_and_a_changed_file_is_still_refused(tmp_path, monkeypatch):
+    # A fully cached sweep checks its generated scenes by the digest of their bytes instead of
+    # decoding every image again; any change to a file must bring the full check back.
+    from types import SimpleNamespace
+
+    from PIL import Image
+
+    from speedbench.data.datasets import Dataset
+    from speedbench.errors import UserError
+    from speedbench.sweep import steps
+
+    profile = SimpleNamespace(dataset_path=None, scenes_count=3, scenes_seed=5, max_pixels=40_000_000)
+    first = steps.prepare_dataset(profile, tmp_path)
+    stamp = tmp_path / "scenes" / "heldout-n3-s5" / steps.CHECKED_FILE
+    assert stamp.is_file()
+
+    decoded = []
+    original = Dataset.check_images
+    monkeypatch.setattr(Dataset, "check_images", lambda self: decoded.append(1) or original(self))
+    again = steps.prepare_dataset(profile, tmp_path)
+    assert decoded == [] and again.digest == first.digest  # same bytes: no decoding
+
+    image = first.images[1].path
+    data = image.read_bytes()
+    image.write_bytes(data[: len(data) // 2])  # truncated: a corrupt file
+    with pytest.raises(UserError, match=rf"image {first.images[1].id}"):
+        steps.prepare_dataset(profile, tmp_path)
+    assert decoded == [1]
+
+    Image.new("RGB", (17, 9)).save(image)  # a readable image of the wrong size
+    with pytest.raises(UserError, match="17x9 but the annotations say"):
+        steps.prepare_dataset(profile, tmp_path)
+
+    image.write_bytes(data)  # restored: passes the (full) check, then is trusted again
+    steps.prepare_dataset(profile, tmp_path)
+    count = len(decoded)
+    steps.prepare_dataset(profile, tmp_path)
+    assert len(decoded) == count
+
+    profile.max_pixels = 100  # a tighter pixel limit is a different check: decoded again
+    with pytest.raises(UserError, match="pixels"):
+        steps.prepare_dataset(profile, tmp_path)

@@ -35,7 +35,9 @@ COMMANDS = [
 ]
 
 
-def build_parser() -> argparse.ArgumentParser:
+def build_parser(only: str | None = None) -> argparse.ArgumentParser:
+    """The command-line parser; only: build just that command's subparser (a run of one
+    command need not import the other fourteen modules: part of a cached sweep's start-up)."""
     from speedbench import __version__
 
     parser = Parser(
@@ -44,7 +46,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"speedbench {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
-    for name in COMMANDS:
+    for name in COMMANDS if only is None else [only]:
         importlib.import_module(f"speedbench.cli.{name}").add_parser(sub)
     return parser
 
@@ -52,7 +54,10 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = build_parser()
+    words = sys.argv[1:] if argv is None else argv
+    # A known command first: the other commands' parsers are not needed (top-level help,
+    # --version and a mistyped command still get the full parser).
+    parser = build_parser(words[0] if words and words[0] in COMMANDS else None)
     try:
         args = parser.parse_args(argv)
     except SystemExit as exc:   # --help / --version (0), or a refused argument, already said in one line (2)

@@ -19,7 +19,8 @@ def add_parser(subparsers):
     p.add_argument("-q", "--quiet", action="store_true", help="one plain line per point instead of a progress bar")
     p.add_argument("--check", action="store_true",
                    help="instead: run profiles/upgrade-check.toml twice with nothing changed, then compare the "
-                        "two runs and explain what a clean verdict looks like (about 6 minutes on 2 cores); "
+                        "two runs and explain what a clean verdict looks like (estimated at up to about 11 minutes "
+                        "on 2 cores); "
                         "-o names the parent directory of the two runs (default runs/)")
     p.set_defaults(run=run)
 

@@ -34,6 +34,10 @@ def add_parser(subparsers):
 def run(args) -> int:
     # Scoring a results file is a command users wait on: it reads the two files once each,
     # straight into arrays, and imports neither torch nor matplotlib (tests/test_cocoeval.py).
+    if args.graph is None and "numpy" not in sys.modules:
+        # The bootstrap runs its own threads; OpenBLAS's (read once, when numpy loads) would
+        # spin against them. No child process is started on this path.
+        os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     from speedbench.data import load_annotations, load_dataset
     from speedbench.errors import UserError
     from speedbench.evaluate import GroundTruth, coco_evaluate, read_detections

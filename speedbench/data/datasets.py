@@ -72,6 +72,11 @@ class Dataset:
         return (f"Dataset({self.source}, {len(self.images)} images, "
                 f"{len(self.coco['annotations'])} boxes, {len(self.categories)} categories)")
 
+    def check_images(self) -> None:
+        """Decode every image once: UserError for a missing, corrupt, oversized or mis-sized file."""
+        for rec in self.images:
+            _check_image(rec, self.source, self.max_pixels)
+
     def read(self, image_id: int) -> np.ndarray:
         """The image as uint8 [H, W, 3] RGB."""
         if image_id not in self._by_id:
@@ -142,10 +147,10 @@ def load_dataset(path, images_dir=None, check_images: bool = True,
             raise UserError(f"{source}: image {rec.id}: {rec.file_name} is {rec.width}x{rec.height} = "
                             f"{rec.width * rec.height} pixels, above the limit of {max_pixels} "
                             f"(profile key dataset.max_pixels); refused")
+    dataset = Dataset(root, coco, source, images, max_pixels)
     if check_images:
-        for rec in images:
-            _check_image(rec, source, max_pixels)
-    return Dataset(root, coco, source, images, max_pixels)
+        dataset.check_images()
+    return dataset
 
 
 def load_annotations(path) -> dict:

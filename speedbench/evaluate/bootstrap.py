@@ -30,6 +30,7 @@ import numpy as np
 from speedbench.evaluate.cocoeval import EPS, IOU_THRS, MAX_DETS, REC_THRS, Matching
 
 _BLOCK_ELEMENTS = 1 << 20  # resamples x detections per block: a few MiB, cache-sized
+_PRODUCT_RATIO = 200  # images x marks per detection below which the BLAS product is used
 
 
 def draw_weights(n_images: int, n_boot: int, seed: int) -> np.ndarray:
@@ -50,10 +51,12 @@ def resampled_maps(m: Matching, weights: np.ndarray, threads: int = 1) -> np.nda
     if weights.size and (counts.min() < 0 or counts.max() >= 2 ** 20 or not np.array_equal(weights, counts)):
         raise ValueError("bootstrap weights must be whole numbers between 0 and 2**20")
     n_boot, n_cat = len(weights), m.pos_per_image.shape[0]
+    n_images = weights.shape[1]
     # One extra image column of zeros: index n_images reads weight 0 (see _Class).
-    w = np.zeros((n_boot, weights.shape[1] + 1), np.int32)
+    w = np.zeros((n_boot, n_images + 1), np.int32)
     w[:, :-1] = counts
     npos = counts @ m.pos_per_image.T  # [n_boot, K]
+    drawn = int(counts.sum(axis=1).max()) if counts.size else 0  # most images in one resample
     order = np.lexsort((m.rank, m.img, -m.score, m.cat))
     order = order[m.rank[order] < MAX_DETS[-1]]
     starts = np.searchsorted(m.cat[order], np.arange(n_cat + 1))
@@ -62,31 +65,41 @@ def resampled_maps(m: Matching, weights: np.ndarray, threads: int = 1) -> np.nda
         sel = order[starts[k]:starts[k + 1]]
         live = np.flatnonzero(npos[:, k] > 0)
         if live.size:
-            cls = _Class(m.img[sel], m.tp[sel, :, 0], m.fp[sel, :, 0], sentinel=weights.shape[1])
-            step = max(1, _BLOCK_ELEMENTS // max(1, cls.n))
-            jobs += [(k, cls, live[c:c + step]) for c in range(0, live.size, step)]
-    run = lambda job: job[1].mean_precision(w[job[2]], npos[job[2], job[0]])  # noqa: E731
+            cls = _Class(m.img[sel], m.tp[sel, :, 0], m.fp[sel, :, 0], n_images, drawn)
+            # The matrix product runs once over all rows, on BLAS's own threads.
+            seen = cls.seen_by_product(w[live]) if cls.upto is not None else None
+            step = max(1, _BLOCK_ELEMENTS // max(1, cls.width))
+            jobs += [(k, cls, live[c:c + step], None if seen is None else seen[c:c + step])
+                     for c in range(0, live.size, step)]
+    run = lambda job: job[1].mean_precision(w[job[2]], npos[job[2], job[0]], job[3])  # noqa: E731
     if threads > 1 and len(jobs) > 1:
         with ThreadPoolExecutor(threads) as pool:
             results = list(pool.map(run, jobs))
     else:
         results = [run(job) for job in jobs]
     total, count = np.zeros(n_boot), np.zeros(n_boot)
-    for (_, _, rows), r in zip(jobs, results):
+    for (_, _, rows, _), r in zip(jobs, results):
         total[rows] += r
         count[rows] += 1
     return np.where(count > 0, total / np.maximum(count, 1), -1.0)
 
 
 class _Class:
-    """One class's detections in score order, and what each threshold needs of them."""
+    """One class's detections in score order, and what each threshold needs of them.
 
-    def __init__(self, img, tp_mask, fp_mask, sentinel: int):
+    Precision is only ever read at true positives (see mean_precision), so what a draw
+    needs is, at each true positive of each threshold: the true positives so far and the
+    detections so far that are not ignored. The second is "detections so far" (shared by
+    the thresholds, read at the union of their true positives) minus the ignored ones.
+    """
+
+    def __init__(self, img, tp_mask, fp_mask, n_images: int, drawn: int):
         ig_mask = ~tp_mask & ~fp_mask  # [N, T]
-        marks = np.flatnonzero(tp_mask.any(axis=1))
+        marks = np.flatnonzero(tp_mask.any(axis=1))  # true positive at some threshold
         # Detections after the last true positive cannot change precision at any recall.
         self.n = int(marks[-1]) + 1 if marks.size else 0
         self.img = img[:self.n]
+        self.marks = marks
         self.per_t = []
         for t in range(len(IOU_THRS)):
             tp_at = np.flatnonzero(tp_mask[:self.n, t])
@@ -95,51 +108,81 @@ class _Class:
             ig = np.flatnonzero(ig_mask[:self.n, t])
             # Ignored detections, led by the zero-weight sentinel so that the running sum
             # starts at 0; ig_before: how many of them precede each true positive.
-            ig_img = np.r_[sentinel, img[ig]]
+            ig_img = np.r_[n_images, img[ig]]
             ig_before = np.searchsorted(ig, tp_at, side="right")
-            self.per_t.append((img[tp_at], tp_at, ig_img if ig.size else None, ig_before))
+            self.per_t.append((img[tp_at], np.searchsorted(marks, tp_at),
+                               ig_img if ig.size else None, ig_before))
+        # "Detections so far" at the marks is a matrix product, weights [B, images] x
+        # upto [images, marks] (upto[i, p]: detections of image i up to mark p), when
+        # images x marks is small next to the running sum over every detection it replaces
+        # (a BLAS product does some 50 multiply-adds in the time of one running-sum step).
+        # Whole numbers below 2**24 are exact in float32 whatever the order of the sums,
+        # and no partial sum exceeds the total: most images drawn x most detections of one image.
+        self.upto = None
+        per_image = np.bincount(self.img, minlength=n_images + 1)
+        exact32 = drawn * int(per_image.max(initial=0)) < 2 ** 24
+        if exact32 and marks.size and (n_images + 1) * marks.size <= _PRODUCT_RATIO * self.n:
+            segment = np.searchsorted(marks, np.arange(self.n))  # first mark at or after
+            upto = np.bincount(self.img * marks.size + segment,
+                               minlength=(n_images + 1) * marks.size).reshape(n_images + 1, -1)
+            self.upto = np.cumsum(upto, axis=1).astype(np.float32)
+        self.width = marks.size if self.upto is not None else self.n
 
-    def mean_precision(self, w, npos):
+    def seen_by_product(self, w):
+        """[B, marks] int32: detections so far at each mark, per row of w (needs upto)."""
+        return (w.astype(np.float32) @ self.upto).astype(np.int32)
+
+    def seen_by_running_sum(self, w):
+        """The same by a running sum over every detection (any number of images)."""
+        running = np.take(w, self.img, axis=1)
+        np.cumsum(running, axis=1, out=running)
+        return np.take(running, self.marks, axis=1)
+
+    def mean_precision(self, w, npos, seen=None):
         """Mean interpolated precision over thresholds and recall points, per row of w.
 
-        w [B, n_images + 1] int32 counts; npos [B] > 0: weighted count of ground truths.
-        The precision envelope read at a recall point is a suffix maximum that is always
+        w [B, n_images + 1] int32 counts; npos [B] > 0: weighted count of ground truths;
+        seen: seen_by_product(w) if already computed. The precision envelope read at a recall point is a suffix maximum that is always
         reached at a true positive (precision only rises there), so only true-positive
-        positions are evaluated.
+        positions are evaluated. The reference reads the envelope at the first detection
+        whose recall tp / npos reaches each recall point r; summed over the points, that is
+        each true positive's envelope times how many points its count tp is the first to
+        reach: reached(tp) - reached(tp before it), with reached(x) = #{r : x / npos >= r}.
         """
         B = len(w)
         total = np.zeros(B)
         if not self.per_t:
             return total
-        seen = np.cumsum(w[:, self.img], axis=1, dtype=np.int32)  # detections so far
-        # recall tp / npos >= r  <=>  tp >= need, the least integer j with j / npos >= r
-        # (in floating point, as the reference compares).
+        if seen is None:
+            seen = self.seen_by_running_sum(w)
+        # need[b, r]: the least count j with j / npos >= r, in floating point as the
+        # reference compares; reached(x) = #{r : need[b, r] <= x}, tabulated per row for
+        # x = 0 .. npos (a true-positive count never exceeds npos).
         n = npos[:, None]
         need = np.ceil(REC_THRS[None, :] * n)
         need = np.where((need - 1) / n >= REC_THRS, need - 1, need)
         need = np.where(need / n < REC_THRS, need + 1, need)
-        # One searchsorted for all rows: each row's counts are shifted past the previous row's.
-        big = int(n.max()) + 2
-        off_type = np.int32 if B * big < 2 ** 31 else np.int64
-        off = (np.arange(B) * big).astype(off_type)[:, None]
-        need = need.astype(off_type) + off
-        for img_tp, tp_at, ig_img, ig_before in self.per_t:
-            n_tp = len(img_tp)
-            tp = np.cumsum(w[:, img_tp], axis=1, dtype=np.int32)
-            den = seen[:, tp_at]  # tp + fp + ignored so far
+        span = int(n.max()) + 1
+        index_type = np.int32 if B * span < 2 ** 31 else np.int64
+        off = (np.arange(B) * span).astype(index_type)[:, None]
+        reached = np.bincount((need.astype(index_type) + off).ravel(), minlength=B * span)
+        reached = np.cumsum(reached.reshape(B, span), axis=1, dtype=np.int32).ravel()
+        for img_tp, mark_at, ig_img, ig_before in self.per_t:
+            tp = np.cumsum(np.take(w, img_tp, axis=1), axis=1, dtype=index_type)
+            den = np.take(seen, mark_at, axis=1)  # tp + fp + ignored so far
             if ig_img is not None:
-                den -= np.cumsum(w[:, ig_img], axis=1, dtype=np.int32)[:, ig_before]
-            pr = den.astype(np.float64)
-            pr += EPS
+                den -= np.take(np.cumsum(np.take(w, ig_img, axis=1), axis=1, dtype=np.int32),
+                               ig_before, axis=1)
+            pr = np.add(den, EPS, dtype=np.float64)
             np.divide(tp, pr, out=pr)
             # Suffix maximum. Non-negative doubles order like their bit patterns read as
             # integers, and the integer maximum runs several times faster.
             bits = pr.view(np.int64)[:, ::-1]
             np.maximum.accumulate(bits, axis=1, out=bits)
-            row = np.arange(B)[:, None] * n_tp
-            pos = np.searchsorted((tp + off).ravel(), need) - row
-            q = np.where(pos < n_tp, pr.ravel()[np.minimum(pos, n_tp - 1) + row], 0.0)
-            total += q.sum(axis=1)
+            tp += off
+            first = np.take(reached, tp)
+            first[:, 1:] -= first[:, :-1].copy()
+            total += np.einsum("ij,ij->i", pr, first)
         return total / (len(IOU_THRS) * len(REC_THRS))
 
 
