@@ -90,18 +90,23 @@ MEMORY_COLUMNS = ("rss_imports_mib", "rss_loaded_mib", "rss_peak_mib", "model_fi
 #   littles_XW          X W, to set beside littles_L (Little's law)
 #   cores_used          K x T (K x affinity when pinned); host_cores: cores of the measuring host
 #   tput_window_s       length of the common window; tput_requests: requests completed in it
+#                       (both summed over the point's invocations)
+#   tput_fps_ci_lo/hi   95 % interval of tput_fps (mean over invocations), tput_p99_ci_lo/hi of
+#                       tput_p99_ms: the hierarchical bootstrap over invocations (measure/invocations.py)
 #   tput_cpu_util       process CPU time / (span x cores_used); tput_cpu_util_xs: X x CPU per request
 #   tput_cpu_ms         mean process CPU time per request (all threads)
 #   tput_rss_total_mib  sum of the workers' peak resident memory
 #   tput_busy           busy fraction per worker; tput_busy_xs: X x mean service time / K (U = X S)
 #   tput_service_ms     mean service time (equals tput_mean_ms in a closed loop)
 #   load_curve          JSON list of paced points of the largest K: load (offered / capacity),
-#                       util (busy), offered_fps, tput_fps, p50_ms, p99_ms, mean_ms, status
+#                       util (busy), offered_fps, tput_fps, p50_ms, p99_ms, mean_ms, status; over R
+#                       invocations also p99_ci_lo/hi (hierarchical bootstrap) and invocations
 LOAD_COLUMNS = (
     "tput_fps", "tput_p50_ms", "tput_p90_ms", "tput_p99_ms", "tput_mean_ms", "scaling_eff",
     "littles_L", "littles_XW", "cores_used", "host_cores", "tput_window_s", "tput_requests",
     "tput_cpu_util", "tput_cpu_util_xs", "tput_cpu_ms", "tput_rss_total_mib",
     "tput_busy", "tput_busy_xs", "tput_service_ms", "load_curve",
+    "tput_fps_ci_lo", "tput_fps_ci_hi", "tput_p99_ci_lo", "tput_p99_ci_hi",
 )
 ACCURACY_COLUMNS = ("map", "map50", "map75", "map_small", "map_medium", "map_large", "mar_100",
                     "map_ci_lo", "map_ci_hi")

@@ -390,6 +390,37 @@ def test_scaling_efficiency_has_one_definition_locally_and_on_the_fleet(cluster,
         assert two["scaling_eff"] != pytest.approx(two["tput_fps"] / (2 * one["fps"]), rel=1e-9)
 
 
+def test_a_host_interleaves_invocations_in_the_local_sweeps_seeded_order(cluster, tmp_path):
+    # R = 2 on one host: the host runs every invocation as its own task, in the order the local
+    # sweep's scheduler (sweep/schedule.py planned_order / invocation_order) gives for the seed
+    # recorded in its schedule.json: round by round over its points, K = 1 points first, then
+    # the K = 2 point in a pass of its own. The invocations table's insertion order is the order
+    # they ran in (a host runs one task at a time).
+    from speedbench.fleet import run_fleet_sweep
+    from speedbench.sweep.schedule import invocation_order
+
+    _, client = cluster
+    path = write_profile(tmp_path, sizes=(64, 96), proposals=(10,), concurrency=(1, 2),
+                         repetitions={"invocations": 2})
+    runs = run_fleet_sweep(path, client, out_dir=tmp_path / "fleet", hosts="a", quiet=True,
+                           stream=open(os.devnull, "w"))
+    run = runs["a"]
+    df = load_run(run)
+    assert set(df["status"]) == {"ok"} and (df["invocations"] == 2).all() and len(df) == 4
+    sched = json.loads((run / "schedule.json").read_text())
+    ones = [p.point_id for p in expand_plan(load_profile(path)).points if p.config["concurrency"] == 1]
+    twos = [p.point_id for p in expand_plan(load_profile(path)).points if p.config["concurrency"] != 1]
+    expected = invocation_order(ones, 2, sched["seed"]) + invocation_order(twos, 2, sched["throughput"]["seed"])
+    assert [tuple(x) for x in sched["order"]] == invocation_order(ones, 2, sched["seed"])
+    con = sqlite3.connect(run / "points.sqlite")
+    ran = [(p, k) for p, k in con.execute("SELECT point_id, invocation FROM invocations ORDER BY rowid")]
+    con.close()
+    assert ran == expected, (ran, expected)
+    two = df[df.concurrency == 2].iloc[0]
+    one = df[(df.concurrency == 1) & (df["size"] == two["size"])].iloc[0]
+    assert two["scaling_eff"] == pytest.approx(two["tput_fps"] / (2 * 1000.0 / one["lat_mean_ms"]), rel=1e-9)
+
+
 def test_fleet_module_argument_errors_are_one_line(capsys):
     # `python -m speedbench.fleet` refuses bad arguments like every speedbench command: one line, exit 2.
     from speedbench.fleet.__main__ import main

@@ -11,6 +11,7 @@ uses); everything after it reads that one shape.
 from __future__ import annotations
 
 import json
+import math
 
 import numpy as np
 import pandas as pd
@@ -28,7 +29,8 @@ K1_FROM_LOAD = "load"
 K1_FROM_LATENCY = "single-stream latency (X(1) = 1 / mean latency)"
 
 _IDENT = ("label", *CONFIG_KEY)
-SCALING_COLUMNS = [*_IDENT, "host", "map", "map_ci_lo", "map_ci_hi", "point_id", "per_core_fps", "measured_cores",
+SCALING_COLUMNS = [*_IDENT, "host", "map", "map_ci_lo", "map_ci_hi", "point_id", "per_core_fps", "per_core_fps_lo",
+                   "measured_cores",
                    "measured_k", "scaling_eff", "x1_fps", "host_cores", "recorded_host_cores", "curve", "k1_source",
                    "measured_cpu_util", "paced", "untrained"]
 
@@ -38,7 +40,8 @@ def scaling_summary(df: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
 
     configs carry the basis of the sizing model (per_core_fps, measured_cores, scaling_eff
     recomputed here as X(K) / (K X(1)) from the rows themselves) plus ``curve``: a list of
-    (utilisation on the measuring host, p99 ms, mean ms) per measured K, for the p99 lookup.
+    (utilisation on the measuring host, p99 ms, mean ms, K, upper bound of the p99 interval) per
+    measured K, for the p99 lookup.
     """
     df = _throughput_frame(df)
     key = list(CONFIG_KEY) + (["host"] if "host" in df.columns else [])
@@ -90,7 +93,8 @@ def k1_throughput(group: pd.DataFrame) -> tuple[pd.DataFrame | None, str]:
             continue
         if len(loaded):
             return row, K1_FROM_LOAD
-        return row.assign(tput_fps=x1, tput_p99_ms=row["lat_p99_ms"], tput_mean_ms=row["lat_mean_ms"]), K1_FROM_LATENCY
+        return row.assign(tput_fps=x1, tput_p99_ms=row["lat_p99_ms"], tput_mean_ms=row["lat_mean_ms"],
+                          tput_p99_ci_hi=row["lat_p99_ci_hi"]), K1_FROM_LATENCY
     return None, ""
 
 
@@ -109,7 +113,8 @@ def _throughput_frame(df: pd.DataFrame) -> pd.DataFrame:
     if "status" in df.columns:
         df = df[df["status"].fillna("ok").astype(str) == "ok"]
     for col in ("tput_fps", "tput_p99_ms", "tput_mean_ms", "cores_used", "concurrency",
-                "intra_threads", "host_cores", "lat_mean_ms", "lat_p99_ms"):
+                "intra_threads", "host_cores", "lat_mean_ms", "lat_p99_ms", "lat_p99_ci_hi",
+                "tput_fps_ci_lo", "tput_p99_ci_hi"):
         df[col] = pd.to_numeric(df[col], errors="coerce") if col in df.columns else np.nan
     df["concurrency"] = df["concurrency"].fillna(1)
     # ORT-only knobs mean nothing for other backends; rows of old runs may record them either way.
@@ -129,7 +134,7 @@ def _config_row(group: pd.DataFrame, k1: pd.DataFrame, others: pd.DataFrame, k1_
     if not np.isfinite(host_cores) or host_cores <= 0:
         host_cores = measured["cores_used"].max()  # unknown host: assume the largest load filled it
     curve = [(float(r.cores_used) / host_cores, float(r.tput_p99_ms), float(r.tput_mean_ms),
-              int(r.concurrency)) for r in measured.itertuples()]
+              int(r.concurrency), float(r.tput_p99_ci_hi)) for r in measured.itertuples()]
     top = measured.iloc[-1]
     k_top = int(top["concurrency"])
     maps = pd.to_numeric(group["map"], errors="coerce") if "map" in group.columns else None
@@ -139,6 +144,7 @@ def _config_row(group: pd.DataFrame, k1: pd.DataFrame, others: pd.DataFrame, k1_
         **{c: acc_src.get(c, np.nan) for c in ("map", "map_ci_lo", "map_ci_hi")},
         "point_id": _config_id(base),
         "per_core_fps": float(top["tput_fps"]) / float(top["cores_used"]),
+        "per_core_fps_lo": float(top["tput_fps_ci_lo"]) / float(top["cores_used"]),
         "measured_cores": int(top["cores_used"]),
         "measured_k": k_top,
         "scaling_eff": float(top["tput_fps"]) / (k_top * x1),
@@ -170,7 +176,7 @@ def _ident(row) -> dict:
 
 
 def paced_curve(value) -> list:
-    """The load_curve column (JSON text or a list) -> [(utilisation, p99, mean, K)] of ok points."""
+    """The load_curve column (JSON text or a list) -> [(utilisation, p99, mean, K, p99 upper bound)] of ok points."""
     if isinstance(value, str) and value.strip():
         try:
             value = json.loads(value)
@@ -185,5 +191,7 @@ def paced_curve(value) -> list:
         u = e.get("load", e.get("util")) if isinstance(e, dict) else None
         if isinstance(e, dict) and e.get("status") == "ok" and isinstance(u, (int, float)) and all(
                 isinstance(e.get(k), (int, float)) for k in ("p99_ms", "mean_ms")):
-            out.append((float(u), float(e["p99_ms"]), float(e["mean_ms"]), 0))
+            hi = e.get("p99_ci_hi")
+            out.append((float(u), float(e["p99_ms"]), float(e["mean_ms"]), 0,
+                        float(hi) if isinstance(hi, (int, float)) else math.nan))
     return out

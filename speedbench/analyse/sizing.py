@@ -73,12 +73,13 @@ SIZE_COLUMNS = [
     "utilisation", "in_flight", "expected_p99_ms", "p99_at_util", "p99_beyond_measured",
     "meets_p99", "cost_per_mframe", "usd_per_hour", "priced_host_cores", "usd_per_server_hour",
     "usd_per_mframe", "extrapolated", "assumption", "p99_note", "k1_source",
-    "measured_cpu_util", "untrained",
+    "measured_cpu_util", "untrained", "utilisation_hi", "p99_ci_hi_ms", "judged_on",
 ]
 
 
 def size(df, streams, fps, p99_ms=None, server_cores=(8, 16, 32, 64), headroom=0.7,
-         core_hour_cost=None, use_frontier: bool = True, prices=None, host_cores=None) -> pd.DataFrame:
+         core_hour_cost=None, use_frontier: bool = True, prices=None, host_cores=None,
+         judge_on_interval: bool = True) -> pd.DataFrame:
     """Servers needed for ``streams`` x ``fps`` frames/s, one row per (configuration, host, server shape).
 
     df: a points table holding throughput rows (tput_fps ...): one run's (speedbench.load_run),
@@ -89,6 +90,10 @@ def size(df, streams, fps, p99_ms=None, server_cores=(8, 16, 32, 64), headroom=0
     prices: {host: USD per host-hour} for usd_per_mframe; host_cores: {host: logical cores of
     that host} (taken from a Combined's hosts table when df is one). See the module docstring
     for both cost formulas.
+    judge_on_interval: a plan meets the p99 target only if the upper bound of its p99 95 %
+    interval does, read at the utilisation the lower bound of the throughput interval gives
+    (``utilisation_hi``); rows without recorded intervals fall back to the point estimate and
+    ``judged_on`` says so. False: judge on the point estimates.
     Configurations left out and why are in ``result.attrs["excluded"]``; ``attrs["caution"]``
     is the text a report must carry next to these figures; ``attrs["price_notes"]`` says which
     hosts could not be priced and why.
@@ -113,13 +118,14 @@ def size(df, streams, fps, p99_ms=None, server_cores=(8, 16, 32, 64), headroom=0
     for cfg in configs.to_dict("records"):
         for shape in shapes:
             rows.append(_size_one(cfg, shape, required, p99_ms, headroom, core_hour_cost,
-                                  price_of.get(cfg.get("host"))))
+                                  price_of.get(cfg.get("host")), judge_on_interval))
     out = pd.DataFrame(rows, columns=SIZE_COLUMNS)
     out.attrs["excluded"] = excluded
     out.attrs["required_fps"] = required
     out.attrs["headroom"] = headroom
     out.attrs["hosts"] = hosts
     out.attrs["price_notes"] = price_notes
+    out.attrs["judged"] = JUDGED_INTERVAL if judge_on_interval else JUDGED_POINT
     if len(hosts) > 1:
         out.attrs["caution"] = (
             f"Estimates from {len(hosts)} hosts ({', '.join(hosts)}), each sized from its own measurements "
@@ -132,6 +138,12 @@ def size(df, streams, fps, p99_ms=None, server_cores=(8, 16, 32, 64), headroom=0
                                 "rest on the stated assumption. A safety-relevant deployment needs its own "
                                 "validation at the planned load.")
     return out
+
+
+JUDGED_INTERVAL = ("meets p99: judged on the upper bound of the p99 95 % interval (over the worker launches), "
+                   "read at the utilisation the lower bound of the throughput interval gives; rows without "
+                   "intervals are judged on the point estimate (column judged_on)")
+JUDGED_POINT = "meets p99: judged on the point estimates (p99 and throughput), not their intervals"
 
 
 def _frontier(configs: pd.DataFrame, by_host: bool = False) -> pd.DataFrame:
@@ -151,7 +163,8 @@ def _frontier(configs: pd.DataFrame, by_host: bool = False) -> pd.DataFrame:
     return out
 
 
-def _size_one(cfg: dict, shape: int, required: float, p99_ms, headroom: float, cost, host_price=None) -> dict:
+def _size_one(cfg: dict, shape: int, required: float, p99_ms, headroom: float, cost, host_price=None,
+              judge_on_interval: bool = True) -> dict:
     threads = max(int(cfg["intra_threads"] or 1), 1)
     per_core = cfg["per_core_fps"]
     measured_cores = cfg["measured_cores"]
@@ -168,7 +181,7 @@ def _size_one(cfg: dict, shape: int, required: float, p99_ms, headroom: float, c
                    meets_p99=False if p99_ms is not None else None, cost_per_mframe=np.nan,
                    usd_per_hour=np.nan, priced_host_cores=np.nan, usd_per_server_hour=np.nan, usd_per_mframe=np.nan,
                    assumption=f"a {shape}-core server cannot host one worker of {threads} threads",
-                   p99_note="")
+                   p99_note="", utilisation_hi=np.nan, p99_ci_hi_ms=np.nan, judged_on="")
         return row
     per_server = workers * threads * per_core
     servers = math.ceil(required / (per_server * headroom) - 1e-9)
@@ -176,13 +189,26 @@ def _size_one(cfg: dict, shape: int, required: float, p99_ms, headroom: float, c
     util = required / capacity
     paced = cfg.get("paced") or []
     p99, at_util, mean_ms, beyond = _p99_at(paced or cfg["curve"], util)
+    # The interval judgement: capacity at the throughput interval's lower bound (a higher
+    # utilisation, U = X / capacity), and the p99 interval's upper bound measured nearest to it.
+    lo = cfg.get("per_core_fps_lo")
+    util_hi = required / (servers * workers * threads * lo) if _finite(lo) and lo > 0 else util
+    p99_hi = _p99_hi_at(paced or cfg["curve"], util_hi)
+    if not judge_on_interval:
+        judged = "point estimate (asked)"
+    elif _finite(p99_hi):
+        judged = f"p99 interval upper bound at utilisation {util_hi:.2f}"
+    else:
+        judged = "point estimate (no p99 interval recorded)"
+    verdict = p99_hi if judged.startswith("p99 interval") else p99
     provisioned = servers * shape
     row.update(
         servers=servers, provisioned_cores=provisioned, capacity_fps=capacity, utilisation=util,
         # Little's law L = lambda W: frames in flight across the fleet on average.
         in_flight=required * mean_ms / 1000.0,
         expected_p99_ms=p99, p99_at_util=at_util, p99_beyond_measured=beyond,
-        meets_p99=None if p99_ms is None else bool(p99 <= p99_ms),
+        meets_p99=None if p99_ms is None else bool(verdict <= p99_ms),
+        utilisation_hi=util_hi, p99_ci_hi_ms=p99_hi, judged_on=judged,
         cost_per_mframe=np.nan if cost is None else cost * provisioned / (required * 3600.0) * 1e6,
         **fleet_cost(host_price, servers, shape, required),
         assumption=_assumption(cfg, shape),
@@ -198,6 +224,16 @@ def _p99_at(curve, util: float):
     best = min(curve, key=lambda c: (abs(c[0] - util), -c[0]))
     top = max(c[0] for c in curve)
     return best[1], best[0], best[2], bool(util > top + 1e-9)
+
+
+def _p99_hi_at(curve, util: float) -> float:
+    """Upper bound of the p99 interval measured nearest to `util` (NaN when none was recorded)."""
+    best = min(curve, key=lambda c: (abs(c[0] - util), -c[0]))
+    return float(best[4]) if len(best) > 4 else math.nan
+
+
+def _finite(v) -> bool:
+    return isinstance(v, (int, float)) and math.isfinite(v)
 
 
 def _assumption(cfg: dict, shape: int) -> str:

@@ -7,7 +7,7 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
-from speedbench.cli.args import float_in, output_dir
+from speedbench.cli.args import float_in, int_in, output_dir
 
 def add_parser(subparsers):
     p = subparsers.add_parser(
@@ -19,6 +19,10 @@ def add_parser(subparsers):
     p.add_argument("--seconds", type=float_in(0, 3600, open_lo=True), default=5.0,
                    help="measurement window per K, (0, 3600] (default 5)")
     p.add_argument("--pin", action="store_true", help="pin each worker to its own T cores")
+    p.add_argument("--invocations", type=int_in(1, 100), default=None,
+                   help="R: independent launches of the K workers per K, each its own window; throughput "
+                        "and p99 intervals then cover launch-to-launch variation (default: the profile's "
+                        "[repetitions] invocations)")
     p.add_argument("--utilisation", default="0.5,0.7,0.9",
                    help="for the largest K, paced-arrival runs at these fractions of its throughput "
                         "(latency incl. queueing, read by `speedbench size`); 'none' to skip "
@@ -41,10 +45,12 @@ def run(args) -> int:
         if args.out:
             raise UserError("-o/--out: only with a profile; a run directory gets its rows in place")
         counts = load_into_run(target, ks, seconds=args.seconds, pin=args.pin, utilisations=utils,
+                               invocations=args.invocations,
                                report=None if args.quiet else _report)
         out = target
     elif target.suffix == ".toml" or target.is_file():
         out = load_from_profile(target, ks, out_dir=args.out, seconds=args.seconds, pin=args.pin,
+                                invocations=args.invocations,
                                 utilisations=utils, report=None if args.quiet else _report)
         counts = None
     else:

@@ -36,6 +36,9 @@ def add_parser(subparsers):
     p.add_argument("--all", action="store_true",
                    help="list every server shape of every configuration (default: the frontier "
                         "configurations, each on its cheapest shape that meets the target)")
+    p.add_argument("--judge-on-point", action="store_true",
+                   help="judge 'meets the p99 target' on the point estimates (default: on the upper bound "
+                        "of the p99 interval, at the utilisation the throughput interval's lower bound gives)")
     p.add_argument("--json", action="store_true", help="print the table as JSON records")
     p.set_defaults(run=run)
 
@@ -53,7 +56,7 @@ def run(args) -> int:
     data = combine(load_runs(args.run_dirs))
     table = size(data, args.streams, args.fps, p99_ms=args.p99_ms, server_cores=shapes,
                  headroom=args.headroom, core_hour_cost=args.core_hour_cost, use_frontier=not args.all,
-                 prices=prices)
+                 prices=prices, judge_on_interval=not args.judge_on_point)
     # Warnings go to stderr with --json so the records stay parseable.
     notes = [f"WARNING: {w}" for w in data.warnings()]
     if prices is not None:
@@ -83,7 +86,8 @@ def render_text(table, with_p99: bool, with_cost: bool, with_prices: bool = Fals
 
     head = (f"required: {table.attrs['required_fps']:g} frames/s"
             + (f" ({target})" if target else "") + f", planned utilisation <= {table.attrs['headroom']:.0%}")
-    lines = [head, *answer_lines(table, with_p99), ""]
+    lines = [head, *answer_lines(table, with_p99),
+             *([table.attrs["judged"]] if with_p99 and table.attrs.get("judged") else []), ""]
     shown = table if every_shape else best_per_configuration(table)
     lines += [_table_text(shown, with_p99, with_cost, with_prices), ""]
     if not every_shape and len(shown) < len(table):
@@ -97,7 +101,7 @@ def _table_text(table, with_p99: bool, with_cost: bool, with_prices: bool) -> st
     cols = ["label", "map", "per_core_fps", "scaling_eff", "server_cores", "servers", "utilisation",
             "expected_p99_ms", "extrapolated"]
     if with_p99:
-        cols.append("meets_p99")
+        cols += ["p99_ci_hi_ms", "meets_p99"]
     if with_cost:
         cols.append("cost_per_mframe")
     if with_prices:
@@ -112,10 +116,12 @@ def _table_text(table, with_p99: bool, with_cost: bool, with_prices: bool) -> st
     view["expected_p99_ms"] = [f"{v:.1f}" + (" >" if b else "") if _num(v) else "-"
                                for v, b in zip(table["expected_p99_ms"], beyond)]
     view["extrapolated"] = view["extrapolated"].map(lambda v: "yes" if bool(v) else "no")
+    if "p99_ci_hi_ms" in view.columns:
+        view["p99_ci_hi_ms"] = view["p99_ci_hi_ms"].map(lambda v: f"{v:.1f}" if _num(v) else "-")
     for c in ("cost_per_mframe", "usd_per_mframe"):
         if c in view.columns:
             view[c] = view[c].map(lambda v: f"{v:.3f}" if _num(v) else "-")
-    view = view.rename(columns={"per_core_fps": "fps/core", "scaling_eff": "scaling"})
+    view = view.rename(columns={"per_core_fps": "fps/core", "scaling_eff": "scaling", "p99_ci_hi_ms": "p99 CI hi"})
     return view.to_string(index=False)
 
 

@@ -31,6 +31,8 @@ from speedbench.sweep.profile import load_profile, parse_profile
 from speedbench.sweep.progress import Progress
 from speedbench.sweep.rundir import RunDir, now_iso
 from speedbench.sweep.runner import same_study
+from speedbench.measure.launch import SETTLE_S
+from speedbench.sweep.schedule import planned_order
 
 MAX_RESUBMITS = 3     # a point that never started but was caught by a worker death is sent again
 
@@ -44,6 +46,11 @@ class _Host:
     rd: object = None
     state: str = "setup"                          # setup -> running -> done | lost | skipped
     futures: dict = field(default_factory=dict)   # key -> (future, planned)
+    kinds: dict = field(default_factory=dict)     # key -> invocation index of an invocation task ("finish": a row)
+    results: dict = field(default_factory=dict)   # point id -> {invocation: stored result dict}
+    finishing: dict = field(default_factory=dict)  # stream key -> finish future of the K = 1 point
+    closed: set = field(default_factory=set)       # point ids whose row is being made (finish sent)
+    rank: dict = field(default_factory=dict)       # (point id, invocation) -> Dask priority (its place in the order)
     fps: dict = field(default_factory=dict)       # stream key -> one-stream fps measured on this host
     resubmits: dict = field(default_factory=dict)
     last_seen: float = 0.0
@@ -246,6 +253,11 @@ class _Fleet:
             record_run_facts(h.rd, h.plan.points)
             h.fps = baselines(h.rd.rows())
             total += len(todo)
+            if self.profile.invocations > 1:
+                self._submit_interleaved(h, todo, done, ac)
+                if not todo:
+                    self._finish(h)
+                continue
             first = {}
             for planned in todo:          # K = 1 points first: they are the K > 1 points' baselines
                 if planned.config["concurrency"] == 1:
@@ -291,16 +303,108 @@ class _Fleet:
         ac.add(fut)
         return fut
 
+    # ----------------------------------------------------------------- interleaved invocations (R >= 2)
+    def _submit_interleaved(self, h: _Host, todo, done, ac) -> None:
+        """R >= 2: one task per invocation, in the order the local sweep runs them (round-robin
+        over the host's points in a seeded shuffle, K = 1 points first: sweep/schedule.py's
+        planned_order, recorded in the host's schedule.json). Dask runs a host's tasks one at a
+        time in the order they were submitted; a point's row is made on the host (finish_on_host,
+        sent ahead of the queued invocations) once its last invocation is in."""
+        reps = self.profile.invocations
+        if self.retry_failed:
+            for pid in h.rd.failed_ids():
+                h.rd.clear_invocations(pid)
+        for section, pts in ((None, [p for p in h.plan.points if p.config["concurrency"] == 1]),
+                             ("throughput", [p for p in todo if p.config["concurrency"] != 1])):
+            if not pts:
+                continue
+            by_id = {p.point_id: p for p in pts}
+            order, stored = planned_order(h.rd, list(by_id), reps, SETTLE_S, done, section)
+            for pid, got in stored.items():
+                h.results[pid] = dict(got)
+                if len(got) >= reps:    # every invocation stored, no row yet (killed before it)
+                    self._submit_finish(h, by_id[pid], ac)
+            for pid, index in order:
+                # Dask does not run a worker's queued tasks in submission order: the user
+                # priority (higher first) carries the order; K = 1 passes rank above the throughput pass
+                h.rank[(pid, index)] = -len(h.rank)
+                self._submit_invocation(h, by_id[pid], index, ac)
+
+    def _submit_invocation(self, h: _Host, planned, index: int, ac):
+        n = h.resubmits.get((planned.point_id, index), 0)
+        key = f"speedbench-inv-{h.label}-{planned.point_id}-{index}-{n}-{self.token}"
+        p = self.profile
+        fut = self.client.submit(task.measure_invocation_on_host, p.text, p.source, h.label, planned, index,
+                                 key=key, resources=self._resources(h.label), pure=False,
+                                 priority=h.rank.get((planned.point_id, index), 0))
+        h.futures[key] = (fut, planned)
+        h.kinds[key] = index
+        ac.add(fut)
+
+    def _submit_finish(self, h: _Host, planned, ac, outcome=None):
+        pid = planned.point_id
+        what = outcome if outcome is not None else [d for _, d in sorted(h.results.get(pid, {}).items())]
+        sk = stream_key(planned.config)
+        kwargs = {}
+        if planned.config["concurrency"] != 1:
+            base = h.fps.get(sk)
+            if base is None and sk in h.finishing:
+                kwargs["baseline"] = h.finishing[sk]
+            else:
+                kwargs["baseline_fps"] = base
+        h.closed.add(pid)
+        key = f"speedbench-finish-{h.label}-{pid}-{h.resubmits.get((pid, 'finish'), 0)}-{self.token}"
+        p = self.profile
+        # priority: ahead of the invocations still queued on the host, so rows arrive as points finish
+        fut = self.client.submit(task.finish_on_host, p.text, p.source, h.label, planned, what, key=key,
+                                 resources=self._resources(h.label), pure=False, priority=1, **kwargs)
+        h.futures[key] = (fut, planned)
+        h.kinds[key] = "finish"
+        if planned.config["concurrency"] == 1:
+            h.finishing[sk] = fut
+        ac.add(fut)
+
+    def _invocation_arrived(self, h: _Host, planned, index: int, got: dict, ac) -> None:
+        pid = planned.point_id
+        if pid in h.closed:
+            return      # the point is closed already (it could not be measured at all)
+        if "reason" in got:
+            # nothing of this point can run (its graph failed): its failed row now, its other
+            # invocations are not run
+            mine = [key for key, (f, pp) in h.futures.items() if pp.point_id == pid and h.kinds.get(key) != "finish"]
+            self.client.cancel([h.futures[key][0] for key in mine])
+            for key in mine:
+                h.futures.pop(key)
+                h.kinds.pop(key, None)
+            self._submit_finish(h, planned, ac, outcome=got["reason"])
+            return
+        h.rd.write_invocation(pid, index, got["result"])
+        h.results.setdefault(pid, {})[index] = got["result"]
+        if len(h.results[pid]) >= self.profile.invocations:
+            self._submit_finish(h, planned, ac)
+
+    def _failed_invocation(self, planned, reason: str) -> dict:
+        """A lost invocation as a stored result: recorded with its reason, the point keeps the others."""
+        from speedbench.measure.concurrent_result import LoadResult
+        from speedbench.measure.result import PointResult
+
+        if planned.config["concurrency"] != 1:
+            return LoadResult(planned.point, int(planned.config["concurrency"]), "failed", reason).to_dict()
+        return PointResult(point=planned.point, status="failed", reason=reason).to_dict()
+
     def _arrived(self, fut, ac) -> None:
         h = next((h for h in self.hosts.values() if fut.key in h.futures), None)
         if h is None:
             return                      # cancelled by us (host lost); nothing to store
         _, planned = h.futures.pop(fut.key)
-        if fut.status == "finished":
+        kind = h.kinds.pop(fut.key, None)
+        if isinstance(kind, int):
+            self._arrived_invocation(h, fut, planned, kind, ac)
+        elif fut.status == "finished":
             got = fut.result()
             self._store(h, got["row"], got["samples"], got.get("invocations"))
         elif fut.status == "error" and _killed_worker(fut):
-            if fut.key in self.started:
+            if fut.key in self.started or kind == "finish":
                 reason = f"host {h.label} lost during the point (its worker died while running it: {_reason(fut)})"
                 self._store(h, self._failed_row(h, planned, reason), [])
             elif h.resubmits.get(planned.point_id, 0) < MAX_RESUBMITS:
@@ -317,11 +421,32 @@ class _Fleet:
                          f"--resume to try again")
         elif fut.status == "error":
             self._store(h, self._failed_row(h, planned, f"fleet task failed: {_reason(fut)}"), [])
+        elif kind == "finish":
+            h.resubmits[(planned.point_id, "finish")] = h.resubmits.get((planned.point_id, "finish"), 0) + 1
+            self._submit_finish(h, planned, ac)
         else:
             h.resubmits[planned.point_id] = h.resubmits.get(planned.point_id, 0) + 1
             self._submit(h, planned, ac)   # cancelled by the scheduler, not by us: send again
         if not h.futures and h.state == "running":
             self._finish(h)
+
+    def _arrived_invocation(self, h: _Host, fut, planned, index: int, ac) -> None:
+        """An invocation task came back: stored, or (its worker died while running it, or it
+        raised) recorded as a failed invocation; caught in a worker death before it started, or
+        cancelled by the scheduler: sent again."""
+        again = (planned.point_id, index)
+        if fut.status == "finished":
+            self._invocation_arrived(h, planned, index, fut.result(), ac)
+        elif fut.status == "error" and (fut.key in self.started or not _killed_worker(fut)):
+            reason = (f"host {h.label} lost during the invocation (its worker died while running it: {_reason(fut)})"
+                      if _killed_worker(fut) else f"fleet task failed: {_reason(fut)}")
+            self._invocation_arrived(h, planned, index, {"result": self._failed_invocation(planned, reason)}, ac)
+        elif h.resubmits.get(again, 0) < MAX_RESUBMITS:
+            h.resubmits[again] = h.resubmits.get(again, 0) + 1
+            self._submit_invocation(h, planned, index, ac)
+        else:
+            self._invocation_arrived(h, planned, index, {"result": self._failed_invocation(
+                planned, f"host {h.label} kept losing workers before the invocation started")}, ac)
 
     def _store(self, h: _Host, row: dict, samples, invocations=None) -> None:
         h.rd.write_point(row, samples, invocations)
@@ -365,7 +490,7 @@ class _Fleet:
             h.futures.pop(in_flight[0])
             reason = f"host {h.label} lost during the point (no worker for {self.lost_after_s:g} s)"
             self._store(h, self._failed_row(h, in_flight[1], reason), [])
-        h.counts["unmeasured"] += len(h.futures)
+        h.counts["unmeasured"] += len({pp.point_id for _, pp in h.futures.values()})
         self.client.cancel([f for f, _ in h.futures.values()])
         h.futures.clear()
         h.state = "lost"

@@ -19,7 +19,9 @@ import speedbench
 from speedbench.errors import UserError
 from speedbench.sweep import run_setup
 from speedbench.sweep.env import environment_fingerprint
-from speedbench.sweep.pipeline import PointJob, PreparedGraph, build_row, make_context, run_point, single_stream_fps
+from speedbench.sweep.pipeline import (PointJob, PreparedGraph, build_row, finish_point, make_context,
+                                      run_invocation, run_point, single_stream_fps)
+from speedbench.sweep.schedule import result_from_dict
 from speedbench.sweep.plan import expand_plan
 from speedbench.sweep.profile import parse_profile
 from speedbench.sweep.rundir import PER_IMAGE_DIR
@@ -123,6 +125,43 @@ def measure_on_host(text: str, source: str, label: str, planned, baseline=None, 
                                 + [f"{busy} other measurement worker(s) were running on this host when the point "
                                    f"started"])
     # index: the invocation of each sample (the profile's [repetitions] invocations, one after the other)
+    return {"row": row, "samples": [float(x) for x in samples], "invocations": index}
+
+
+def measure_invocation_on_host(text: str, source: str, label: str, planned, index: int) -> dict:
+    """Invocation `index` of one point on this host (pipeline.run_invocation), for a host whose
+    points' invocations are interleaved (fleet/runner.py orders them by sweep/schedule.py).
+    Returns {"result": the result's to_dict()} or {"reason": why nothing could run}."""
+    from distributed import get_worker
+
+    worker_label(label)
+    worker = get_worker()
+    worker.log_event(TOPIC, {"label": label, "point_id": planned.point_id, "invocation": index,
+                             "key": str(worker.get_current_task()), "pid": os.getpid()})
+    try:
+        context = _context(_profile(text, source), label, needs_data=planned.config["backend"] != "synthetic")
+        got = run_invocation(PointJob(planned), context, index)
+    except UserError as exc:            # the host's dataset cannot be read
+        got = str(exc)
+    return {"reason": got} if isinstance(got, str) else {"result": got.to_dict()}
+
+
+def finish_on_host(text: str, source: str, label: str, planned, outcome, baseline=None, baseline_fps=None) -> dict:
+    """A point's row from its invocations (stored result dicts, or the reason none could run),
+    by pipeline.finish_point on this host (its graph's facts and accuracy, its matmul peak).
+    Returns {"row", "samples", "invocations"} as measure_on_host does."""
+    worker_label(label)
+    if baseline_fps is None and baseline is not None:
+        baseline_fps = single_stream_fps(baseline["row"])
+    what = outcome if isinstance(outcome, str) else [result_from_dict(d) for d in outcome]
+    try:
+        context = _context(_profile(text, source), label, needs_data=planned.config["backend"] != "synthetic")
+        got = finish_point(PointJob(planned, baseline_fps=baseline_fps), context, what)
+        row, samples, index = got.row, got.samples, got.invocations
+        if got.graph.path:
+            row["host_graph"] = got.graph.path
+    except UserError as exc:
+        row, samples, index = build_row(planned, PreparedGraph(), label, reason=str(exc)), [], None
     return {"row": row, "samples": [float(x) for x in samples], "invocations": index}
 
 

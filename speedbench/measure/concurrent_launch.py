@@ -166,6 +166,9 @@ def add_curve(result: "LoadResult", point, images, utilisations, **kwargs) -> No
     if result.ok and utilisations:
         paced = measure_curve(point, images, result.k, utilisations, capacity_fps=result.tput_fps, **kwargs)
         result.summary["load_curve"] = json.dumps([curve_entry(r) for r in paced])
+        result.curve_runs = [(float(r.summary.get("tput_offered_frac", u)), 0, list(r.latencies_ms))
+                             for u, r in zip(utilisations, paced) if r.ok]
+        result.extra.setdefault("probes", []).extend(p for r in paced for p in r.extra.get("probes", []))
 
 
 def measure_curve(point, images, k: int, utilisations=(0.5, 0.7, 0.9), capacity_fps: float | None = None,
@@ -263,7 +266,8 @@ def _run_workers(point, k, specs, tmp: Path, window: float, min_requests: int, t
     if not lat:
         return LoadResult(point, k, "failed", "no request completed inside the measurement window",
                           summary=summary, workers=workers)
-    return LoadResult(point, k, "ok", "", summary=summary, latencies_ms=lat, workers=workers)
+    return LoadResult(point, k, "ok", "", summary=summary, latencies_ms=lat, workers=workers,
+                      extra={"probes": [w["probe"] for w in workers if isinstance(w.get("probe"), dict)]})
 
 
 def _stop_reason(procs, specs, tmp: Path, deadline: float, timed_out: str) -> str:

@@ -40,6 +40,11 @@ def worker_main(spec_path: str) -> int:
     try:
         if spec.get("cores"):
             os.sched_setaffinity(0, spec["cores"])
+        from speedbench.measure.probe import run_probe
+
+        # Host speed before the measured stack is imported, and again after the window
+        # (measure/probe.py; the same record a single-stream worker keeps).
+        probe = {"start": run_probe()}
         from speedbench.measure.point import Point, Policy
         from speedbench.measure.timing import warm_up
 
@@ -69,12 +74,13 @@ def worker_main(spec_path: str) -> int:
         else:
             starts, ends, cpus = _closed_loop(run, inputs, end_ns, spec["index"])
         cpu_total = cpus.pop()
+        probe["end"] = run_probe()
         import resource
 
         rss_peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # KiB on Linux
         write_json(result_path, {"status": "ok", "starts_ns": starts, "ends_ns": ends, "cpu_ns": cpus,
                                   **({"service_ns": service} if service is not None else {}),
-                                  "cpu_total_ns": cpu_total, "rss_peak_mib": rss_peak,
+                                  "cpu_total_ns": cpu_total, "rss_peak_mib": rss_peak, "probe": probe,
                                   "affinity": sorted(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity")
                                   else []})
         return 0

@@ -133,13 +133,14 @@ def mixture_percentiles(groups, qs) -> np.ndarray:
     return weighted_percentiles(vals[None, :], w[None, :], qs)[0]
 
 
-def bootstrap_distribution(groups, qs, n_boot: int = N_BOOT, rng=None) -> np.ndarray:
-    """Two-level bootstrap replicates of the mixture percentiles: shape (n_boot, len(qs)).
+def _draws(groups, n_boot: int, rng):
+    """The two-level resampling itself, in blocks: yields (start, count, values, used, n_c).
 
     Each replicate draws R invocations with replacement (R = number of groups), then for
     each drawn invocation as many samples as it has, with replacement, from its own samples.
+    values: (count, R, m) drawn samples (m the largest group, padded); used: which are real;
+    n_c: (count, R) sample count of each drawn invocation.
     """
-    rng = rng if rng is not None else np.random.default_rng(0)
     groups = [np.asarray(g, dtype=float) for g in groups]
     r = len(groups)
     sizes = np.array([len(g) for g in groups])
@@ -147,7 +148,6 @@ def bootstrap_distribution(groups, qs, n_boot: int = N_BOOT, rng=None) -> np.nda
     padded = np.zeros((r, m))
     for i, g in enumerate(groups):
         padded[i, :len(g)] = g
-    out = np.empty((n_boot, len(qs)))
     step = max(1, _CHUNK_ELEMS // (r * m))
     for s in range(0, n_boot, step):
         k = min(step, n_boot - s)
@@ -157,9 +157,38 @@ def bootstrap_distribution(groups, qs, n_boot: int = N_BOOT, rng=None) -> np.nda
         idx = np.minimum((u * n_c[..., None]).astype(np.int64), n_c[..., None] - 1)  # level 2
         vals = padded[chosen[..., None], idx]                          # (k, r, m)
         used = np.arange(m)[None, None, :] < n_c[..., None]
+        yield s, k, chosen, vals, used, n_c
+
+
+def bootstrap_distribution(groups, qs, n_boot: int = N_BOOT, rng=None) -> np.ndarray:
+    """Two-level bootstrap replicates of the mixture percentiles: shape (n_boot, len(qs))."""
+    rng = rng if rng is not None else np.random.default_rng(0)
+    r, m = len(groups), max(len(g) for g in groups)
+    out = np.empty((n_boot, len(qs)))
+    for s, k, _, vals, used, n_c in _draws(groups, n_boot, rng):
         w = np.where(used, 1.0 / n_c[..., None], 0.0)
         out[s:s + k] = weighted_percentiles(vals.reshape(k, r * m), w.reshape(k, r * m), qs)
     return out
+
+
+def hierarchical_rate_ci(groups, rates, confidence: float = 0.95, n_boot: int = N_BOOT, rng=None) -> tuple:
+    """(estimate, ci_lo, ci_hi) of a throughput measured once per invocation (frames/s).
+
+    The estimate is the mean of the invocations' rates. The same two-level resampling as the
+    percentiles: level 1 draws invocations; level 2 draws the requests of each drawn invocation
+    and rescales its rate by Little's law at a fixed number in flight (a closed loop keeps K
+    requests in flight): X* = X mean(W) / mean(W*), W the request latencies.
+    """
+    rng = rng if rng is not None else np.random.default_rng(0)
+    rates = np.asarray(rates, dtype=float)
+    means = np.array([np.mean(g) for g in groups], dtype=float)
+    boot = np.empty((n_boot, 1))
+    for s, k, chosen, vals, used, n_c in _draws(groups, n_boot, rng):
+        drawn_mean = np.where(used, vals, 0.0).sum(axis=2) / n_c      # (k, r)
+        boot[s:s + k, 0] = (rates[chosen] * means[chosen] / drawn_mean).mean(axis=1)
+    est = np.array([rates.mean()])
+    lo, hi = _interval(est, boot, confidence, len(groups), max(len(groups) - 1, 1))
+    return float(est[0]), float(lo[0]), float(hi[0])
 
 
 def hierarchical_ci(groups, qs=(50, 90, 99), confidence: float = 0.95, n_boot: int = N_BOOT,

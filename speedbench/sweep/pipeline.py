@@ -22,7 +22,7 @@ from speedbench.errors import UserError, one_line
 from speedbench.measure.launch import SETTLE_S, measure_point
 from speedbench.measure.backends import get_backend
 from speedbench.measure.concurrent_launch import add_curve, measure_load
-from speedbench.measure.concurrent_result import single_stream_fps  # re-exported: the sweep's one X(1)
+from speedbench.measure.concurrent_result import combine_loads, single_stream_fps  # single_stream_fps: re-exported
 from speedbench.measure.peak import ensure_peaks, peak_for
 from speedbench.sweep import external, quantised, run_setup
 from speedbench.sweep.plan import GraphKey, PlannedPoint
@@ -205,6 +205,7 @@ class ThroughputSettings:
     """`speedbench load`: every K (K = 1 too) measured as a throughput point with these settings."""
     seconds: float = 5.0
     pin: bool = False
+    invocations: int | None = None   # worker launches (R) per K; None: the profile's [repetitions] invocations
 
 
 @dataclass
@@ -245,44 +246,32 @@ def make_context(profile, dataset, exports_dir, host: str, per_image_dir=None, s
                         policy=run_setup.make_policy(profile.repetitions), host=host, throughput=throughput)
 
 
+def invocations_of(context: PointContext) -> int:
+    """R: how many invocations (fresh worker launches) a point of this context gets."""
+    settings = context.throughput
+    got = settings.invocations if settings is not None and settings.invocations else getattr(context.profile,
+                                                                                              "invocations", 1)
+    return max(1, int(got))
+
+
 def run_point(job: PointJob, context: PointContext) -> PointOutcome:
     """Prepare the point's graph, measure it in its own worker(s), build its row. Never raises
     for a failure of the point: the row then has status "failed" and the reason.
 
-    A one-stream point runs its profile's `invocations` worker processes one after the other
-    (the local sweep interleaves them over all points instead: run_invocation + finish_point).
+    Every point, one-stream or throughput (K workers at once), runs R invocations one after
+    the other (invocations_of); the local sweep interleaves them over all points instead
+    (run_invocation + finish_point, sweep/schedule.py).
     """
-    planned = job.planned
-    if planned.config["concurrency"] == 1 and context.throughput is None:
-        outcome = []
-        for i in range(max(1, int(getattr(context.profile, "invocations", 1)))):
-            if i:
-                time.sleep(SETTLE_S)
-            got = run_invocation(job, context, i)
-            if isinstance(got, str):
-                outcome = got
-                break
-            outcome.append(got)
-        return finish_point(job, context, outcome)
-    graph, result, reason = PreparedGraph(), None, ""
-    t0 = time.monotonic()
-    try:
-        graph = context.graphs.prepare(planned)
-        t0 = time.monotonic()    # wall_s: the point's own time, not its graph's preparation
-        if not graph.ok and planned.config["backend"] != "eager":   # eager builds its model itself
-            reason = graph.reason
-        else:
-            context.peaks = _peaks(context.peaks, planned.config)
-            result = _measure(job, context, graph)
-    except UserError as exc:
-        reason = str(exc)
-    except Exception as exc:  # a harness bug on one point must not cost the others
-        reason = f"{type(exc).__name__}: {one_line(exc)}"
-    row = build_row(planned, graph, context.host, result=result, reason=reason)
-    if result is not None and planned.config["backend"] != "synthetic":
-        row["matmul_peak_gmac_s"] = peak_for(context.peaks, int(planned.config["intra_threads"]))
-    row["wall_s"] = round(time.monotonic() - t0, 3)
-    return PointOutcome(row=row, samples=_samples(result), measured=result is not None, graph=graph)
+    outcome = []
+    for i in range(invocations_of(context)):
+        if i:
+            time.sleep(SETTLE_S)
+        got = run_invocation(job, context, i)
+        if isinstance(got, str):
+            outcome = got
+            break
+        outcome.append(got)
+    return finish_point(job, context, outcome)
 
 
 def _peaks(peaks: dict | None, config: dict) -> dict | None:
@@ -303,11 +292,9 @@ def _worker_point(planned: PlannedPoint, profile, graph: PreparedGraph):
                                **(external.point_fields(entry, c["proposals"]) if entry is not None else {}))
 
 
-def _measure(job: PointJob, context: PointContext, graph: PreparedGraph):
+def _measure_load(job: PointJob, context: PointContext, point):
+    """One invocation of a throughput point: K workers together (+ its paced curve runs)."""
     c, profile = job.planned.config, context.profile
-    point = _worker_point(job.planned, profile, graph)
-    if c["concurrency"] == 1 and context.throughput is None:
-        return measure_point(point, context.images, context.policy, profile.timeout_s, python=context.python)
     settings = context.throughput or ThroughputSettings(seconds=None)
     kwargs = {"policy": context.policy, "timeout_s": profile.timeout_s, "seconds": settings.seconds,
               "pin": settings.pin}
@@ -318,19 +305,26 @@ def _measure(job: PointJob, context: PointContext, graph: PreparedGraph):
 
 
 def run_invocation(job: PointJob, context: PointContext, index: int):
-    """One worker process (invocation `index`) of a one-stream point: its PointResult, or a str
-    saying why no worker could run (the graph failed; a harness error). Only invocation 0 runs
-    the stage profile: the others time only."""
+    """Invocation `index` of a point: one worker process of a one-stream point (a PointResult),
+    or K workers measured together of a throughput point (a LoadResult); or a str saying why
+    nothing could run (the graph failed; a configuration this host cannot run; a harness
+    error). Only invocation 0 of a one-stream point runs the stage profile."""
     planned, profile = job.planned, context.profile
     try:
         graph = context.graphs.prepare(planned)
         if not graph.ok and planned.config["backend"] != "eager":   # eager builds its model itself
             return graph.reason
         point = _worker_point(planned, profile, graph)
-        policy = context.policy if index == 0 else dataclasses.replace(context.policy, profile_stages=False)
         t0 = time.monotonic()
-        result = measure_point(point, context.images, policy, profile.timeout_s, invocation=index,
-                               python=context.python)
+        if is_throughput(planned, context):
+            result = _measure_load(job, context, point)
+            result.invocation = [index] * len(result.latencies_ms)
+            result.curve_runs = [(u, index, lat) for u, _, lat in result.curve_runs]
+            result.extra["invocation"] = index
+        else:
+            policy = context.policy if index == 0 else dataclasses.replace(context.policy, profile_stages=False)
+            result = measure_point(point, context.images, policy, profile.timeout_s, invocation=index,
+                                   python=context.python)
         result.extra["wall_s"] = round(time.monotonic() - t0, 3)
         return result
     except UserError as exc:
@@ -339,8 +333,13 @@ def run_invocation(job: PointJob, context: PointContext, index: int):
         return f"{type(exc).__name__}: {one_line(exc)}"
 
 
+def is_throughput(planned: PlannedPoint, context: PointContext) -> bool:
+    """K > 1, or any K under `speedbench load`: measured by K workers at once (measure.concurrent_launch)."""
+    return planned.config["concurrency"] != 1 or context.throughput is not None
+
+
 def finish_point(job: PointJob, context: PointContext, outcome) -> PointOutcome:
-    """The row of a one-stream point from its invocations (PointResults, combined by the
+    """The row of a point from its invocations (PointResults or LoadResults, combined by the
     hierarchical bootstrap), or a failed row from the reason none ran."""
     from speedbench.measure.result import combine_invocations
 
@@ -349,15 +348,21 @@ def finish_point(job: PointJob, context: PointContext, outcome) -> PointOutcome:
         row = build_row(job.planned, graph, context.host, reason=outcome)
         row["wall_s"] = 0.0
         return PointOutcome(row=row, samples=[], measured=False, graph=graph)
-    result = combine_invocations(list(outcome))
+    if is_throughput(job.planned, context):
+        result = combine_loads(list(outcome))
+        index = list(result.invocation)
+        k = int(job.planned.config["concurrency"])
+        if result.ok and job.baseline_fps and k > 1:   # X(1) known now (a fleet host may learn it late)
+            result.summary["scaling_eff"] = result.tput_fps / (k * job.baseline_fps)
+    else:
+        result = combine_invocations(list(outcome))
+        index = None if result.measurement is None else result.measurement.invocation.tolist()
     row = build_row(job.planned, graph, context.host, result=result)
     if job.planned.config["backend"] != "synthetic":
         context.peaks = _peaks(context.peaks, job.planned.config)
         row["matmul_peak_gmac_s"] = peak_for(context.peaks, int(job.planned.config["intra_threads"]))
     row["wall_s"] = round(sum(float(r.extra.get("wall_s", 0.0)) for r in outcome), 3)
-    m = result.measurement
-    return PointOutcome(row=row, samples=_samples(result), measured=True, graph=graph,
-                        invocations=None if m is None else m.invocation.tolist())
+    return PointOutcome(row=row, samples=_samples(result), measured=True, graph=graph, invocations=index)
 
 
 def _samples(result) -> list:

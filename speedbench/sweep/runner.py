@@ -15,7 +15,7 @@ from speedbench.sweep import run_setup
 from speedbench.sweep.env import environment_fingerprint
 from speedbench.measure.launch import SETTLE_S
 from speedbench.sweep.pipeline import (PointJob, baselines, finish_point, make_context, record_run_facts,
-                                       run_invocation, run_point, stream_key)
+                                       run_invocation, stream_key)
 from speedbench.sweep.plan import Plan, expand_plan
 from speedbench.sweep.profile import Profile, load_profile, parse_profile
 from speedbench.sweep.progress import Progress
@@ -109,8 +109,7 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
     reps = profile.invocations
     one_stream = [p for p in plan.points if p.config["concurrency"] == 1]
     throughput = [p for p in todo if p.config["concurrency"] != 1]
-    progress = Progress(len(todo), quiet=quiet, stream=stream,
-                        steps=reps * (len(todo) - len(throughput)) + len(throughput))
+    progress = Progress(len(todo), quiet=quiet, stream=stream, steps=reps * len(todo))
     context = make_context(profile, dataset, rd.exports, host=profile.host, per_image_dir=rd.path / PER_IMAGE_DIR,
                            status=progress.status, on_prepared=lambda key, graph: _note_thread_check(rd, key, graph))
     rd.update_meta(invocations=reps)
@@ -133,15 +132,22 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
             on_point=lambda planned, row: progress.done(planned.label, row))
         for k in ("ok", "failed"):
             counts[k] += got[k]
-        # Throughput points after every K = 1 point, whose row gives their scaling baseline.
+        # Throughput points after every K = 1 point, whose row gives their scaling baseline; their
+        # R invocations (K workers each) round-robin over them the same way, in a seed of their own.
         x1 = baselines(rd.rows())
-        for planned in throughput:
-            progress.start(planned.label)
-            out = run_point(PointJob(planned, baseline_fps=x1.get(stream_key(planned.config))), context)
-            rd.write_point(out.row, out.samples, out.invocations)
-            progress.advance()
-            counts["ok" if out.row.get("status") == "ok" else "failed"] += 1
-            progress.done(planned.label, out.row)
+
+        def job(planned):
+            return PointJob(planned, baseline_fps=x1.get(stream_key(planned.config)))
+
+        got = run_interleaved(
+            rd, throughput, reps, settle_s=SETTLE_S, complete=done, section="throughput",
+            measure=lambda planned, i: run_invocation(job(planned), context, i),
+            finish=lambda planned, what: _stored(finish_point(job(planned), context, what)),
+            on_start=lambda planned, i: progress.start(f"{planned.label} #{i + 1}/{reps}"),
+            on_invocation=lambda planned, i, result: progress.advance(),
+            on_point=lambda planned, row: progress.done(planned.label, row))
+        for k in ("ok", "failed"):
+            counts[k] += got[k]
     finally:
         progress.close()
     rd.finish()

@@ -41,10 +41,50 @@ def invocation_order(point_ids, invocations, seed: int, done=None) -> list[tuple
     return order
 
 
+SECTIONS = ("throughput",)     # schedule.json keys of later passes (the top level is the K = 1 pass)
+
+
+def planned_order(rd, ids, invocations: int, settle_s: float, complete=(), section: str | None = None):
+    """(order still to run, {point_id: {invocation: stored result dict}}) for the points `ids`
+    of a run directory, and the schedule recorded in it (schedule.json): the seed of an earlier
+    session is reused, so a resumed run keeps the places of its missing invocations.
+    complete: ids whose rows are stored (nothing of theirs runs). section: see run_interleaved.
+    The local sweep (run_interleaved) and a fleet host (fleet/runner.py) both order by this."""
+    complete = set(complete)
+    wanted = set(ids)
+    stored = {pid: got for pid, got in rd.invocation_results().items() if pid in wanted and pid not in complete}
+    whole = rd.schedule() or {}
+    previous = (whole.get(section) or {}) if section else whole
+    seed = int(previous.get("seed", new_seed()))
+    done = {pid: set(got) for pid, got in stored.items()}
+    done.update({pid: set(range(invocations)) for pid in complete})
+    order = invocation_order(ids, invocations, seed, done)
+    if previous.get("seed") == seed and previous.get("invocations") == invocations:
+        mine = {**previous, "resumed": int(previous.get("resumed", 0)) + 1}
+    else:
+        mine = {"seed": seed, "invocations": invocations, "settle_s": settle_s,
+                "order": [list(x) for x in invocation_order(ids, invocations, seed)]}
+    if section:
+        rd.write_schedule({**whole, section: mine})
+    else:
+        rd.write_schedule({**{k: whole[k] for k in SECTIONS if k in whole}, **mine})
+    return order, stored
+
+
+def result_from_dict(d: dict):
+    """A stored invocation (RunDir.invocation_results) as the result object it was."""
+    from speedbench.measure.concurrent_result import LoadResult
+    from speedbench.measure.result import PointResult
+
+    return LoadResult.from_dict(d) if d.get("kind") == "load" else PointResult.from_dict(d)
+
+
 def run_interleaved(rd, points, invocations: int, measure, finish, settle_s: float, complete=(),
-                    on_start=None, on_invocation=None, on_point=None) -> dict:
-    """Run the invocations of `points` (the plan's K = 1 points) round-robin; `complete`: ids of
-    points whose rows are stored and stay (resume), so nothing of theirs runs.
+                    on_start=None, on_invocation=None, on_point=None, section: str | None = None) -> dict:
+    """Run the invocations of `points` round-robin; `complete`: ids of points whose rows are
+    stored and stay (resume), so nothing of theirs runs. section: None for the plan's K = 1
+    points (recorded at the top level of schedule.json), "throughput" for its K > 1 points
+    (run after them, recorded under that key); each pass keeps its own seed.
 
     measure(planned, index) -> PointResult of one worker process, or a str: the point cannot
     be measured at all (its graph failed); it then gets its failed row at once.
@@ -55,23 +95,11 @@ def run_interleaved(rd, points, invocations: int, measure, finish, settle_s: flo
     and the order are recorded in the run directory (schedule.json).
     Returns counts {"ok": n, "failed": n} of the points written.
     """
-    from speedbench.measure.result import PointResult
-
     ids = [p.point_id for p in points]
     by_id = {p.point_id: p for p in points}
     complete = set(complete)
-    stored = {pid: got for pid, got in rd.invocation_results().items() if pid in by_id and pid not in complete}
-    previous = rd.schedule() or {}
-    seed = int(previous.get("seed", new_seed()))
-    done = {pid: set(got) for pid, got in stored.items()}
-    done.update({pid: set(range(invocations)) for pid in complete})
-    order = invocation_order(ids, invocations, seed, done)
-    if previous.get("seed") == seed and previous.get("invocations") == invocations:
-        rd.write_schedule({**previous, "resumed": int(previous.get("resumed", 0)) + 1})
-    else:
-        rd.write_schedule({"seed": seed, "invocations": invocations, "settle_s": settle_s,
-                           "order": [list(x) for x in invocation_order(ids, invocations, seed)]})
-    results = {pid: [PointResult.from_dict(d) for _, d in sorted(got.items())] for pid, got in stored.items()}
+    order, stored = planned_order(rd, ids, invocations, settle_s, complete, section)
+    results = {pid: [result_from_dict(d) for _, d in sorted(got.items())] for pid, got in stored.items()}
     closed: set = set()
     counts = {"ok": 0, "failed": 0}
 

@@ -21,11 +21,13 @@ from speedbench.sweep.profile import load_profile, parse_profile
 from speedbench.sweep.rundir import PER_IMAGE_DIR, RunDir
 
 
-def load_into_run(run_dir, ks, seconds=5.0, pin=False, utilisations=(), report=None, only=None) -> dict:
+def load_into_run(run_dir, ks, seconds=5.0, pin=False, utilisations=(), report=None, only=None,
+                  invocations=None) -> dict:
     """Re-measure the ok single-stream points of a run at each K; rows go into the same run.
 
     report(label, row_or_None, reason): told about each K as it finishes (None: not measured).
     only: point ids to measure (default: every ok single-stream point).
+    invocations: R launches of the K workers per K (default: the profile's [repetitions] invocations).
     Returns counts {"ok", "failed"}.
     """
     rd = RunDir.open(run_dir)
@@ -52,12 +54,14 @@ def load_into_run(run_dir, ks, seconds=5.0, pin=False, utilisations=(), report=N
 
         host = rd.meta().get("host") or profile.host
         todo = [(PlannedPoint.from_row(r), r) for r in rows]
-        return _measure_all(todo, profile, rd, host, ks, ThroughputSettings(seconds, pin), utilisations, store, report)
+        return _measure_all(todo, profile, rd, host, ks, ThroughputSettings(seconds, pin, invocations), utilisations,
+                            store, report)
     finally:
         rd.close()
 
 
-def load_from_profile(profile_path, ks, out_dir=None, seconds=5.0, pin=False, utilisations=(), report=None) -> Path:
+def load_from_profile(profile_path, ks, out_dir=None, seconds=5.0, pin=False, utilisations=(), report=None,
+                      invocations=None) -> Path:
     """Measure a profile's points at each K into a new run directory; returns its path."""
     profile = load_profile(profile_path)
     planned = [p for p in expand_plan(profile).points if p.config["concurrency"] == 1]
@@ -65,11 +69,12 @@ def load_from_profile(profile_path, ks, out_dir=None, seconds=5.0, pin=False, ut
         raise UserError(f"{profile_path}: the profile plans no points")
     out = Path(out_dir) if out_dir else Path(str(profile.output_dir()) + "-load")
     meta = {"profile_name": profile.name, "host": profile.host, "profile_source": str(profile_path),
-            "env": environment_fingerprint(), "load": {"ks": ks, "seconds": seconds, "pin": pin}}
+            "env": environment_fingerprint(), "load": {"ks": ks, "seconds": seconds, "pin": pin, "invocations": invocations or profile.invocations}}
     rd = RunDir.create(out, profile.text, meta)
     try:
-        _measure_all([(p, None) for p in planned], profile, rd, profile.host, ks, ThroughputSettings(seconds, pin),
-                     utilisations, lambda row, got_samples, source: rd.write_point(row, got_samples), report)
+        _measure_all([(p, None) for p in planned], profile, rd, profile.host, ks,
+                     ThroughputSettings(seconds, pin, invocations), utilisations,
+                     lambda row, got_samples, source: rd.write_point(row, got_samples), report)
         rd.finish()
     finally:
         rd.close()
