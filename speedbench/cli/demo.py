@@ -10,7 +10,7 @@ def add_parser(subparsers):
         description="Generate held-out yard scenes if absent, run profiles/demo.toml with the trained demo "
                     "zoo, measure throughput (K = 1 and 2 workers) of the frontier configurations, then print "
                     "the frontier, a pick for an example latency budget and what to buy for an example camera "
-                    "fleet, and write the frontier plot and the review report. Offline; about 15 minutes on 2 "
+                    "fleet, and write the frontier plot and the review report. Offline; about 9 minutes on 2 "
                     "cores. Run it again to resume an interrupted demo. --check shows the regression gate.")
     p.add_argument("-o", "--output", metavar="RUN_DIR", type=output_dir, help="run directory (default: runs/demo)")
     p.add_argument("--budget-ms", type=float_in(0, 1e6, open_lo=True), default=None,
@@ -19,7 +19,7 @@ def add_parser(subparsers):
     p.add_argument("-q", "--quiet", action="store_true", help="one plain line per point instead of a progress bar")
     p.add_argument("--check", action="store_true",
                    help="instead: run profiles/upgrade-check.toml twice with nothing changed, then compare the "
-                        "two runs and explain what a clean verdict looks like (estimated at up to about 11 minutes "
+                        "two runs and explain what a clean verdict looks like (about 6 minutes "
                         "on 2 cores); "
                         "-o names the parent directory of the two runs (default runs/)")
     p.set_defaults(run=run)
