@@ -48,10 +48,10 @@ def _stop(*a, **k):
     os._exit(0)
 measure = importlib.import_module("speedbench.measure")
 measure.measure_point = measure.measure_load = _stop  # where a point's worker starts
-try:  # older checkouts started it elsewhere
-    importlib.import_module("speedbench.sweep.pipeline")._measure = _stop
-except (ImportError, AttributeError):
-    pass
+pipeline = importlib.import_module("speedbench.sweep.pipeline")
+for name in ("measure_point", "measure_load", "_measure"):  # the names the point path binds (older: _measure)
+    if hasattr(pipeline, name):
+        setattr(pipeline, name, _stop)
 from speedbench.cli import main
 sys.exit(main(sys.argv[1:]))
 """
