@@ -122,32 +122,24 @@ def run_plan(rd: RunDir, profile: Profile, plan: Plan, quiet: bool = False, stre
         # Exports and accuracy first: nothing heavy runs in this process while a worker measures.
         for planned in todo:
             context.graphs.prepare(planned)
-        # One-stream points: their invocations round-robin over the points, seeded shuffled order.
-        got = run_interleaved(
-            rd, one_stream, reps, settle_s=SETTLE_S, complete=done,
-            measure=lambda planned, i: run_invocation(PointJob(planned), context, i),
-            finish=lambda planned, what: _stored(finish_point(PointJob(planned), context, what)),
-            on_start=lambda planned, i: progress.start(f"{planned.label} #{i + 1}/{reps}"),
-            on_invocation=lambda planned, i, result: progress.advance(),
-            on_point=lambda planned, row: progress.done(planned.label, row))
-        for k in ("ok", "failed"):
-            counts[k] += got[k]
-        # Throughput points after every K = 1 point, whose row gives their scaling baseline; their
-        # R invocations (K workers each) round-robin over them the same way, in a seed of their own.
-        x1 = baselines(rd.rows())
+        # One-stream points first: their invocations round-robin over the points in a seeded shuffled
+        # order. Then the throughput points, whose scaling baseline is the K = 1 rows just stored: their
+        # R invocations (K workers each) round-robin the same way, in a seed of their own.
+        for points, section in ((one_stream, None), (throughput, "throughput")):
+            x1 = baselines(rd.rows()) if section else {}
 
-        def job(planned):
-            return PointJob(planned, baseline_fps=x1.get(stream_key(planned.config)))
+            def job(planned, x1=x1):
+                return PointJob(planned, baseline_fps=x1.get(stream_key(planned.config)))
 
-        got = run_interleaved(
-            rd, throughput, reps, settle_s=SETTLE_S, complete=done, section="throughput",
-            measure=lambda planned, i: run_invocation(job(planned), context, i),
-            finish=lambda planned, what: _stored(finish_point(job(planned), context, what)),
-            on_start=lambda planned, i: progress.start(f"{planned.label} #{i + 1}/{reps}"),
-            on_invocation=lambda planned, i, result: progress.advance(),
-            on_point=lambda planned, row: progress.done(planned.label, row))
-        for k in ("ok", "failed"):
-            counts[k] += got[k]
+            got = run_interleaved(
+                rd, points, reps, settle_s=SETTLE_S, complete=done, section=section,
+                measure=lambda planned, i: run_invocation(job(planned), context, i),
+                finish=lambda planned, what: _stored(finish_point(job(planned), context, what)),
+                on_start=lambda planned, i: progress.start(f"{planned.label} #{i + 1}/{reps}"),
+                on_invocation=lambda planned, i, result: progress.advance(),
+                on_point=lambda planned, row: progress.done(planned.label, row))
+            for k in ("ok", "failed"):
+                counts[k] += got[k]
     finally:
         progress.close()
     rd.finish()
