@@ -26,7 +26,7 @@ import pandas as pd
 
 from speedbench.analyse.common import label
 from speedbench.analyse.regression import accuracy_delta
-from speedbench.analyse.regression_result import Comparison
+from speedbench.analyse.regression_result import Comparison, verdict_table
 from speedbench.analyse.run_changes import env_diff
 from speedbench.analyse.hostspeed import verdict as threshold_verdict
 from speedbench.errors import UserError
@@ -146,12 +146,7 @@ def compare_invocations(inv: pd.DataFrame, threshold: float = 0.05, confidence: 
         raise UserError(f"interleaved run: invocation table lacks column(s) {', '.join(missing)}")
     rows = [compare_point(pid, g, threshold, confidence, seed, n_boot, fail_on_drift)
             for pid, g in inv.groupby("point_id", sort=False)]
-    points = pd.DataFrame(rows)
-    if len(points):
-        points = points.sort_values(["regression", "ratio"], ascending=[False, False], kind="stable")
-        points = points.reset_index(drop=True)
-    else:
-        points = pd.DataFrame(columns=["point_id", "label", "verdict", "regression", "ratio"])
+    points = verdict_table(rows)
     notes = list(notes or [])
     if len(points) and (points["verdict"] == "too few pairs").any():
         notes.append(f"points with fewer than {MIN_PAIRS} complete A/B pairs are reported, not gated")

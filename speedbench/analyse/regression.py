@@ -19,7 +19,7 @@ import pandas as pd
 from speedbench.analyse.common import as_float as _f
 from speedbench.analyse.common import require_columns, with_ids
 from speedbench.analyse.paired import paired_diff
-from speedbench.analyse.regression_result import Comparison
+from speedbench.analyse.regression_result import Comparison, verdict_table
 from speedbench.analyse.hostspeed import adjust, host_status, probe_values
 from speedbench.analyse.run_changes import busy_machine_notes, env_diff, thread_change_notes
 from speedbench.analyse.runs import Run, as_run
@@ -124,12 +124,7 @@ def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: 
                                          or (fail_on_drift and row["drift"] == "changed"))
     elif host_adjusted:
         raise UserError(f"--host-adjusted: {host['status']}; nothing to adjust by")
-    points = pd.DataFrame(rows)
-    if len(points):
-        points = points.sort_values(["regression", "ratio"], ascending=[False, False], kind="stable")
-        points = points.reset_index(drop=True)
-    else:
-        points = pd.DataFrame(columns=["point_id", "label", "verdict", "regression", "ratio"])
+    points = verdict_table(rows)
     notes = thread_change_notes(bi, ni, unmatched)
     if not common:
         notes.append("no configuration appears in both runs: nothing was compared")

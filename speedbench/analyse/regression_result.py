@@ -13,6 +13,15 @@ from speedbench.analyse.hostspeed import host_lines
 from speedbench.analyse.common import md_cell as _md
 
 
+def verdict_table(rows: list[dict]) -> pd.DataFrame:
+    """One row per compared point, regressions first, then the largest ratio (both compare modes)."""
+    points = pd.DataFrame(rows)
+    if not len(points):
+        return pd.DataFrame(columns=["point_id", "label", "verdict", "regression", "ratio"])
+    points = points.sort_values(["regression", "ratio"], ascending=[False, False], kind="stable")
+    return points.reset_index(drop=True)
+
+
 @dataclass
 class Comparison:
     points: pd.DataFrame          # one row per matched configuration
