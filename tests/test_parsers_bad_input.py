@@ -114,20 +114,36 @@ def test_annotation_numbers_checked_per_field(tmp_path):
 
 @pytest.mark.parametrize("entry, field", [
     ({"image_id": 10**30, "category_id": 1, "bbox": [1, 2, 3, 4], "score": 0.5}, "out of range"),
+    ({"image_id": 2**63, "category_id": 1, "bbox": [1, 2, 3, 4], "score": 0.5}, "out of range"),
+    ({"image_id": 1, "category_id": -(10**25), "bbox": [1, 2, 3, 4], "score": 0.5}, "out of range"),
     ({"image_id": 1, "category_id": 1, "bbox": [1, 2, 3, 4], "score": "1e400"}, "score must be a finite number"),
 ])
-def test_detections_huge_numbers(tmp_path, entry, field):
-    from speedbench.evaluate import load_detections
+@pytest.mark.parametrize("fast", [True, False], ids=["orjson", "stdlib"])
+def test_detections_huge_numbers(tmp_path, monkeypatch, entry, field, fast):
+    # load_detections scans the text before parsing; read_detections (the evaluate command's
+    # path) lets orjson parse first and relies on its own per-field checks: both must refuse.
+    from speedbench.data import jsonio
+    from speedbench.evaluate import load_detections, read_detections
 
+    if fast:
+        pytest.importorskip("orjson")
+    else:
+        monkeypatch.setattr(jsonio, "orjson", None)
     gt = {"images": [{"id": 1, "file_name": "a.png", "width": 64, "height": 48}], "annotations": [],
           "categories": [{"id": 1, "name": "crate"}]}
     path = tmp_path / "dets.json"
     path.write_text(json.dumps([entry]).replace('"1e400"', "1e400"))
-    with pytest.raises(UserError, match=rf"dets\.json: .*{field}"):
-        load_detections(path, gt)
+    for read in (load_detections, read_detections):
+        with pytest.raises(UserError, match=rf"dets\.json: .*{field}"):
+            read(path, gt)
     path.write_text("[" * 100_000 + "]" * 100_000)
-    with pytest.raises(UserError, match=r"dets\.json: JSON nested deeper"):
-        load_detections(path, gt)
+    for read in (load_detections, read_detections):
+        with pytest.raises(UserError, match=r"dets\.json: JSON nested deeper"):
+            read(path, gt)
+    path.write_text("[" * 70 + "]" * 70)  # deeper than MAX_DEPTH, within orjson's own bound
+    for read in (load_detections, read_detections):
+        with pytest.raises(UserError, match=r"dets\.json: "):
+            read(path, gt)
 
 
 def test_detections_built_in_python_with_a_huge_integer():

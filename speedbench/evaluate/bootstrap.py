@@ -66,19 +66,23 @@ def resampled_maps(m: Matching, weights: np.ndarray, threads: int = 1) -> np.nda
         live = np.flatnonzero(npos[:, k] > 0)
         if live.size:
             cls = _Class(m.img[sel], m.tp[sel, :, 0], m.fp[sel, :, 0], n_images, drawn)
-            # The matrix product runs once over all rows, on BLAS's own threads.
-            seen = cls.seen_by_product(w[live]) if cls.upto is not None else None
             step = max(1, _BLOCK_ELEMENTS // max(1, cls.width))
-            jobs += [(k, cls, live[c:c + step], None if seen is None else seen[c:c + step])
-                     for c in range(0, live.size, step)]
-    run = lambda job: job[1].mean_precision(w[job[2]], npos[job[2], job[0]], job[3])  # noqa: E731
+            jobs += [(k, cls, live[c:c + step]) for c in range(0, live.size, step)]
+
+    def run(job):
+        k, cls, rows = job
+        wb = w[rows]
+        # Each block does its own part of the matrix product, so that it too runs on the
+        # pool's threads (BLAS is held to one thread on the results-file path).
+        return cls.mean_precision(wb, npos[rows, k], cls.seen_by_product(wb) if cls.upto is not None else None)
+
     if threads > 1 and len(jobs) > 1:
         with ThreadPoolExecutor(threads) as pool:
             results = list(pool.map(run, jobs))
     else:
         results = [run(job) for job in jobs]
     total, count = np.zeros(n_boot), np.zeros(n_boot)
-    for (_, _, rows, _), r in zip(jobs, results):
+    for (_, _, rows), r in zip(jobs, results):
         total[rows] += r
         count[rows] += 1
     return np.where(count > 0, total / np.maximum(count, 1), -1.0)
@@ -180,8 +184,10 @@ class _Class:
             bits = pr.view(np.int64)[:, ::-1]
             np.maximum.accumulate(bits, axis=1, out=bits)
             tp += off
-            first = np.take(reached, tp)
-            first[:, 1:] -= first[:, :-1].copy()
+            reached_at = np.take(reached, tp)  # reached(tp) at each true positive
+            first = np.empty_like(reached_at)
+            first[:, 0] = reached_at[:, 0]
+            np.subtract(reached_at[:, 1:], reached_at[:, :-1], out=first[:, 1:])
             total += np.einsum("ij,ij->i", pr, first)
         return total / (len(IOU_THRS) * len(REC_THRS))
 

@@ -1,6 +1,8 @@
 """coco_evaluate: the COCO summary, per-class AP and a bootstrap interval of mAP."""
 from __future__ import annotations
 
+from concurrent.futures import ThreadPoolExecutor
+
 from speedbench.errors import UserError
 from speedbench.evaluate.bootstrap import draw_weights, percentile_interval, resampled_maps
 from speedbench.evaluate.cocoeval import (Detections, GroundTruth, Matching, accumulate,
@@ -32,19 +34,29 @@ def coco_evaluate(gt, dets, bootstrap: int = 1000, seed: int = 0, confidence: fl
     ground = gt if isinstance(gt, GroundTruth) else GroundTruth(getattr(gt, "coco", gt))
     dt = dets if isinstance(dets, Detections) else parse_detections(dets, ground)
     matching = Matching(ground, dt)
-    precision, recall = accumulate(matching, len(ground.cat_ids))
-    out = summarize(precision, recall)
-    names = _unique_names(ground)
-    out["per_class"] = per_class_ap(precision, names)
-    out["per_class_gt"] = {n: int(c) for n, c in zip(names, matching.n_pos[:, 0])}
-    out["n_images"] = ground.n_images
-    out["n_detections"] = len(dt.score)
-    out["map_ci95"] = None
-    if bootstrap and out["map"] > -1 and ground.n_images:
-        maps = resampled_maps(matching, draw_weights(ground.n_images, bootstrap, seed), threads)
-        out["map_ci95"] = percentile_interval(maps, confidence)
+    with ThreadPoolExecutor(1) as side:
+        # With threads to spare, the resamples start at once and the summary is worked out
+        # beside them (the resamples need only the matching, not the summary).
+        early = None
+        if threads > 1 and bootstrap and ground.n_images and matching.n_pos[:, 0].any():
+            early = side.submit(_resampled, matching, ground.n_images, bootstrap, seed, threads)
+        precision, recall = accumulate(matching, len(ground.cat_ids))
+        out = summarize(precision, recall)
+        names = _unique_names(ground)
+        out["per_class"] = per_class_ap(precision, names)
+        out["per_class_gt"] = {n: int(c) for n, c in zip(names, matching.n_pos[:, 0])}
+        out["n_images"] = ground.n_images
+        out["n_detections"] = len(dt.score)
+        out["map_ci95"] = None
+        if bootstrap and out["map"] > -1 and ground.n_images:
+            maps = early.result() if early else _resampled(matching, ground.n_images, bootstrap, seed, threads)
+            out["map_ci95"] = percentile_interval(maps, confidence)
     out["bootstrap"] = {"resamples": bootstrap, "seed": seed, "confidence": confidence}
     return out
+
+
+def _resampled(matching, n_images, bootstrap, seed, threads):
+    return resampled_maps(matching, draw_weights(n_images, bootstrap, seed), threads)
 
 
 def _unique_names(ground: GroundTruth) -> list[str]:

@@ -31,7 +31,9 @@ def load_detections(path, gt) -> list[dict]:
 
 def read_detections(path, gt) -> Detections:
     """Read and validate a COCO results JSON file straight into arrays (parsed once)."""
-    return parse_detections(read_json(path, "detections file", allow_nonfinite=True), _ground(gt), source=str(Path(path)))
+    # parse_detections checks every value, so the fast parser may skip its scans.
+    data = read_json(path, "detections file", allow_nonfinite=True, values_checked=True)
+    return parse_detections(data, _ground(gt), source=str(Path(path)))
 
 
 def _ground(gt) -> GroundTruth:
@@ -63,8 +65,10 @@ def parse_detections(dets, gt: GroundTruth, source: str = "detections") -> Detec
         raise  # pragma: no cover - _raise_first_bad always raises
     checks = [
         (~np.isfinite(img_f) | (img_f != np.round(img_f)), "image_id must be an integer"),
+        (np.abs(img_f) >= 2 ** 63, "image_id out of range (beyond 64 bits)"),
         (~np.isin(img_f, gt.image_ids), "image_id is not an image of the ground truth"),
         (~np.isfinite(cat_f) | (cat_f != np.round(cat_f)), "category_id must be an integer"),
+        (np.abs(cat_f) >= 2 ** 63, "category_id out of range (beyond 64 bits)"),
         (~np.isin(cat_f, gt.cat_ids), "category_id is not a category of the ground truth"),
         (~np.isfinite(box).all(axis=1), "bbox values must be finite numbers"),
         ((box[:, 2] < 0) | (box[:, 3] < 0), "bbox has negative width or height"),
