@@ -15,7 +15,7 @@ from speedbench.schema import point_id
 EVIL = "<script>alert(1)</script>det"
 
 
-def _write_run(path, untrained=False, evil=EVIL):
+def _write_run(path, untrained=False, evil=EVIL, host="box", latency=True):
     from speedbench.sweep import RunDir
 
     rng = np.random.default_rng(0)
@@ -24,7 +24,7 @@ def _write_run(path, untrained=False, evil=EVIL):
     from speedbench.measure.backends.ort import TIMED_REGION
 
     # what a sweep records in meta.json (sweep.pipeline.run_facts), here written by hand
-    rd = RunDir.create(path, "[run]\nname = 'unit'\n", {"profile_name": "unit", "host": "box", "env": env,
+    rd = RunDir.create(path, "[run]\nname = 'unit'\n", {"profile_name": "unit", "host": host, "env": env,
                                                        "timed_regions": {"ort": TIMED_REGION}})
     for model, fam, props in ((evil, "one-stage", 0), ("twostage", "two-stage", 100)):
         for size in (256, 320):
@@ -41,6 +41,8 @@ def _write_run(path, untrained=False, evil=EVIL):
                            stage_backbone_ms=base * 0.6, stage_head_ms=base * 0.3, stage_unattributed_ms=base * 0.05,
                            rss_imports_mib=100.0, rss_loaded_mib=150.0, rss_peak_mib=200.0 + size / 2,
                            map=m, map_ci_lo=m - 0.03, map_ci_hi=m + 0.03, untrained=untrained)
+                if not latency:  # a point stored without its latency figures
+                    row = {k: v for k, v in row.items() if not k.startswith("lat_")}
                 rd.write_point(row, s.tolist())
     cfg = dict(model="broken", weights="none", size=320, proposals=0, backend="ort", intra_threads=1,
                inter_threads=1, exec_mode="sequential", opt_level="all", affinity=0, concurrency=1)
@@ -92,6 +94,17 @@ def test_budget_answer_and_untrained_caveats(tmp_path):
     text = out.read_text()
     assert "Best within p50 &lt;= 10 ms" in text and "ranked by latency only" in text
     assert "Untrained weights" in text and "Accuracy unavailable" in text
+
+
+def test_a_host_without_latency_figures_gets_a_line_not_a_traceback(tmp_path):
+    # Found by a helper: a host whose successful points all lack the ranked latency has an
+    # empty frontier, and the report's answer section took the fastest of nothing.
+    good = _write_run(tmp_path / "a")
+    bare = _write_run(tmp_path / "b", host="edge", latency=False)
+    text = render_markdown([good, bare], tmp_path / "two.md").read_text()
+    assert "Host edge: no successful configuration recorded" in text
+    text = render_markdown(bare, tmp_path / "one.md").read_text()
+    assert "nothing to rank" in text
 
 
 def test_markdown_from_a_bare_frame(run_dir, tmp_path):

@@ -63,6 +63,8 @@ def _answer(d: ReportData) -> list:
                       "(add --price-table for the cheapest host per million frames).")]
     f = d.front
     front = f[f["frontier_status"] == "frontier"]
+    if not len(front):  # every successful point lacks the latency column ranked on
+        return [("warn", f"No successful configuration recorded {col}; there is nothing to rank.")]
     if d.trained:
         best = front.loc[front["map"].idxmax()] if front["map"].notna().any() else front.iloc[0]
         fast = front.loc[front[col].idxmin()]
@@ -79,6 +81,8 @@ def _answer(d: ReportData) -> list:
 def _host_summary(f, col, trained) -> str:
     """One host's answer from that host's own frontier."""
     front = f[f["frontier_status"] == "frontier"]
+    if not len(front):  # the host's successful points all lack the latency column ranked on
+        return f"no successful configuration recorded {col}; nothing to rank"
     fast = front.loc[front[col].idxmin()]
     text = f"fastest on its frontier {fast['config_label']} ({fast[col]:.2f} ms"
     if trained and front["map"].notna().any():
