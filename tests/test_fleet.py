@@ -77,14 +77,21 @@ def _measuring_child(pid):
     return None
 
 
-def _kill_mid_point(client, label, run_dir, pid=None, deadline_s=240, min_stored=1):
+def _kill_mid_point(client, label, run_dir, pid=None, deadline_s=240, min_stored=1, sweep=None):
     """Wait until `label` stored min_stored point(s) and is measuring the next, then SIGKILL its worker.
 
+    sweep: (thread, errors) of the fleet sweep under test; if it ends first, its error (or the
+    fact that it finished with no point left to interrupt) is the failure, not a timeout.
     Returns (killed pid, point id of the point in flight, points stored before the kill)."""
     pid = pid or _worker_pid(client, label)
     deadline = time.monotonic() + deadline_s
     while True:
-        assert time.monotonic() < deadline, f"host {label} made no progress"
+        if sweep is not None and not sweep[0].is_alive():
+            stored = stored_points(run_dir / "points.sqlite")
+            assert False, f"the fleet sweep ended before host {label} could be interrupted " \
+                          f"({stored} point(s) stored): {sweep[1] or 'no error'}"
+        assert time.monotonic() < deadline, \
+            f"host {label} made no progress ({stored_points(run_dir / 'points.sqlite')} point(s) stored)"
         stored = stored_points(run_dir / "points.sqlite")
         child = _measuring_child(pid) if stored >= min_stored else None
         if child is not None:
@@ -145,7 +152,7 @@ def test_fleet_runs_each_host_plan_and_survives_a_killed_worker(cluster, tmp_pat
 
     thread = threading.Thread(target=go)
     thread.start()
-    killed_pid, in_flight, _ = _kill_mid_point(client, "b", out / "b")
+    killed_pid, in_flight, _ = _kill_mid_point(client, "b", out / "b", sweep=(thread, errors))
     kill_time = time.time()
     thread.join(150)
     assert not thread.is_alive() and not errors, errors
@@ -294,7 +301,7 @@ def test_a_point_that_keeps_killing_its_worker_is_recorded_failed(cluster, tmp_p
                                                         out_dir=out, hosts="b", quiet=True,
                                                         stream=open(os.devnull, "w")))
         thread.start()
-        _, in_flight, _ = _kill_mid_point(client, "b", out / "b", min_stored=0)
+        _, in_flight, _ = _kill_mid_point(client, "b", out / "b", min_stored=0, sweep=(thread, errors))
         thread.join(150)
     finally:
         client.run_on_scheduler(set_allowed, n=old)
