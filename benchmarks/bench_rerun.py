@@ -12,6 +12,9 @@ exported graphs are cached after the first run, the latency is measured anew):
       (and the other way round);
   (b) `speedbench compare run1 run2`: exit code and verdict counts (an A/A pair: exit 0 expected);
   (c) the median relative half-width of the p50 intervals, so coverage is never bought with width.
+Where the runs recorded the host reference (ONNX Runtime points, measure/reference.py), (a) and
+(c) again for p50 in reference units (each invocation's samples divided by its reference time,
+the same hierarchical interval), and (b) with `compare --host-adjusted`.
 Then, with the synthetic backend and a between-process effect, a pair whose second run is
 15 % slower must be called slower (exit 1). Every figure is printed with the wall time and the
 host's load average: on a shared or busy host, say so next to the figures.
@@ -96,10 +99,45 @@ def rerun_figures(run1: Path, run2: Path) -> dict:
             and a["between_cov"].notna().any() else float("nan")}
 
 
+def reference_figures(run1: Path, run2: Path) -> dict:
+    """(a) and (c) for p50 in reference units: samples / their invocation's host reference time."""
+    from speedbench.analyse.hostref import readings
+    from speedbench.measure.invocations import Replicated
+    from speedbench.sweep import load_run, load_samples
+
+    est = []
+    for run in (run1, run2):
+        pts, smp = load_run(run), load_samples(run)
+        out = {}
+        for _, row in pts[pts.status == "ok"].iterrows():
+            ref = readings(row.get("host_ref_raw"))
+            s = smp[smp.point_id == row.point_id]
+            if not ref or not set(s.invocation) <= set(ref):
+                continue
+            m = Replicated(s.ms.to_numpy() / s.invocation.map(ref).to_numpy(), s.invocation.to_numpy())
+            p50, lo, hi = m.percentile(50), *m.ci(50)
+            out[row.point_id] = (p50, lo, hi)
+        est.append(out)
+    common = [p for p in est[0] if p in est[1]]
+    if not common:
+        return {"ref_points": 0}
+    a, b = (np.array([e[p] for p in common]) for e in est)
+    holds = ((a[:, 1] <= b[:, 0]) & (b[:, 0] <= a[:, 2])).mean()
+    half = np.concatenate([(x[:, 2] - x[:, 1]) / 2 / x[:, 0] for x in (a, b)])
+    return {"ref_points": len(common), "ref_holds_1_in_2": float(holds), "ref_median_halfwidth": float(np.median(half))}
+
+
 def compare_figures(run1: Path, run2: Path, cwd: Path) -> dict:
     code, out, _ = _speedbench(["compare", str(run1), str(run2), "--format", "json"], cwd)
     doc = json.loads(out[out.index("{"):]) if "{" in out else {}
-    return {"exit": code, "counts": doc.get("counts", {})}
+    fig = {"exit": code, "counts": doc.get("counts", {})}
+    code, out, _ = _speedbench(["compare", str(run1), str(run2), "--format", "json", "--host-adjusted"], cwd)
+    if "{" in out:
+        doc = json.loads(out[out.index("{"):])
+        verdicts = [p.get("adj_verdict") or "n/a" for p in doc.get("points", [])]
+        fig.update(adj_exit=code, adj_counts={v: verdicts.count(v) for v in sorted(set(verdicts))},
+                   adj_by=(doc.get("host_speed") or {}).get("reference", {}).get("status"))
+    return fig
 
 
 def pairs(profile: Path, n: int, work: Path, chained: bool = False) -> list[dict]:
@@ -116,8 +154,8 @@ def pairs(profile: Path, n: int, work: Path, chained: bool = False) -> list[dict
 
     for k in range(n):
         (r1, w1), (r2, w2) = (run(k), run(k + 1)) if chained else (run(2 * k), run(2 * k + 1))
-        fig = {**rerun_figures(r1, r2), **compare_figures(r1, r2, work), "wall_s": (w1, w2),
-               "load": os.getloadavg()[0]}
+        fig = {**rerun_figures(r1, r2), **reference_figures(r1, r2), **compare_figures(r1, r2, work),
+               "wall_s": (w1, w2), "load": os.getloadavg()[0]}
         out.append(fig)
         print(f"  pair {k + 1}: (a) run-1 interval holds run-2 p50 in {fig['holds_1_in_2']:.0%} of "
               f"{fig['points']} points (2 in 1: {fig['holds_2_in_1']:.0%}); (c) median half-width "
@@ -125,6 +163,10 @@ def pairs(profile: Path, n: int, work: Path, chained: bool = False) -> list[dict
               f"median |log ratio| {fig['median_abs_log_ratio']:.3f}; R = {fig['invocations']}, median between_cov "
               f"{fig['median_between_cov']:.1%}; (b) compare exit {fig['exit']} {fig['counts']}; "
               f"wall {w1:.0f} s + {w2:.0f} s; load average {fig['load']:.1f}", flush=True)
+        if fig.get("ref_points"):
+            print(f"    in reference units: (a) {fig['ref_holds_1_in_2']:.0%} of {fig['ref_points']} points; "
+                  f"(c) median half-width {fig['ref_median_halfwidth']:.1%}; (b) compare --host-adjusted exit "
+                  f"{fig.get('adj_exit')} {fig.get('adj_counts')} (reference {fig.get('adj_by')})", flush=True)
     return out
 
 

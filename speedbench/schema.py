@@ -68,7 +68,7 @@ LATENCY_STATS = tuple(f"p{p}" for p in LATENCY_PERCENTILES)
 TEXT_COLUMNS = frozenset({"model", "weights", "backend", "exec_mode", "opt_level", "precision", "spin_wait",
                           "point_id", "host", "family", "status", "reason", "stage_method",
                           "calibration_fingerprint", "ci_scope", "invocation_errors",
-                          "probe_raw", "env", "env_python", "env_fingerprint"})
+                          "probe_raw", "host_ref_raw", "env", "env_python", "env_fingerprint"})
 BOOL_COLUMNS = frozenset({"noisy", "untrained", "between_dominates"})
 
 # Groups of result columns, named here once; RESULT_COLUMNS below lists them in table order.
@@ -121,6 +121,12 @@ INTERLEAVED_COLUMNS = ("env_python", "env_fingerprint")
 # ({"start": {"hash_ms": [...], "copy_ms": [...], "ms": m, "version": v}, "end": {...}}).
 PROBE_COLUMNS = ("probe_start_ms", "probe_end_ms", "probe_raw")
 
+# Host reference (speedbench/measure/reference.py): a fixed small graph run by the point's own
+# onnxruntime session settings after every timed run, outside the timed region.
+#   host_ref_ms     median over the invocations of each invocation's median reference time
+#   host_ref_raw    JSON {"version": v, "ms": {invocation index: median ms}}
+REFERENCE_COLUMNS = ("host_ref_ms", "host_ref_raw")
+
 # Other columns of the points table (see README.md for their meaning).
 RESULT_COLUMNS = (
     "point_id", "host", "family", "status", "reason",
@@ -154,6 +160,7 @@ RESULT_COLUMNS = (
     "map", "map50", "map75", "map_small", "map_medium", "map_large", "mar_100",
     "map_ci_lo", "map_ci_hi", "untrained",
     *PROBE_COLUMNS,
+    *REFERENCE_COLUMNS,
     # int8 rows: accuracy change vs the fp32 graph of the same configuration (paired bootstrap
     # over the same held-out images) and detection agreement with it
     "map_change", "map_change_ci_lo", "map_change_ci_hi",

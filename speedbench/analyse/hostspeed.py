@@ -97,6 +97,21 @@ def host_lines(host: dict, threshold: float, base_name: str, new_name: str) -> l
     """What the report says about the host's speed between the runs (always something)."""
     if not host:
         return []
+    ref = host.get("reference") or {}
+    if ref.get("status") == "used":
+        r = ref.get("ratio", math.nan)
+        moved = (f"; its time moved by {(r - 1) * 100:+.1f}% between the runs" if np.isfinite(r) else "")
+        ref_line = [f"Host reference: {ref['points']} point(s) adjusted by a fixed graph timed in the same "
+                    f"worker processes ({ref['why']}){moved}. The adjusted ratio divides the host's phase "
+                    f"out of a rerun of one stack; the probe adjusts the other points"]
+    elif ref.get("status", "not recorded") != "not recorded":
+        ref_line = [f"Host reference {ref['status']}; the probe adjusts instead"]
+    else:
+        ref_line = []
+    return ref_line + _probe_lines(host, threshold, base_name, new_name)
+
+
+def _probe_lines(host: dict, threshold: float, base_name: str, new_name: str) -> list[str]:
     if host.get("status") != "recorded":
         return [f"Host speed probe: {host.get('status')}; a change of the machine's own speed between "
                 f"the runs cannot be told from a change of the software"]
@@ -108,5 +123,5 @@ def host_lines(host: dict, threshold: float, base_name: str, new_name: str) -> l
     if not host["exceeds"]:
         return [line + f"; within the {threshold:.0%} threshold"]
     return [line, f"The host's speed changed by more than the {threshold:.0%} threshold: verdicts may be the "
-                  f"machine's, not the software's. Probe-adjusted ratios and verdicts are shown next to the "
+                  f"machine's, not the software's. Host-adjusted ratios and verdicts are shown next to the "
                   f"raw ones (the gate uses the {host.get('gate', 'raw')} verdict)."]

@@ -20,7 +20,8 @@ from speedbench.analyse.common import as_float as _f
 from speedbench.analyse.common import require_columns, with_ids
 from speedbench.analyse.paired import paired_diff
 from speedbench.analyse.regression_result import Comparison, verdict_table
-from speedbench.analyse.hostspeed import adjust, host_status, probe_values
+from speedbench.analyse import hostref
+from speedbench.analyse.hostspeed import adjust, host_status, probe_values, verdict as verdict_of
 from speedbench.analyse.run_changes import busy_machine_notes, env_diff, thread_change_notes
 from speedbench.analyse.runs import Run, as_run
 from speedbench.errors import UserError
@@ -113,17 +114,22 @@ def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: 
                            threshold, confidence, seed, n_boot, fail_on_drift, gate_single_process)
             for pid in common]
     host = host_change(b, n, confidence, seed, n_boot, threshold)
-    host["gate"] = "probe-adjusted" if host_adjusted else "raw"
+    host["reference"] = _reference_adjust(b, n, bi, ni, rows, threshold, confidence, seed, n_boot)
+    by_reference = host["reference"]["status"] == "used"
+    host["gate"] = ("host-adjusted" if by_reference else "probe-adjusted") if host_adjusted else "raw"
     if host.get("status") == "recorded":
         for row in rows:
-            if row["method"]:
-                row.update(adjust(row, host, threshold))
-                if host_adjusted:
-                    row["regression"] = ((row["adj_verdict"] == "slower" and row["gated"])
-                                         or row["accuracy"] == "lower"
-                                         or (fail_on_drift and row["drift"] == "changed"))
-    elif host_adjusted:
-        raise UserError(f"--host-adjusted: {host['status']}; nothing to adjust by")
+            if row["method"] and "adj_by" not in row:
+                row.update(adjust(row, host, threshold), adj_by="probe")
+    adjusted = [row for row in rows if "adj_by" in row]
+    if host_adjusted and not adjusted:
+        raise UserError(f"--host-adjusted: host probe {host['status']}; host reference "
+                        f"{host['reference']['status']}; nothing to adjust by")
+    if host_adjusted:
+        for row in adjusted:
+            row["regression"] = ((row["adj_verdict"] == "slower" and row["gated"])
+                                 or row["accuracy"] == "lower"
+                                 or (fail_on_drift and row["drift"] == "changed"))
     points = verdict_table(rows)
     notes = thread_change_notes(bi, ni, unmatched)
     if not common:
@@ -159,8 +165,37 @@ def host_change(b: Run, n: Run, confidence=0.95, seed=0, n_boot=N_BOOT, threshol
                         "n_base": len(vb), "n_new": len(vn)}, threshold)
 
 
-def _samples_by_id(run: Run) -> dict:
-    """point_id -> list of sample arrays, one per invocation (one array for runs without `invocation`)."""
+def _reference_adjust(b: Run, n: Run, bi, ni, rows, threshold, confidence, seed, n_boot) -> dict:
+    """Host-adjusted ratios from the host reference (hostref.py) on the rows that allow it."""
+    if "host_ref_raw" not in bi.columns or "host_ref_raw" not in ni.columns:
+        return {"status": "not recorded"}
+    ok, why = hostref.usable(b.meta, n.meta)
+    if not ok:
+        return {"status": "not used: " + why}
+    gb, gn = _samples_by_id(b, with_index=True), _samples_by_id(n, with_index=True)
+    used = 0
+    for row in rows:
+        pid = row["point_id"]
+        if row["method"] != "hierarchical bootstrap":
+            continue
+        xb = hostref.normalised(gb.get(pid), bi.at[pid, "host_ref_raw"])
+        xn = hostref.normalised(gn.get(pid), ni.at[pid, "host_ref_raw"])
+        if xb is None or xn is None:
+            continue
+        rng = np.random.default_rng([seed, zlib.crc32(f"host reference {pid}".encode())])
+        ratio, lo, hi = hierarchical_ratio(xb, xn, confidence, n_boot, rng)
+        row.update(adj_ratio=ratio, adj_ci_lo=lo, adj_ci_hi=hi, adj_verdict=verdict_of(lo, hi, threshold),
+                   adj_by="reference")
+        used += 1
+    if not used:
+        return {"status": "not recorded"}
+    return {"status": "used", "why": why, "points": used,
+            "ratio": hostref.reference_ratio(b.points, n.points)}
+
+
+def _samples_by_id(run: Run, with_index: bool = False) -> dict:
+    """point_id -> list of sample arrays, one per invocation (one array for runs without `invocation`);
+    with_index: list of (invocation index, samples)."""
     s = run.samples
     if s is None or not len(s):
         return {}
@@ -169,9 +204,11 @@ def _samples_by_id(run: Run) -> dict:
     out = {}
     for pid, g in s.groupby("point_id", sort=False):
         if "invocation" in g.columns:
-            out[pid] = [h["ms"].to_numpy(dtype=float) for _, h in g.groupby("invocation", sort=True)]
+            out[pid] = [(int(k), h["ms"].to_numpy(dtype=float)) for k, h in g.groupby("invocation", sort=True)]
         else:
-            out[pid] = [g["ms"].to_numpy(dtype=float)]
+            out[pid] = [(0, g["ms"].to_numpy(dtype=float))]
+        if not with_index:
+            out[pid] = [x for _, x in out[pid]]
     return out
 
 

@@ -53,10 +53,17 @@ class Comparison:
     def show_adjusted(self) -> bool:
         """Probe-adjusted columns appear when the host moved beyond the threshold, or when they
         would change a verdict: never a silent difference between the two."""
-        if self.host.get("status") != "recorded" or "adj_verdict" not in self.points.columns:
+        if "adj_verdict" not in self.points.columns:
             return False
-        ok = self.points["adj_verdict"] != "n/a"
+        if self.host.get("status") != "recorded" and not self.by_reference:
+            return False
+        ok = self.points["adj_verdict"].isin(["slower", "faster", "unchanged", "unknown"])
         return bool(self.host.get("exceeds")) or bool((self.points["adj_verdict"] != self.points["verdict"])[ok].any())
+
+    @property
+    def by_reference(self) -> bool:
+        """Some points were adjusted by the host reference (analyse/hostref.py), not the probe."""
+        return (self.host.get("reference") or {}).get("status") == "used"
 
     def _table(self) -> list[list[str]]:
         rows = []
@@ -77,7 +84,9 @@ class Comparison:
     def header(self) -> list[str]:
         if not self.show_adjusted():
             return list(self.HEADER)
-        return self.HEADER[:5] + self.ADJUSTED_HEADER + self.HEADER[5:]
+        adjusted = (["host-adjusted ratio [CI]", "adjusted verdict"] if self.by_reference
+                    else self.ADJUSTED_HEADER)
+        return self.HEADER[:5] + adjusted + self.HEADER[5:]
 
     def _host_lines(self) -> list[str]:
         return host_lines(self.host, self.threshold, self.base_name, self.new_name)

@@ -43,9 +43,9 @@ def add_parser(subparsers):
                         "(by default reported, not gated: one process cannot show how far a rerun moves); "
                         "BASE_RUN NEW_RUN only")
     p.add_argument("--host-adjusted", action="store_true",
-                   help="gate on the latency verdict adjusted by the host speed probe (the machine's own "
-                        "speed change between the runs) instead of the raw one; both are always shown "
-                        "when they differ")
+                   help="gate on the latency verdict adjusted for the machine's own speed instead of the "
+                        "raw one: by the host reference timed beside each point (same onnxruntime on both "
+                        "sides), else by the host speed probe; both are always shown when they differ")
     g = p.add_argument_group("interleaved A/B run (--envs)")
     g.add_argument("--envs", nargs=2, metavar=("OLD_PYTHON", "NEW_PYTHON"),
                    help="the two environments' interpreters (e.g. two venvs' bin/python), each with the same "

@@ -140,6 +140,7 @@ class Policy:
     memory_every: int = 5       # sample process RSS every N timed runs (outside the timed region)
     subgraph_check: bool = False  # also time each stage's sub-graph alone (measure.subgraphs); costs time
     subgraph_reps: int = 20
+    host_reference: bool = True   # ONNX Runtime points: time measure/reference.py's graph between runs
 
     def to_dict(self) -> dict:
         return asdict(self)

@@ -54,6 +54,7 @@ class PointResult:
         for col in MEMORY_COLUMNS:
             row[col] = float(self.memory.get(col, NAN))
         row.update(probe_columns(self.extra.get("probe")))
+        row.update(reference_columns(self.extra))
         row["invocations_failed"] = len(self.failed_invocations)
         row["invocation_errors"] = "; ".join(self.failed_invocations)
         return row
@@ -101,6 +102,21 @@ def probe_columns(probe: dict | None) -> dict:
         out[f"probe_{phase}_ms"] = float(ms) if isinstance(ms, (int, float)) else NAN
     out["probe_raw"] = json.dumps(probe, sort_keys=True) if probe else ""
     return out
+def reference_columns(extra: dict) -> dict:
+    """schema.REFERENCE_COLUMNS from one invocation's reference record or a point's per-invocation map."""
+    per = extra.get("reference_by_invocation")
+    if per is None:
+        one = extra.get("reference")
+        per = {str(int(extra.get("invocation", 0))): one} if isinstance(one, dict) else {}
+    ms = {k: float(r["ms"]) for k, r in per.items()
+          if isinstance(r, dict) and isinstance(r.get("ms"), (int, float)) and r["ms"] > 0}
+    if not ms:
+        return {"host_ref_ms": NAN, "host_ref_raw": ""}
+    version = next(iter(per.values())).get("version")
+    return {"host_ref_ms": float(np.median(list(ms.values()))),
+            "host_ref_raw": json.dumps({"version": version, "ms": ms}, sort_keys=True)}
+
+
 def combine_invocations(results: list[PointResult]) -> PointResult:
     """One point's result from its R invocations (each a PointResult whose samples carry its index).
 
@@ -135,6 +151,8 @@ def combine_invocations(results: list[PointResult]) -> PointResult:
         memory["rss_peak_mib"] = float(max(peaks))
     extra = dict(ok[0].extra)
     extra["invocation_p50_ms"] = [float(np.median(r.measurement.samples_ms)) for r in ok]
+    extra["reference_by_invocation"] = {str(_index(r, i)): r.extra["reference"] for i, r in enumerate(ok)
+                                        if isinstance(r.extra.get("reference"), dict)}
     extra["seconds"] = float(sum(r.extra.get("seconds", 0.0) for r in ok))
     extra["stop"] = ",".join(sorted({str(r.extra["stop"]) for r in ok if "stop" in r.extra}))
     extra["warmup_runs"] = int(np.median([r.extra.get("warmup_runs", 0) for r in ok]))

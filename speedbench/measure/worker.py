@@ -74,8 +74,12 @@ def run_worker(spec: dict) -> dict:
 
     warm = timing.warm_up(runner, inputs, policy)
     tracker = memory.PeakTracker(policy.memory_every)
-    measurement, how = timing.timed_runs(runner, inputs, policy, between=tracker)
+    reference = _reference(point, policy)
+    between = tracker if reference is None else (lambda i: (tracker(i), reference.tick()))
+    measurement, how = timing.timed_runs(runner, inputs, policy, between=between)
     mem.update(tracker.result())
+    if reference is not None:
+        extra["reference"] = reference.summary()
 
     result = PointResult(point=point, measurement=measurement, memory=mem, extra=extra)
     extra.update(how)
@@ -102,6 +106,15 @@ def run_worker(spec: dict) -> dict:
     probe["end"] = run_probe()
     extra["probe"] = probe
     return result.to_dict()
+
+
+def _reference(point, policy):
+    """The host reference timer for an ONNX Runtime point (measure/reference.py), or None."""
+    if not policy.host_reference or point.backend not in ("ort", "adapted"):
+        return None
+    from speedbench.measure.reference import ReferenceTimer
+
+    return ReferenceTimer()
 
 
 THREAD_VARS = ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS", "VECLIB_MAXIMUM_THREADS",

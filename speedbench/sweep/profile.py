@@ -71,6 +71,9 @@ profiles/ explain the keys they use in comments)::
     stages      = true            # also run a few profiled passes for per-stage times
     subgraphs   = false           # also time each stage's sub-graph alone (an independent check
                                   # of the stage split, no profiler; costs about 2x the point's time)
+    host_reference = true         # ONNX Runtime points: time a fixed small graph after every timed
+                                  # run (outside the timed region) so compare can divide the host's
+                                  # own speed out of a rerun (speedbench/measure/reference.py)
 
     [quantisation]                # how "int8" graphs are made (speedbench.export.quantise)
     method       = "minmax"       # activation ranges from calibration: "minmax", "entropy", "percentile"
@@ -293,7 +296,7 @@ def parse_profile(text: str, source: str = "<profile>") -> Profile:
 
     rep = c.table(doc.get("repetitions", {}), "repetitions",
                   {"warmup_min", "warmup_max", "min_reps", "max_reps", "max_seconds", "rel_ci", "stages",
-                   "invocations", "subgraphs"})
+                   "invocations", "subgraphs", "host_reference"})
     repetitions = {}
     invocations = c.int_(rep.get("invocations", 1), "repetitions.invocations", 1, 1000)
     if "warmup_min" in rep:
@@ -304,6 +307,8 @@ def parse_profile(text: str, source: str = "<profile>") -> Profile:
         repetitions["profile_stages"] = c.bool_(rep["stages"], "repetitions.stages")
     if "subgraphs" in rep:
         repetitions["subgraph_check"] = c.bool_(rep["subgraphs"], "repetitions.subgraphs")
+    if "host_reference" in rep:
+        repetitions["host_reference"] = c.bool_(rep["host_reference"], "repetitions.host_reference")
     if "min_reps" in rep:
         repetitions["min_reps"] = c.int_(rep["min_reps"], "repetitions.min_reps", 1, 1_000_000)
     if "max_reps" in rep:
