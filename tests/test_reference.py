@@ -129,6 +129,27 @@ def test_reference_is_not_used_across_onnxruntime_versions():
     assert "Host reference not used" in c.to_text()
 
 
+def test_a_reference_that_cannot_load_costs_the_point_nothing(tmp_path, monkeypatch):
+    # The reference only helps compare runs: a damaged install measures the point without it.
+    from speedbench.measure import reference, worker
+
+    monkeypatch.setattr(reference, "GRAPH", tmp_path / "missing.onnx")
+    extra = {}
+    assert worker._reference(Point(model="x", backend="ort", graph="g.onnx"), FAST, extra) is None
+    assert "missing.onnx" in extra["reference_error"]
+    assert worker._reference(Point(model="x", backend="ort", graph="g.onnx"),
+                             Policy(host_reference=False), extra := {}) is None and extra == {}
+
+
+def test_another_reference_version_is_not_compared():
+    base, new = _pair(host_new=1.15)
+    new.points["host_ref_raw"] = [r.replace(f'"version": {REFERENCE_VERSION}', '"version": 999')
+                                  for r in new.points["host_ref_raw"]]
+    c = compare(base, new)
+    assert c.host["reference"]["status"] == "not recorded"
+    assert "adj_by" not in c.points.columns or (c.points["adj_by"] != "reference").all()
+
+
 def test_readings_of_bad_cells_are_empty():
     assert hostref.readings("") == {} and hostref.readings("{not json") == {}
     assert hostref.readings(json.dumps({"ms": {"0": -1, "1": "x", "2": 1.5}})) == {2: 1.5}

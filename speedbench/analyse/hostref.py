@@ -30,6 +30,14 @@ def readings(raw) -> dict[int, float]:
         return {}
 
 
+def version(raw):
+    """The reference graph's version in a host_ref_raw cell (None when unreadable)."""
+    try:
+        return json.loads(raw).get("version") if isinstance(raw, str) and raw else None
+    except (ValueError, AttributeError):
+        return None
+
+
 def normalised(groups: list[tuple[int, np.ndarray]] | None, raw) -> list[np.ndarray] | None:
     """Each invocation's samples divided by its reference time, or None unless every one has a reading."""
     ref = readings(raw)

@@ -178,6 +178,8 @@ def _reference_adjust(b: Run, n: Run, bi, ni, rows, threshold, confidence, seed,
         pid = row["point_id"]
         if row["method"] != "hierarchical bootstrap":
             continue
+        if hostref.version(bi.at[pid, "host_ref_raw"]) != hostref.version(ni.at[pid, "host_ref_raw"]):
+            continue   # another reference graph: its times are not comparable
         xb = hostref.normalised(gb.get(pid), bi.at[pid, "host_ref_raw"])
         xn = hostref.normalised(gn.get(pid), ni.at[pid, "host_ref_raw"])
         if xb is None or xn is None:

@@ -74,7 +74,7 @@ def run_worker(spec: dict) -> dict:
 
     warm = timing.warm_up(runner, inputs, policy)
     tracker = memory.PeakTracker(policy.memory_every)
-    reference = _reference(point, policy)
+    reference = _reference(point, policy, extra)
     between = tracker if reference is None else (lambda i: (tracker(i), reference.tick()))
     measurement, how = timing.timed_runs(runner, inputs, policy, between=between)
     mem.update(tracker.result())
@@ -108,13 +108,20 @@ def run_worker(spec: dict) -> dict:
     return result.to_dict()
 
 
-def _reference(point, policy):
-    """The host reference timer for an ONNX Runtime point (measure/reference.py), or None."""
+def _reference(point, policy, extra: dict):
+    """The host reference timer for an ONNX Runtime point (measure/reference.py), or None.
+
+    The reference only helps compare two runs: if it cannot run (a damaged install), the point
+    is measured without it and the reason is kept in extra["reference_error"]."""
     if not policy.host_reference or point.backend not in ("ort", "adapted"):
         return None
     from speedbench.measure.reference import ReferenceTimer
 
-    return ReferenceTimer()
+    try:
+        return ReferenceTimer()
+    except Exception as exc:
+        extra["reference_error"] = f"{type(exc).__name__}: {' '.join(str(exc).split())}"[:300]
+        return None
 
 
 THREAD_VARS = ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS", "VECLIB_MAXIMUM_THREADS",
