@@ -101,9 +101,10 @@ def host_lines(host: dict, threshold: float, base_name: str, new_name: str) -> l
     if ref.get("status") == "used":
         r = ref.get("ratio", math.nan)
         moved = (f"; its time moved by {(r - 1) * 100:+.1f}% between the runs" if np.isfinite(r) else "")
+        rest = ref.get("of", ref["points"]) - ref["points"]
         ref_line = [f"Host reference: {ref['points']} point(s) adjusted by a fixed graph timed in the same "
                     f"worker processes ({ref['why']}){moved}. The adjusted ratio divides the host's phase "
-                    f"out of a rerun of one stack; the probe adjusts the other points"]
+                    f"out of a rerun of one stack" + (f"; the probe adjusts the other {rest}" if rest else "")]
     elif ref.get("status", "not recorded") != "not recorded":
         ref_line = [f"Host reference {ref['status']}; the probe adjusts instead"]
     else:

@@ -191,7 +191,7 @@ def _reference_adjust(b: Run, n: Run, bi, ni, rows, threshold, confidence, seed,
         used += 1
     if not used:
         return {"status": "not recorded"}
-    return {"status": "used", "why": why, "points": used,
+    return {"status": "used", "why": why, "points": used, "of": sum(1 for row in rows if row["method"]),
             "ratio": hostref.reference_ratio(b.points, n.points)}
 
 
