@@ -221,7 +221,11 @@ def pick(df: pd.DataFrame, budget_ms: float, latency: str = "p50", threads=None,
         if isinstance(noisy, (bool, np.bool_)) and noisy:
             cov = best.get("lat_cov")
             spread = f" (CoV {cov:.0%})" if cov is not None and pd.notna(cov) else ""
-            notes.append(f"the pick was flagged noisy{spread}: remeasure it on a quiet machine before relying on it")
+            # "A quiet machine" alone misleads on a VM whose own speed drifts with nothing else running
+            # (README, "What is left is the host"): there, more invocations help, longer ones do not.
+            notes.append(f"the pick was flagged noisy{spread}: its timed runs spread widely; remeasure with other "
+                         "work on the host stopped, or, if the host's own speed drifts, with more invocations "
+                         "([repetitions] invocations) rather than longer ones")
         k = best.get("concurrency", 1)
         if k == k and k is not None and int(k) > 1:
             notes.append(f"the pick is a throughput point: its {stat} is per request while {int(k)} workers run "
