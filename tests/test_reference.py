@@ -154,6 +154,6 @@ def test_readings_of_bad_cells_are_empty():
     assert hostref.readings("") == {} and hostref.readings("{not json") == {}
     assert hostref.readings(json.dumps({"ms": {"0": -1, "1": "x", "2": 1.5}})) == {2: 1.5}
     groups = [(0, np.ones(3)), (1, np.ones(3))]
-    assert hostref.normalised(groups, json.dumps({"ms": {"0": 2.0}})) is None   # invocation 1 unread
-    out = hostref.normalised(groups, json.dumps({"ms": {"0": 2.0, "1": 4.0}}))
+    assert hostref.normalised(groups, hostref.readings(json.dumps({"ms": {"0": 2.0}}))) is None  # 1 unread
+    out = hostref.normalised(groups, hostref.readings(json.dumps({"ms": {"0": 2.0, "1": 4.0}})))
     assert [float(g[0]) for g in out] == [0.5, 0.25]

@@ -18,29 +18,27 @@ import math
 import numpy as np
 
 
-def readings(raw) -> dict[int, float]:
-    """{invocation index: reference ms} from a host_ref_raw cell ({} when none was recorded)."""
+def parse(raw) -> tuple[object, dict[int, float]]:
+    """(reference version, {invocation index: reference ms}) from a host_ref_raw cell; (None, {}) when
+    none was recorded or the cell is unreadable."""
     if not isinstance(raw, str) or not raw:
-        return {}
+        return None, {}
     try:
         data = json.loads(raw)
-        return {int(k): float(v) for k, v in (data.get("ms") or {}).items()
-                if isinstance(v, (int, float)) and math.isfinite(v) and v > 0}
+        return data.get("version"), {int(k): float(v) for k, v in (data.get("ms") or {}).items()
+                                     if isinstance(v, (int, float)) and math.isfinite(v) and v > 0}
     except (ValueError, TypeError, AttributeError):
-        return {}
+        return None, {}
 
 
-def version(raw):
-    """The reference graph's version in a host_ref_raw cell (None when unreadable)."""
-    try:
-        return json.loads(raw).get("version") if isinstance(raw, str) and raw else None
-    except (ValueError, AttributeError):
-        return None
+def readings(raw) -> dict[int, float]:
+    """{invocation index: reference ms} from a host_ref_raw cell ({} when none was recorded)."""
+    return parse(raw)[1]
 
 
-def normalised(groups: list[tuple[int, np.ndarray]] | None, raw) -> list[np.ndarray] | None:
-    """Each invocation's samples divided by its reference time, or None unless every one has a reading."""
-    ref = readings(raw)
+def normalised(groups: list[tuple[int, np.ndarray]] | None, ref: dict[int, float]) -> list[np.ndarray] | None:
+    """Each invocation's samples divided by its reference time (ref: readings), or None unless every
+    invocation has a reading."""
     if not groups or not ref or any(k not in ref for k, _ in groups):
         return None
     return [g / ref[k] for k, g in groups]

@@ -109,12 +109,14 @@ def compare(base, new, threshold: float = 0.05, confidence: float = 0.95, seed: 
         [("base only", p, bi.at[p, "label"]) for p in bi.index if p not in ni.index]
         + [("new only", p, ni.at[p, "label"]) for p in ni.index if p not in bi.index],
         columns=["side", "point_id", "label"])
-    sb, sn = _samples_by_id(b), _samples_by_id(n)
+    # Grouped once; the raw ratio reads the arrays, the host reference also the invocation index.
+    gb, gn = _samples_by_id(b), _samples_by_id(n)
+    sb, sn = ({pid: [x for _, x in g] for pid, g in groups.items()} for groups in (gb, gn))
     rows = [_compare_point(pid, bi.loc[pid], ni.loc[pid], sb.get(pid), sn.get(pid),
                            threshold, confidence, seed, n_boot, fail_on_drift, gate_single_process)
             for pid in common]
     host = host_change(b, n, confidence, seed, n_boot, threshold)
-    host["reference"] = _reference_adjust(b, n, bi, ni, rows, threshold, confidence, seed, n_boot)
+    host["reference"] = _reference_adjust(b, n, bi, ni, gb, gn, rows, threshold, confidence, seed, n_boot)
     by_reference = host["reference"]["status"] == "used"
     host["gate"] = ("host-adjusted" if by_reference else "probe-adjusted") if host_adjusted else "raw"
     if host.get("status") == "recorded":
@@ -165,23 +167,24 @@ def host_change(b: Run, n: Run, confidence=0.95, seed=0, n_boot=N_BOOT, threshol
                         "n_base": len(vb), "n_new": len(vn)}, threshold)
 
 
-def _reference_adjust(b: Run, n: Run, bi, ni, rows, threshold, confidence, seed, n_boot) -> dict:
-    """Host-adjusted ratios from the host reference (hostref.py) on the rows that allow it."""
+def _reference_adjust(b: Run, n: Run, bi, ni, gb, gn, rows, threshold, confidence, seed, n_boot) -> dict:
+    """Host-adjusted ratios from the host reference (hostref.py) on the rows that allow it.
+
+    gb, gn: each run's samples as _samples_by_id gives them (invocation index, samples)."""
     if "host_ref_raw" not in bi.columns or "host_ref_raw" not in ni.columns:
         return {"status": "not recorded"}
     ok, why = hostref.usable(b.meta, n.meta)
     if not ok:
         return {"status": "not used: " + why}
-    gb, gn = _samples_by_id(b, with_index=True), _samples_by_id(n, with_index=True)
     used = 0
     for row in rows:
         pid = row["point_id"]
         if row["method"] != "hierarchical bootstrap":
             continue
-        if hostref.version(bi.at[pid, "host_ref_raw"]) != hostref.version(ni.at[pid, "host_ref_raw"]):
+        (vb, rb), (vn, rn) = hostref.parse(bi.at[pid, "host_ref_raw"]), hostref.parse(ni.at[pid, "host_ref_raw"])
+        if vb != vn:
             continue   # another reference graph: its times are not comparable
-        xb = hostref.normalised(gb.get(pid), bi.at[pid, "host_ref_raw"])
-        xn = hostref.normalised(gn.get(pid), ni.at[pid, "host_ref_raw"])
+        xb, xn = hostref.normalised(gb.get(pid), rb), hostref.normalised(gn.get(pid), rn)
         if xb is None or xn is None:
             continue
         rng = np.random.default_rng([seed, zlib.crc32(f"host reference {pid}".encode())])
@@ -195,9 +198,9 @@ def _reference_adjust(b: Run, n: Run, bi, ni, rows, threshold, confidence, seed,
             "ratio": hostref.reference_ratio(b.points, n.points)}
 
 
-def _samples_by_id(run: Run, with_index: bool = False) -> dict:
-    """point_id -> list of sample arrays, one per invocation (one array for runs without `invocation`);
-    with_index: list of (invocation index, samples)."""
+def _samples_by_id(run: Run) -> dict:
+    """point_id -> list of (invocation index, sample array), one per invocation (one, index 0, for runs
+    without `invocation`)."""
     s = run.samples
     if s is None or not len(s):
         return {}
@@ -209,8 +212,6 @@ def _samples_by_id(run: Run, with_index: bool = False) -> dict:
             out[pid] = [(int(k), h["ms"].to_numpy(dtype=float)) for k, h in g.groupby("invocation", sort=True)]
         else:
             out[pid] = [(0, g["ms"].to_numpy(dtype=float))]
-        if not with_index:
-            out[pid] = [x for _, x in out[pid]]
     return out
 
 
