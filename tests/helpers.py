@@ -6,6 +6,7 @@ import sqlite3
 import subprocess
 import sys
 import time
+from pathlib import Path
 
 # The repetition policy of most synthetic test sweeps: a couple of warm-up runs, a handful of timed
 # runs, no stage profile (the synthetic backend has no graph to profile).
@@ -71,7 +72,9 @@ def stored_rows(db, table: str = "points") -> int:
     """Rows in a table of a run directory's points.sqlite, or 0 while it does not exist yet (a sweep
     starting)."""
     try:
-        con = sqlite3.connect(db, timeout=5)
+        # Read-only: a plain connect creates an empty points.sqlite when the directory exists but
+        # the file does not, and a sweep that has just made its directory then finds "a run" there.
+        con = sqlite3.connect(Path(db).resolve().as_uri() + "?mode=ro", uri=True, timeout=5)
         try:
             return con.execute(f"SELECT COUNT(*) FROM {table}").fetchone()[0]
         finally:
