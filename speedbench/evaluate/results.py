@@ -15,7 +15,7 @@ import numpy as np
 
 from speedbench.data.jsonio import read_json
 from speedbench.errors import UserError
-from speedbench.evaluate.cocoeval import Detections, GroundTruth
+from speedbench.evaluate.cocoeval import Detections, GroundTruth, is_member
 
 FIELDS = ("image_id", "category_id", "bbox", "score")
 _NUMBER_TYPES = (int, float, np.integer, np.floating)
@@ -66,10 +66,10 @@ def parse_detections(dets, gt: GroundTruth, source: str = "detections") -> Detec
     checks = [
         (~np.isfinite(img_f) | (img_f != np.round(img_f)), "image_id must be an integer"),
         (np.abs(img_f) >= 2 ** 63, "image_id out of range (beyond 64 bits)"),
-        (~np.isin(img_f, gt.image_ids), "image_id is not an image of the ground truth"),
+        (~is_member(img_f, gt.image_ids), "image_id is not an image of the ground truth"),
         (~np.isfinite(cat_f) | (cat_f != np.round(cat_f)), "category_id must be an integer"),
         (np.abs(cat_f) >= 2 ** 63, "category_id out of range (beyond 64 bits)"),
-        (~np.isin(cat_f, gt.cat_ids), "category_id is not a category of the ground truth"),
+        (~is_member(cat_f, gt.cat_ids), "category_id is not a category of the ground truth"),
         (~np.isfinite(box).all(axis=1), "bbox values must be finite numbers"),
         ((box[:, 2] < 0) | (box[:, 3] < 0), "bbox has negative width or height"),
         (~np.isfinite(score), "score must be a finite number"),
