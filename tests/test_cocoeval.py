@@ -356,6 +356,7 @@ def test_bootstrap_blocks_and_threads_do_not_change_the_draws(monkeypatch):
     w = draw_weights(ground.n_images, 64, seed=1)
     whole = resampled_maps(m, w)
     monkeypatch.setattr(bootstrap, "_BLOCK_ELEMENTS", 50)  # a few rows per block
+    monkeypatch.setattr(bootstrap, "_MIN_ROWS", 1)
     assert np.array_equal(resampled_maps(m, w, threads=2), whole)
     assert np.array_equal(resampled_maps(m, w), whole)
     # The BLAS product and the running sum count the same whole numbers exactly.

@@ -31,6 +31,7 @@ import numpy as np
 from speedbench.evaluate.cocoeval import IOU_THRS, MAX_DETS, REC_THRS, Matching
 
 _BLOCK_ELEMENTS = 1 << 18  # resamples x detections per block: about 1 MiB per array, cache-sized
+_MIN_ROWS = 16  # rows per block at least, so that wide classes do not pay numpy call overhead per row
 _PRODUCT_RATIO = 200  # images x marks per detection below which the BLAS product is used
 
 
@@ -67,7 +68,7 @@ def resampled_maps(m: Matching, weights: np.ndarray, threads: int = 1) -> np.nda
         live = np.flatnonzero(npos[:, k] > 0)
         if live.size:
             cls = _Class(m.img[sel], m.tp[sel, :, 0], m.fp[sel, :, 0], n_images, drawn)
-            step = max(1, _BLOCK_ELEMENTS // max(1, cls.width))
+            step = max(_MIN_ROWS, _BLOCK_ELEMENTS // max(1, cls.width))
             jobs += [(k, cls, live[c:c + step]) for c in range(0, live.size, step)]
 
     def run(job):
