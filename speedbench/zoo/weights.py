@@ -76,6 +76,10 @@ def safe_load(path, what: str = "checkpoint") -> dict:
     except (RuntimeError, EOFError, OSError, ValueError, zipfile.BadZipFile, KeyError, AttributeError) as exc:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise UserError(f"{path}: not a readable torch {what} ({first[:120]})") from None
+    except Exception as exc:  # noqa: BLE001 - a damaged file can make the unpickler raise anything
+        # Seen: random bytes make torch's weights-only unpickler raise IndexError (an opcode that
+        # reads past its stack). Whatever the unpickler trips on, the file is the user's mistake.
+        raise UserError(f"{path}: corrupt {what} (the unpickler failed: {type(exc).__name__})") from None
     return obj
 
 
