@@ -102,6 +102,8 @@ def probe_columns(probe: dict | None) -> dict:
         out[f"probe_{phase}_ms"] = float(ms) if isinstance(ms, (int, float)) else NAN
     out["probe_raw"] = json.dumps(probe, sort_keys=True) if probe else ""
     return out
+
+
 def reference_columns(extra: dict) -> dict:
     """schema.REFERENCE_COLUMNS from one invocation's reference record or a point's per-invocation map."""
     per = extra.get("reference_by_invocation")

@@ -15,6 +15,7 @@ import sys
 import traceback
 
 from speedbench.measure.probe import run_probe
+from speedbench.measure.reference import ReferenceTimer
 from speedbench.system import atomic_write
 
 # Libraries whose import cost belongs to "after imports" for each backend. Only what the timed
@@ -115,8 +116,6 @@ def _reference(point, policy, extra: dict):
     is measured without it and the reason is kept in extra["reference_error"]."""
     if not policy.host_reference or point.backend not in ("ort", "adapted"):
         return None
-    from speedbench.measure.reference import ReferenceTimer
-
     try:
         return ReferenceTimer()
     except Exception as exc:
