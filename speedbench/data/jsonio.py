@@ -99,7 +99,7 @@ class _NotUtf8(UserError):
 
 
 @contextmanager
-def _no_collection():
+def no_collection():
     """Parsed JSON holds no reference cycles, so the cycle collector has nothing to find in
     it; left on, it walks the growing tree again and again (half the time of orjson.loads
     on 95,000 detections)."""
@@ -127,7 +127,7 @@ def parse_json(text, source, max_depth: int = MAX_DEPTH, allow_nonfinite: bool =
     data = text.encode("utf-8", "surrogatepass") if isinstance(text, str) else text
     if values_checked and orjson is not None:
         try:
-            with _no_collection():
+            with no_collection():
                 return orjson.loads(data)
         except orjson.JSONDecodeError:
             pass
@@ -135,7 +135,7 @@ def parse_json(text, source, max_depth: int = MAX_DEPTH, allow_nonfinite: bool =
         raise UserError(f"{source}: JSON nested deeper than {max_depth} levels; refused")
     if orjson is not None and not values_checked and not _risky_numbers(data):
         try:
-            with _no_collection():
+            with no_collection():
                 return orjson.loads(data)  # also refuses text that is not UTF-8
         except orjson.JSONDecodeError:
             pass  # NaN, a syntax error, ...: the standard library decides and words it
@@ -145,7 +145,7 @@ def parse_json(text, source, max_depth: int = MAX_DEPTH, allow_nonfinite: bool =
         except UnicodeDecodeError:
             raise _NotUtf8(f"{source}: not a readable JSON file (not UTF-8 text)") from None
     try:
-        with _no_collection():
+        with no_collection():
             if allow_nonfinite:
                 return json.loads(text, parse_int=_int)
             return json.loads(text, parse_int=_int, parse_float=_float, parse_constant=_constant)
@@ -157,19 +157,91 @@ def parse_json(text, source, max_depth: int = MAX_DEPTH, allow_nonfinite: bool =
         raise UserError(f"{source}: JSON nested too deeply; refused") from None
 
 
-def read_json(path, what: str = "JSON file", max_depth: int = MAX_DEPTH, allow_nonfinite: bool = False,
-              values_checked: bool = False):
-    """Read and parse a JSON file (UTF-8); a missing, unreadable or bad file is a UserError naming it."""
+def read_bytes(path, what: str = "JSON file") -> bytes:
+    """A file's bytes; a missing or unreadable file is a UserError naming it."""
     path = Path(path)
     try:
-        data = path.read_bytes()  # decoded only if the fast parser does not take it
+        return path.read_bytes()
     except FileNotFoundError:
         raise UserError(f"{path}: {what} not found") from None
     except IsADirectoryError:
         raise UserError(f"{path}: is a directory, not a {what}") from None
     except OSError as exc:
         raise UserError(f"{path}: cannot read {what} ({exc.strerror})") from None
+
+
+def read_json(path, what: str = "JSON file", max_depth: int = MAX_DEPTH, allow_nonfinite: bool = False,
+              values_checked: bool = False, data: bytes | None = None):
+    """Read and parse a JSON file (UTF-8); a missing, unreadable or bad file is a UserError naming it.
+
+    data: the file's bytes, if already read (read_bytes)."""
+    path = Path(path)
+    if data is None:
+        data = read_bytes(path, what)  # decoded only if the fast parser does not take it
     try:
         return parse_json(data, path, max_depth, allow_nonfinite, values_checked)
     except _NotUtf8:
         raise UserError(f"{path}: not a readable {what} (not UTF-8 text)") from None
+
+
+_JSON_SPACE = b" \t\n\r"
+
+
+def array_pieces(data: bytes, size: int):
+    """A large JSON array parsed a piece at a time: an iterator of lists, or None.
+
+    The text is cut after an element's closing brace where a comma and an opening brace
+    follow, about `size` bytes apart, and each piece is parsed as an array of its own (with
+    orjson). Why: a detections file of 7 MiB becomes some 40 MiB of Python objects at once,
+    and on a machine where fresh memory is slow to come by (virtual machines that hand
+    freed pages back to their host) touching it costs more than parsing it. The caller
+    turns each piece into arrays before asking for the next, so its objects are freed and
+    their memory reused.
+
+    Safe by construction: a cut inside a string, or inside a nested array or object, leaves
+    a piece that is not valid JSON, so when every piece parses, every cut was between two
+    elements of the outer array and the pieces' lists joined are that array. The iterator
+    yields None (and stops) at a piece that does not parse; None instead of an iterator when
+    orjson is missing, the text is short or not an array. Either way the caller then reads
+    the whole text as usual, which words any error.
+    """
+    if orjson is None or len(data) < 2 * size:
+        return None
+    start = len(data) - len(data.lstrip(_JSON_SPACE))
+    end = len(data.rstrip(_JSON_SPACE))
+    if data[start:start + 1] != b"[" or data[end - 1:end] != b"]":
+        return None
+    return _pieces(data, size, start + 1, end)
+
+
+def _pieces(data: bytes, size: int, pos: int, end: int):
+    while True:
+        cut, after = _next_cut(data, pos + size, end)
+        try:
+            with no_collection():
+                items = orjson.loads(b"[" + data[pos:cut] + b"]")
+        except orjson.JSONDecodeError:
+            yield None
+            return
+        yield items
+        del items  # the caller has made arrays of it: free it before parsing the next
+        if after is None:
+            return
+        pos = after
+
+
+def _next_cut(data: bytes, after: int, end: int):
+    """(end of this piece, start of the next) at the first "}" ws* "," ws* "{" after `after`."""
+    i = data.find(b"}", after, end)
+    while i >= 0:
+        j = i + 1
+        while data[j:j + 1] in (b" ", b"\t", b"\n", b"\r") and j < end:
+            j += 1
+        if data[j:j + 1] == b",":
+            k = j + 1
+            while data[k:k + 1] in (b" ", b"\t", b"\n", b"\r") and k < end:
+                k += 1
+            if data[k:k + 1] == b"{":
+                return i + 1, k
+        i = data.find(b"}", i + 1, end)
+    return end - 1, None

@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import math
 from concurrent.futures import ThreadPoolExecutor
+from functools import partial
 
 import numpy as np
 
@@ -36,11 +37,13 @@ _PRODUCT_RATIO = 200  # images x marks per detection below which the BLAS produc
 
 
 def draw_weights(n_images: int, n_boot: int, seed: int) -> np.ndarray:
-    """[n_boot, n_images] counts: how often each image appears in each resample."""
+    """[n_boot, n_images] int32 counts: how often each image appears in each resample."""
     rng = np.random.default_rng(seed)
     idx = rng.integers(0, n_images, size=(n_boot, n_images))
-    flat = (idx + np.arange(n_boot)[:, None] * n_images).ravel()
-    return np.bincount(flat, minlength=n_boot * n_images).reshape(n_boot, n_images).astype(float)
+    idx += np.arange(n_boot)[:, None] * n_images  # in place: fresh memory is slow on some hosts
+    counts = np.bincount(idx.ravel(), minlength=n_boot * n_images)
+    del idx
+    return counts.reshape(n_boot, n_images).astype(np.int32)
 
 
 def resampled_maps(m: Matching, weights: np.ndarray, threads: int = 1) -> np.ndarray:
@@ -49,7 +52,7 @@ def resampled_maps(m: Matching, weights: np.ndarray, threads: int = 1) -> np.nda
     weights [n_boot, n_images]: whole numbers >= 0 (how often each image is drawn).
     """
     weights = np.asarray(weights)
-    counts = np.rint(weights)
+    counts = weights if weights.dtype.kind in "iu" else np.rint(weights)
     if weights.size and (counts.min() < 0 or counts.max() >= 2 ** 20 or not np.array_equal(weights, counts)):
         raise ValueError("bootstrap weights must be whole numbers between 0 and 2**20")
     n_boot, n_cat = len(weights), m.pos_per_image.shape[0]
@@ -62,29 +65,40 @@ def resampled_maps(m: Matching, weights: np.ndarray, threads: int = 1) -> np.nda
     order = np.lexsort((m.rank, m.img, -m.score, m.cat))
     order = order[m.rank[order] < MAX_DETS[-1]]
     starts = np.searchsorted(m.cat[order], np.arange(n_cat + 1))
-    jobs = []
-    for k in range(n_cat):
-        sel = order[starts[k]:starts[k + 1]]
-        live = np.flatnonzero(npos[:, k] > 0)
-        if live.size:
-            cls = _Class(m.img[sel], m.tp[sel, :, 0], m.fp[sel, :, 0], n_images, drawn)
-            step = max(_MIN_ROWS, _BLOCK_ELEMENTS // max(1, cls.width))
-            jobs += [(k, cls, live[c:c + step]) for c in range(0, live.size, step)]
 
-    def run(job):
-        k, cls, rows = job
+    def run(k, cls, rows):
         wb = w[rows]
         # Each block does its own part of the matrix product, so that it too runs on the
         # pool's threads (BLAS is held to one thread on the results-file path).
         return cls.mean_precision(wb, npos[rows, k], cls.seen_by_product(wb) if cls.upto is not None else None)
 
-    if threads > 1 and len(jobs) > 1:
+    def blocks(k):
+        """(rows, a call that gives their mean precision) for class k, built on demand."""
+        live = np.flatnonzero(npos[:, k] > 0)
+        if not live.size:
+            return []
+        sel = order[starts[k]:starts[k + 1]]
+        cls = _Class(m.img[sel], m.tp[sel, :, 0], m.fp[sel, :, 0], n_images, drawn)
+        step = max(_MIN_ROWS, _BLOCK_ELEMENTS // max(1, cls.width))
+        return [(rows, partial(run, k, cls, rows)) for rows in (live[c:c + step] for c in range(0, live.size, step))]
+
+    parts = []  # (rows, mean precision of one class on them), in class order
+    if threads > 1:
         with ThreadPoolExecutor(threads) as pool:
-            results = list(pool.map(run, jobs))
+            # A class is set up here while the pool works on the one before, and at most two
+            # are held at once (a class holds its matrix for the product: MiBs each).
+            queued = []
+            for k in range(n_cat):
+                queued.append([(rows, pool.submit(call)) for rows, call in blocks(k)])
+                if len(queued) > 1:
+                    parts += [(rows, f.result()) for rows, f in queued.pop(0)]
+            for q in queued:
+                parts += [(rows, f.result()) for rows, f in q]
     else:
-        results = [run(job) for job in jobs]
+        for k in range(n_cat):
+            parts += [(rows, call()) for rows, call in blocks(k)]
     total, count = np.zeros(n_boot), np.zeros(n_boot)
-    for (_, _, rows), r in zip(jobs, results):
+    for rows, r in parts:
         total[rows] += r
         count[rows] += 1
     return np.where(count > 0, total / np.maximum(count, 1), -1.0)
@@ -129,9 +143,13 @@ class _Class:
         exact32 = drawn * int(per_image.max(initial=0)) < 2 ** 24
         if exact32 and marks.size and (n_images + 1) * marks.size <= _PRODUCT_RATIO * self.n:
             segment = np.searchsorted(marks, np.arange(self.n))  # first mark at or after
-            upto = np.bincount(self.img * marks.size + segment,
-                               minlength=(n_images + 1) * marks.size).reshape(n_images + 1, -1)
-            self.upto = np.cumsum(upto, axis=1).astype(np.float32)
+            # Counted and summed in place in float32 (exact, as above): one array of
+            # (images + 1) x marks, where bincount and an int64 running sum took five times
+            # the memory, and fresh memory is slow on some hosts (virtual machines).
+            upto = np.zeros((n_images + 1) * marks.size, np.float32)
+            np.add.at(upto, self.img * marks.size + segment, 1)
+            upto = upto.reshape(n_images + 1, -1)
+            self.upto = np.cumsum(upto, axis=1, out=upto)
         self.width = marks.size if self.upto is not None else self.n
 
     def seen_by_product(self, w):
@@ -175,26 +193,27 @@ class _Class:
         # At most len(REC_THRS) = 101: one byte per entry keeps the table small in the cache.
         reached = np.cumsum(reached.reshape(B, span), axis=1, dtype=np.int32).ravel().astype(np.uint8)
         for img_tp, mark_at, ig_img, ig_before in self.per_t:
-            tp = np.take(w, img_tp, axis=1)
+            tp = np.take(w, img_tp, axis=1, mode="wrap")
             np.cumsum(tp, axis=1, dtype=tp.dtype, out=tp)
-            den = np.take(seen, mark_at, axis=1)  # tp + fp + ignored so far
+            den = np.take(seen, mark_at, axis=1, mode="wrap")  # tp + fp + ignored so far
             if ig_img is not None:
-                ig = np.take(w, ig_img, axis=1)
+                ig = np.take(w, ig_img, axis=1, mode="wrap")
                 np.cumsum(ig, axis=1, dtype=ig.dtype, out=ig)
-                den -= np.take(ig, ig_before, axis=1)
+                den -= np.take(ig, ig_before, axis=1, mode="wrap")
             # The reference divides by den + cocoeval.EPS (tp = den = 0 at a true positive of an image
             # drawn 0 times gives 0). For whole numbers den >= 2 that sum rounds back to den; at
             # den = 1 it is the next double above 1, so 1 / 1 here may exceed the reference's
             # quotient by one unit in the last place (2e-16), far below any digit reported.
             np.maximum(den, 1, out=den)
-            pr = np.divide(tp, den, dtype=np.float64)
+            pr = tp.astype(np.float64)  # converted first: numpy's mixed-type divide is slower
+            pr /= den.astype(np.float64)
             # Suffix maximum. Non-negative doubles order like their bit patterns read as
             # integers, and the integer maximum runs several times faster.
             bits = pr.view(np.int64)[:, ::-1]
             np.maximum.accumulate(bits, axis=1, out=bits)
             index = tp.astype(index_type, copy=False)
             index += off
-            reached_at = np.take(reached, index)  # reached(tp) at each true positive
+            reached_at = np.take(reached, index, mode="clip")  # reached(tp) at each true positive
             first = np.empty(pr.shape)
             first[:, 0] = reached_at[:, 0]
             np.subtract(reached_at[:, 1:], reached_at[:, :-1], out=first[:, 1:])

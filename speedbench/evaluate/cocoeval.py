@@ -89,6 +89,14 @@ class Detections:
         self.score = np.asarray(score, np.float64)
         self.area = self.box[:, 2] * self.box[:, 3]
 
+    @classmethod
+    def joined(cls, parts: list[Detections]) -> Detections:
+        """The detections of several parts (against the same GroundTruth), in order."""
+        out = cls.__new__(cls)
+        for name in ("img", "cat", "box", "score", "area"):
+            setattr(out, name, np.concatenate([getattr(p, name) for p in parts]))
+        return out
+
 
 def box_iou(d: np.ndarray, g: np.ndarray, crowd: np.ndarray) -> np.ndarray:
     """IoU of paired [x, y, w, h] boxes, the same float operations as pycocotools' bbIou."""

@@ -13,12 +13,13 @@ from pathlib import Path
 
 import numpy as np
 
-from speedbench.data.jsonio import read_json
+from speedbench.data.jsonio import array_pieces, no_collection, read_bytes, read_json
 from speedbench.errors import UserError
 from speedbench.evaluate.cocoeval import Detections, GroundTruth, is_member
 
 FIELDS = ("image_id", "category_id", "bbox", "score")
 _NUMBER_TYPES = (int, float, np.integer, np.floating)
+_PIECE_BYTES = 1 << 20  # of a large detections file parsed at a time (jsonio.array_pieces)
 
 
 def load_detections(path, gt) -> list[dict]:
@@ -31,9 +32,29 @@ def load_detections(path, gt) -> list[dict]:
 
 def read_detections(path, gt) -> Detections:
     """Read and validate a COCO results JSON file straight into arrays (parsed once)."""
+    ground, source = _ground(gt), str(Path(path))
+    data = read_bytes(path, "detections file")
+    pieces = array_pieces(data, _PIECE_BYTES)
+    if pieces is not None:  # a large file: a piece at a time, each made arrays at once
+        parts = []
+        # The cycle collector stays off until the pieces are freed: switched on between them,
+        # it walks each piece's objects (they hold no cycles) once more.
+        with no_collection():
+            for items in pieces:
+                if items is None:  # a piece did not parse
+                    break
+                try:
+                    parts.append(parse_detections(items, ground, source))
+                except UserError:
+                    break  # read again whole below, so that the message counts from the file's start
+                del items
+            else:
+                if parts:
+                    return Detections.joined(parts)
+        del parts
     # parse_detections checks every value, so the fast parser may skip its scans.
-    data = read_json(path, "detections file", allow_nonfinite=True, values_checked=True)
-    return parse_detections(data, _ground(gt), source=str(Path(path)))
+    data = read_json(path, "detections file", allow_nonfinite=True, values_checked=True, data=data)
+    return parse_detections(data, ground, source=source)
 
 
 def _ground(gt) -> GroundTruth:
@@ -53,11 +74,11 @@ def parse_detections(dets, gt: GroundTruth, source: str = "detections") -> Detec
         types = set(map(type, chain(img, cat, score, chain.from_iterable(boxes))))
         if not all(issubclass(t, _NUMBER_TYPES) and t is not bool for t in types):
             raise ValueError
-        box = np.array(boxes, dtype=np.float64)  # ragged or non-list boxes raise here
-        if box.ndim != 2 or box.shape[1] != 4:
-            if len(dets):
-                raise ValueError
-            box = box.reshape(0, 4)
+        # Box items are numbers (checked above); with four to a box, read them flat (np.array
+        # of the nested lists takes twice as long).
+        if dets and set(map(len, boxes)) != {4}:
+            raise ValueError
+        box = np.fromiter(chain.from_iterable(boxes), np.float64, count=4 * len(dets)).reshape(-1, 4)
         img_f, cat_f = np.array(img, float), np.array(cat, float)
         score = np.array(score, np.float64)
     except (KeyError, TypeError, ValueError, OverflowError):   # OverflowError: an int beyond float range
