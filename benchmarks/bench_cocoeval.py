@@ -86,8 +86,9 @@ def reference_from_files(gt_path, dets_path):
     return ev.stats
 
 
-# The CLI in a fresh interpreter; with hide_orjson, `import orjson` fails inside it.
-_CLI = "import sys\n{hide}from speedbench.cli import main\nsys.exit(main(sys.argv[1:]))\n"
+# The CLI in a fresh interpreter, by the console script's own entry; with hide_orjson,
+# `import orjson` fails inside it.
+_CLI = "import sys\n{hide}from speedbench.cli import entry\nentry()\n"
 
 
 def ours_from_files(gt_path, dets_path, hide_orjson=False, extra=()):

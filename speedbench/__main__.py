@@ -1,5 +1,3 @@
-import sys
+from speedbench.cli import entry
 
-from speedbench.cli import main
-
-sys.exit(main())
+entry()

@@ -113,6 +113,7 @@ def test_read_detections_in_pieces_equals_the_whole_read(tmp_path, monkeypatch):
     ({"image_id": 99}, "not an image of the ground truth"),
     ({"score": "high"}, "score must be a number"),
     ({"bbox": [1, 2, 3]}, "bbox must be"),
+    ({"score": float("nan")}, "score must be a finite number"),  # NaN: orjson refuses the piece
 ])
 def test_an_error_in_a_later_piece_names_the_entry_counted_from_the_start(tmp_path, monkeypatch, bad, why):
     path = tmp_path / "dets.json"

@@ -192,6 +192,8 @@ class _Class:
         reached = np.bincount((need.astype(index_type) + off).ravel(), minlength=B * span)
         # At most len(REC_THRS) = 101: one byte per entry keeps the table small in the cache.
         reached = np.cumsum(reached.reshape(B, span), axis=1, dtype=np.int32).ravel().astype(np.uint8)
+        # Every index below is in range by construction; mode "wrap" / "clip" skip the bounds
+        # check that numpy's default mode makes (a slower path for each element).
         for img_tp, mark_at, ig_img, ig_before in self.per_t:
             tp = np.take(w, img_tp, axis=1, mode="wrap")
             np.cumsum(tp, axis=1, dtype=tp.dtype, out=tp)
