@@ -189,23 +189,24 @@ class Matching:
         it looks at ignored ones only when no non-ignored one matched.
         """
         P = len(p_det)
-        seg = np.flatnonzero(np.r_[True, p_det[1:] != p_det[:-1]])  # one segment per detection
-        seg_of = np.cumsum(np.r_[False, p_det[1:] != p_det[:-1]])
+        new_det = p_det[1:] != p_det[:-1]
+        seg = np.flatnonzero(np.concatenate(([True], new_det)))  # one segment per detection
+        seg_of = np.cumsum(np.concatenate(([False], new_det)))
         cand = (p_iou[:, None] >= IOU_THRS[None, :])[:, :, None] & ~taken[p_gt]  # [P, T, A]
-        ign = g_ignore[p_gt][:, None, :]
-        val = np.broadcast_to(p_iou[:, None, None], cand.shape)
+        # Both tiers in one key: a non-negative double orders like its bits read as an integer
+        # (an IoU is at most 1.0, whose bits are below 2**62), and a non-ignored ground truth
+        # gets 2**62 added, so it outranks every ignored one. Not a candidate: -1.
+        bits = np.ascontiguousarray(p_iou).view(np.int64)
+        key = bits[:, None, None] + np.where(g_ignore[p_gt], 0, 1 << 62)[:, None, :]  # [P, 1, A]
+        key = np.where(cand, key, -1)
+        top = np.maximum.reduceat(key, seg, axis=0)  # [S, T, A]: the best key of each detection
+        hit = cand & (key == top[seg_of])
         pos = np.broadcast_to(np.arange(P)[:, None, None], cand.shape)
-        best = []
-        for tier in (cand & ~ign, cand & ign):
-            v = np.where(tier, val, -1.0)
-            top = np.maximum.reduceat(v, seg, axis=0)
-            hit = tier & (v == top[seg_of])
-            best.append(np.maximum.reduceat(np.where(hit, pos, -1), seg, axis=0))
-        chosen = np.where(best[0] >= 0, best[0], best[1])  # [S, T, A] pair index or -1
+        chosen = np.maximum.reduceat(np.where(hit, pos, -1), seg, axis=0)  # the last such pair, or -1
         dets = p_det[seg]
-        matched[dets] = chosen >= 0
-        to_ignored[dets] = (best[0] < 0) & (best[1] >= 0)
-        s, t, a = np.nonzero(chosen >= 0)
+        matched[dets] = top >= 0
+        to_ignored[dets] = (top >= 0) & (top < 1 << 62)
+        s, t, a = np.nonzero(top >= 0)
         g = p_gt[chosen[s, t, a]]
         keep = ~g_crowd[g]
         taken[g[keep], t[keep], a[keep]] = True
