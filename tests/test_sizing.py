@@ -480,6 +480,24 @@ def test_answer_cheapest_and_most_accurate_hand_worked():
     assert best["closest"]["model"] == "a" and best["closest"]["expected_p99_ms"] == 60.0
 
 
+def test_no_plan_line_names_the_interval_it_was_judged_on():
+    from speedbench.analyse.buy import answer_lines
+
+    # The closest plan's expected p99 (60 ms) is under a 100 ms target, but its p99 interval's
+    # upper bound (130 ms) is not: the line must say which figure decided, not only the 60 ms.
+    out = size(table(), 40, 10, p99_ms=100, server_cores=(8,))
+    out["judged_on"] = "p99 interval upper bound at utilisation 0.80"
+    out["p99_ci_hi_ms"] = 130.0
+    out["utilisation_hi"] = 0.8
+    out["meets_p99"] = False
+    (line,) = answer_lines(out, with_p99=True)
+    assert line.startswith("No plan meets the target: the lowest expected p99 is 60.0 ms")
+    assert "upper bound of its p99 interval, 130.0 ms at utilisation 0.80, it misses" in line
+    out["judged_on"] = "point estimate (asked)"
+    (line,) = answer_lines(out, with_p99=True)
+    assert "interval" not in line
+
+
 def test_answer_without_prices_counts_provisioned_cores():
     from speedbench.analyse.buy import best_plans
 

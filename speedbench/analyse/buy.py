@@ -100,9 +100,15 @@ def answer_lines(table, with_p99: bool) -> list[str]:
         c = best["closest"]
         if c is None:
             return ["No plan: no configuration could be sized on these server shapes."]
+        hi = c.get("p99_ci_hi_ms")
+        # A plan is judged on its p99 interval's upper bound when one was measured: say so, or an
+        # expected p99 under the target reads as a contradiction.
+        judged = (f"; judged on the upper bound of its p99 interval, {hi:.1f} ms at utilisation "
+                  f"{c['utilisation_hi']:.2f}, it misses" if str(c.get("judged_on", "")).startswith("p99 interval")
+                  and isinstance(hi, float) and math.isfinite(hi) else "")
         return [f"No plan meets the target: the lowest expected p99 is {c['expected_p99_ms']:.1f} ms "
-                f"({c['label']} on {int(c['servers'])} x {int(c['server_cores'])}-core servers). Try a faster "
-                "configuration, a lower --headroom, or a looser --p99-ms."]
+                f"({c['label']} on {int(c['servers'])} x {int(c['server_cores'])}-core servers{judged}). Try a "
+                "faster configuration, a lower --headroom, or a looser --p99-ms."]
     lines = []
     meets = "meets the p99 target" if with_p99 else "carries the load"
     if best["cheapest"] is not None:
