@@ -234,14 +234,17 @@ def _next_cut(data: bytes, after: int, end: int):
     """(end of this piece, start of the next) at the first "}" ws* "," ws* "{" after `after`."""
     i = data.find(b"}", after, end)
     while i >= 0:
-        j = i + 1
-        while data[j:j + 1] in (b" ", b"\t", b"\n", b"\r") and j < end:
-            j += 1
+        j = _skip_space(data, i + 1, end)
         if data[j:j + 1] == b",":
-            k = j + 1
-            while data[k:k + 1] in (b" ", b"\t", b"\n", b"\r") and k < end:
-                k += 1
+            k = _skip_space(data, j + 1, end)
             if data[k:k + 1] == b"{":
                 return i + 1, k
         i = data.find(b"}", i + 1, end)
     return end - 1, None
+
+
+def _skip_space(data: bytes, i: int, end: int) -> int:
+    """The first index at or after i (before end) that is not JSON whitespace."""
+    while i < end and data[i] in _JSON_SPACE:
+        i += 1
+    return i
