@@ -1,5 +1,7 @@
 """Arguments: run names, output paths and templates, the range of every numeric option and the
 suffix of every output file are checked before any work starts: one line, exit status 2."""
+import json
+
 import pytest
 
 from speedbench.errors import UserError
@@ -161,3 +163,24 @@ def test_measure_of_a_corrupt_graph_is_bad_input_exit_2(tmp_path, capsys):
 def test_load_worker_counts_have_a_range(capsys):
     refused(capsys, ["load", "p.toml", "-k", "1,999"], "-k/--concurrency: K must be >= 1 and <= 256")
     refused(capsys, ["load", "p.toml", "--utilisation", "nan"], "--utilisation: each must be in (0, 1.5]")
+
+
+def test_a_reader_that_goes_away_is_not_a_traceback(tmp_path):
+    # `speedbench evaluate ... | head`: the pipe closes before the result is written. Python's
+    # own guidance (signal module documentation, "Note on SIGPIPE") is a quiet exit, not a traceback.
+    import subprocess
+    import sys
+
+    gt = {"images": [{"id": 1, "file_name": "a.png", "width": 64, "height": 48}],
+          "annotations": [{"id": 1, "image_id": 1, "category_id": 1, "bbox": [1, 2, 10, 10]}],
+          "categories": [{"id": 1, "name": "crate"}]}
+    (tmp_path / "gt.json").write_text(json.dumps(gt))
+    (tmp_path / "dets.json").write_text(json.dumps(
+        [{"image_id": 1, "category_id": 1, "bbox": [1, 2, 10, 10], "score": 0.9}]))
+    proc = subprocess.Popen([sys.executable, "-m", "speedbench", "evaluate", str(tmp_path / "gt.json"),
+                             str(tmp_path / "dets.json"), "--json"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    proc.stdout.close()  # the reader is gone before anything is written
+    err = proc.stderr.read().decode()
+    assert proc.wait(timeout=120) == 1
+    assert "Traceback" not in err, err

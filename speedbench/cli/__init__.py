@@ -11,6 +11,7 @@ import argparse
 import errno
 import gc
 import importlib
+import os
 import signal
 import sqlite3
 import sys
@@ -56,7 +57,14 @@ def build_parser(only: str | None = None) -> argparse.ArgumentParser:
 
 def entry() -> None:
     """The `speedbench` program (the console script, and python -m speedbench): main(), then exit."""
-    code = main()
+    try:
+        code = main()
+    except BrokenPipeError:
+        # The reader went away (`speedbench ... | head`): not an error worth a traceback. Point
+        # stdout at /dev/null so the interpreter's final flush does not fail again (the
+        # recipe in Python's signal module documentation).
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        sys.exit(1)
     # At exit the interpreter's last cycle collection walks every object the command left,
     # all about to go with the process: some 30 ms of `evaluate`'s 0.8 s. The command has
     # closed its files and runs by now, and frozen objects are skipped by that pass.
